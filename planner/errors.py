@@ -1,0 +1,48 @@
+"""The one exception hierarchy of yardplan.
+
+Every error a user can cause is a ``PlannerError``; the command line turns it into
+one line on stderr and exit code 2. Each subclass also inherits the builtin that
+callers would naturally catch, so existing ``except ValueError`` clauses keep working.
+"""
+
+from __future__ import annotations
+
+
+class PlannerError(Exception):
+    """Root of every error yardplan raises on purpose."""
+
+
+class SiteError(PlannerError, ValueError):
+    """The site file breaks a rule of the schema (names the feature)."""
+
+
+class SettingsError(PlannerError, ValueError):
+    """An option or setting is out of its allowed range (names the option)."""
+
+
+class BudgetError(PlannerError, MemoryError):
+    """The requested grid or model is larger than the allowed budget."""
+
+
+class SolverError(PlannerError, ArithmeticError):
+    """A numerical solve did not meet its stated tolerance."""
+
+
+class RunFolderError(PlannerError, OSError):
+    """A run folder is missing, incomplete, tampered with or from another version."""
+
+
+class Interrupted(PlannerError):
+    """The user stopped a long command; nothing was written."""
+
+
+class PlannerWarning(UserWarning):
+    """Root of yardplan's warnings."""
+
+
+class SiteWarning(PlannerWarning):
+    """Something in the site is legal but worth a second look."""
+
+
+class NotConvergedWarning(PlannerWarning):
+    """Learning stopped before the learned policy matched its exact reference."""

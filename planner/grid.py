@@ -1,0 +1,510 @@
+"""Rasterising: a :class:`~planner.site.Site` becomes a labelled :class:`Grid`.
+
+This stage owns cell geometry (square cells of ``cell_m`` metres, row 0 at the south
+edge, column 0 at the west edge), the conservative labelling rules, rough-cell cost
+factors, the per-cell drift distributions, and the deterministic shortest-path costs
+(Dijkstra) that later stages use as a heuristic and to size the hazard penalty.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import shapely
+
+from planner.errors import BudgetError, SettingsError, SiteError
+
+#: Cell label: outside the boundary.
+OUTSIDE = -2
+#: Cell label: inside the boundary and in no hazard.
+FREE = -1
+#: Default budget on the number of grid cells.
+DEFAULT_MAX_CELLS = 400_000
+#: Hazards are tracked in a 64-bit mask per outcome.
+MAX_HAZARDS = 62
+
+
+@dataclass(frozen=True)
+class GridSpec:
+    """How to rasterise a site.
+
+    Parameters
+    ----------
+    cell_m : side of a square cell, metres (> 0).
+    hazard_overlap : a cell is hazard when a (buffered) hazard covers more than this
+        fraction of it; 0 (default) means any overlap at all.
+    boundary_cover : a cell is inside when the boundary covers at least this fraction
+        of it; 1 (default) means wholly.
+    max_cells : refuse grids with more cells than this.
+    """
+
+    cell_m: float
+    hazard_overlap: float = 0.0
+    boundary_cover: float = 1.0
+    max_cells: int = DEFAULT_MAX_CELLS
+
+    def __post_init__(self):
+        if not (isinstance(self.cell_m, (int, float)) and math.isfinite(self.cell_m) and self.cell_m > 0):
+            raise SettingsError(f"--cell must be a positive number of metres, got {self.cell_m!r}")
+        if not 0.0 <= self.hazard_overlap < 1.0:
+            raise SettingsError(f"--hazard-overlap must be in [0, 1), got {self.hazard_overlap}")
+        if not 0.0 < self.boundary_cover <= 1.0:
+            raise SettingsError(f"--boundary-cover must be in (0, 1], got {self.boundary_cover}")
+        if not (isinstance(self.max_cells, int) and self.max_cells > 0):
+            raise SettingsError(f"--max-cells must be a positive whole number, got {self.max_cells!r}")
+
+
+@dataclass(frozen=True)
+class HazardInfo:
+    """What the grid keeps of a hazard zone; its index is its cell label."""
+
+    name: str
+    ends_run: bool = True
+    penalty_m: float | None = None
+    feature: int = -1
+
+
+@dataclass(frozen=True)
+class DriftInfo:
+    """A drift zone as the grid needs it: push (east, north) metres, spread, chance."""
+
+    name: str
+    east_m: float
+    north_m: float
+    spread_m: float = 0.0
+    chance: float = 1.0
+    feature: int = -1
+
+
+@dataclass(frozen=True)
+class Grid:
+    """A labelled grid.
+
+    Arrays are ``(n_rows, n_cols)``; row 0 is the southern row, column 0 the western.
+    Cell ``(r, c)`` has its centre at ``(x0 + (c + 0.5) * cell_m, y0 + (r + 0.5) * cell_m)``.
+
+    Attributes
+    ----------
+    label : int16, ``OUTSIDE`` (-2), ``FREE`` (-1) or the index of a hazard in ``hazards``.
+    goal : bool, goal cells.
+    cost_factor : float64, >= 1.
+    drift_class : int32, index into ``drift_members``; class 0 is "no drift".
+    drift_members : for each class, the indices (into ``drifts``) of the zones acting there.
+    """
+
+    cell_m: float
+    x0: float
+    y0: float
+    label: np.ndarray
+    goal: np.ndarray
+    start: tuple[int, int]
+    cost_factor: np.ndarray
+    drift_class: np.ndarray
+    drift_members: tuple[tuple[int, ...], ...]
+    hazards: tuple[HazardInfo, ...]
+    drifts: tuple[DriftInfo, ...]
+    warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.label.shape)
+
+    @property
+    def n_cells(self) -> int:
+        return int(self.label.size)
+
+    @property
+    def start_index(self) -> int:
+        return int(np.ravel_multi_index(self.start, self.shape))
+
+    def centres(self) -> tuple[np.ndarray, np.ndarray]:
+        """East and north of every cell centre, each ``(n_rows, n_cols)``."""
+        rows, cols = np.indices(self.shape)
+        return self.x0 + (cols + 0.5) * self.cell_m, self.y0 + (rows + 0.5) * self.cell_m
+
+    def cell_of(self, x: float, y: float) -> tuple[int, int]:
+        """The (row, col) of the cell containing point (x, y) in metres."""
+        col = int(math.floor((x - self.x0) / self.cell_m))
+        row = int(math.floor((y - self.y0) / self.cell_m))
+        return (min(max(row, 0), self.shape[0] - 1), min(max(col, 0), self.shape[1] - 1))
+
+    def passable(self) -> np.ndarray:
+        """Cells a vehicle may occupy: inside, and not in a hazard that ends the run."""
+        ends = np.array([h.ends_run for h in self.hazards] + [False], dtype=bool)
+        lab = self.label
+        return (lab != OUTSIDE) & ~((lab >= 0) & ends[np.where(lab >= 0, lab, len(self.hazards))])
+
+
+# ----------------------------------------------------------------------------- shapes
+
+
+def grid_shape(site, cell_m: float) -> tuple[int, int]:
+    """Rows and columns a grid of ``cell_m`` over the site's boundary needs."""
+    width, height = site.extent_m
+    if cell_m > max(width, height):
+        raise SettingsError(
+            f"--cell {cell_m:g} m is larger than the site ({width:.0f} m x {height:.0f} m)"
+        )
+    # A millimetre-scale tolerance keeps projection round-off from adding a sliver column.
+    return (max(1, math.ceil(height / cell_m - 1e-3)), max(1, math.ceil(width / cell_m - 1e-3)))
+
+
+def check_budget(n_cells: int, max_cells: int, cell_m: float) -> None:
+    """Refuse a grid over the cell budget, with the numbers to choose a better cell."""
+    if n_cells > max_cells:
+        raise BudgetError(
+            f"--cell {cell_m:g} m gives {n_cells:,} cells, over the --max-cells budget of {max_cells:,} "
+            f"(about {estimate_model_bytes(n_cells, 8, 9) / 2**30:.1f} GiB of model); use a larger --cell"
+        )
+
+
+def estimate_model_bytes(n_cells: int, n_actions: int, outcomes_per_action: float) -> int:
+    """Upper estimate of the transition table's size in bytes (see ``planner.model``)."""
+    per_outcome = 4 + 8 + 8 + 2 + 8  # next, prob, reward, event, crossed mask
+    return int(n_cells * n_actions * (outcomes_per_action * per_outcome + 8))
+
+
+# ----------------------------------------------------------------------------- drift
+
+
+def axis_distribution(mean: float, sd: float) -> tuple[np.ndarray, np.ndarray]:
+    """A discrete distribution over whole-cell offsets with the given mean and spread.
+
+    Uses at most three points ``k - s, k, k + s`` (``k`` the nearest integer to the
+    mean, ``s`` the smallest step that can carry the variance), which reproduces the
+    mean exactly and the standard deviation exactly when it is at least what a
+    fractional mean needs (``sqrt(f (1 - f))`` for fractional part ``f``); below that,
+    the two neighbouring integers carry the mean and the spread is that minimum.
+
+    Returns offsets (int64) and probabilities (float64) with zero-probability points
+    removed.
+
+    Examples
+    --------
+    >>> offsets, probs = axis_distribution(0.25, 0.0)
+    >>> offsets.tolist(), [round(p, 2) for p in probs]
+    ([0, 1], [0.75, 0.25])
+    """
+    k = int(round(mean))
+    d = mean - k
+    m2 = sd * sd + d * d
+    if m2 <= abs(d) + 1e-15:
+        if d == 0.0:
+            return np.array([k], dtype=np.int64), np.array([1.0])
+        lo = math.floor(mean)
+        frac = mean - lo
+        offsets, probs = np.array([lo, lo + 1], dtype=np.int64), np.array([1.0 - frac, frac])
+    else:
+        s = max(1, math.ceil(math.sqrt(m2) - 1e-12))
+        outer = m2 / (s * s)
+        plus, minus = (outer + d / s) / 2.0, (outer - d / s) / 2.0
+        offsets = np.array([k - s, k, k + s], dtype=np.int64)
+        probs = np.array([minus, 1.0 - outer, plus])
+    probs = np.clip(probs, 0.0, 1.0)
+    keep = probs > 1e-15
+    offsets, probs = offsets[keep], probs[keep]
+    return offsets, probs / probs.sum()
+
+
+def zone_drift_distribution(info: DriftInfo, cell_m: float, scale: float = 1.0):
+    """Offsets ``(n, 2)`` as (d_row, d_col) in cells, and probabilities, for one zone.
+
+    ``scale`` multiplies push and spread (a stronger wind than forecast); ``chance``
+    mixes in "no push" with probability ``1 - chance``.
+    """
+    east, north = info.east_m * scale / cell_m, info.north_m * scale / cell_m
+    sd = info.spread_m * scale / cell_m
+    cols, pc = axis_distribution(east, sd)
+    rows, pr = axis_distribution(north, sd)
+    offsets = np.array([(r, c) for r in rows for c in cols], dtype=np.int64).reshape(-1, 2)
+    probs = np.outer(pr, pc).ravel() * info.chance
+    if info.chance < 1.0:
+        offsets = np.vstack([offsets, [[0, 0]]])
+        probs = np.append(probs, 1.0 - info.chance)
+    return _merge_offsets(offsets, probs)
+
+
+def _merge_offsets(offsets: np.ndarray, probs: np.ndarray):
+    uniq, inverse = np.unique(offsets, axis=0, return_inverse=True)
+    merged = np.bincount(inverse.ravel(), weights=probs, minlength=len(uniq))
+    keep = merged > 1e-15
+    merged = merged[keep]
+    return uniq[keep].astype(np.int64), merged / merged.sum()
+
+
+def drift_tables(grid: Grid, scale: float = 1.0):
+    """Per-class drift distributions as flat arrays, for the model kernels.
+
+    Returns ``ptr`` (n_classes + 1,), ``d_row``, ``d_col`` (int64) and ``prob`` (float64):
+    class ``k`` owns entries ``ptr[k]:ptr[k + 1]``. Overlapping zones convolve
+    (their pushes add as independent vectors).
+    """
+    if not (math.isfinite(scale) and scale >= 0):
+        raise SettingsError(f"--drift-scale must be a finite number >= 0, got {scale}")
+    per_zone = [zone_drift_distribution(d, grid.cell_m, scale) for d in grid.drifts]
+    ptr, rows, cols, probs = [0], [], [], []
+    for members in grid.drift_members:
+        offsets, p = np.zeros((1, 2), dtype=np.int64), np.ones(1)
+        for m in members:
+            zo, zp = per_zone[m]
+            offsets = (offsets[:, None, :] + zo[None, :, :]).reshape(-1, 2)
+            p = np.outer(p, zp).ravel()
+            offsets, p = _merge_offsets(offsets, p)
+        rows.append(offsets[:, 0])
+        cols.append(offsets[:, 1])
+        probs.append(p)
+        ptr.append(ptr[-1] + len(p))
+    return (np.asarray(ptr, dtype=np.int64), np.concatenate(rows), np.concatenate(cols), np.concatenate(probs))
+
+
+# ----------------------------------------------------------------------------- building
+
+
+def rasterise(site, spec: GridSpec) -> Grid:
+    """Label every cell of the site, vectorised over cells with shapely 2.
+
+    Raises
+    ------
+    BudgetError
+        When the grid would exceed ``spec.max_cells``.
+    SiteError
+        When the start or goal cell is unusable at this cell size.
+    """
+    n_rows, n_cols = grid_shape(site, spec.cell_m)
+    check_budget(n_rows * n_cols, spec.max_cells, spec.cell_m)
+    if len(site.hazards) > MAX_HAZARDS:
+        raise SiteError(f"{site.source}: {len(site.hazards)} hazard zones; at most {MAX_HAZARDS} are supported")
+    cell = spec.cell_m
+    x0, y0 = site.boundary.bounds[0], site.boundary.bounds[1]
+    rows, cols = np.indices((n_rows, n_cols))
+    xmin = (x0 + cols * cell).ravel()
+    ymin = (y0 + rows * cell).ravel()
+    boxes = shapely.box(xmin, ymin, xmin + cell, ymin + cell)
+    centres = shapely.points(xmin + cell / 2, ymin + cell / 2)
+    cell_area = cell * cell
+    tree = shapely.STRtree(boxes)
+
+    inside = _covered_fraction_at_least(tree, boxes, site.boundary, spec.boundary_cover, cell_area)
+    label = np.where(inside, FREE, OUTSIDE).astype(np.int16)
+
+    hazards = site.hazards
+    # Ending hazards are painted last so that they win where zones overlap.
+    order = sorted(range(len(hazards)), key=lambda i: (hazards[i].ends_run, -i))
+    for i in order:
+        hit = _overlap_fraction_above(tree, boxes, hazards[i].buffered, spec.hazard_overlap, cell_area)
+        label[hit & (label != OUTSIDE)] = i
+
+    cost = np.ones(label.size)
+    for zone in site.rough:
+        hit = _centres_in(tree, centres, zone.geometry, boxes)
+        cost[hit] = np.maximum(cost[hit], zone.cost_factor)
+
+    drifts = site.drifts
+    members_bits = np.zeros(label.size, dtype=np.int64)
+    for j, zone in enumerate(drifts):
+        members_bits[_centres_in(tree, centres, zone.geometry, boxes)] |= np.int64(1) << j
+    uniq, drift_class = np.unique(members_bits, return_inverse=True)
+    if uniq[0] != 0:
+        uniq = np.concatenate([[0], uniq])
+        drift_class = drift_class + 1
+    members = tuple(tuple(j for j in range(len(drifts)) if (int(b) >> j) & 1) for b in uniq)
+
+    goal = np.zeros(label.size, dtype=bool)
+    if site.goal.geom_type == "Point":
+        goal_cells = [_cell_index(site.goal.x, site.goal.y, x0, y0, cell, n_rows, n_cols)]
+    else:
+        goal_cells = list(np.flatnonzero(_centres_in(tree, centres, site.goal, boxes)))
+        if not goal_cells:
+            p = site.goal.representative_point()
+            goal_cells = [_cell_index(p.x, p.y, x0, y0, cell, n_rows, n_cols)]
+    goal[goal_cells] = True
+
+    shape = (n_rows, n_cols)
+    start = _cell_index(site.start.x, site.start.y, x0, y0, cell, n_rows, n_cols)
+    warnings_out = []
+    if label[start] >= 0:
+        raise SiteError(
+            f"{site.source}: start {site.start_name!r} falls in a cell touched by hazard "
+            f"{hazards[label[start]].label} at --cell {cell:g} m; use a smaller --cell or move the start"
+        )
+    if label[start] == OUTSIDE:
+        raise SiteError(
+            f"{site.source}: start {site.start_name!r} falls in a cell not wholly inside the boundary "
+            f"at --cell {cell:g} m; use a smaller --cell or move the start inward"
+        )
+    goal_hazard = [int(label[g]) for g in goal_cells if label[g] >= 0 and hazards[label[g]].ends_run]
+    if goal_hazard and len(goal_hazard) == len(goal_cells):
+        raise SiteError(
+            f"{site.source}: goal {site.goal_name!r} falls in cells touched by hazard "
+            f"{hazards[goal_hazard[0]].label} at --cell {cell:g} m; use a smaller --cell or move the goal"
+        )
+    usable_goal = goal & ~((label >= 0) & np.isin(label, [h for h in range(len(hazards)) if hazards[h].ends_run]))
+    if not usable_goal.any():
+        raise SiteError(f"{site.source}: goal {site.goal_name!r} has no usable cell at --cell {cell:g} m")
+    goal = usable_goal
+    # A goal cell on the boundary edge still counts: the goal point itself is inside.
+    label[goal & (label == OUTSIDE)] = FREE
+
+    grid = Grid(
+        cell_m=float(cell), x0=float(x0), y0=float(y0), label=label.reshape(shape), goal=goal.reshape(shape),
+        start=tuple(int(v) for v in np.unravel_index(start, shape)), cost_factor=cost.reshape(shape),
+        drift_class=drift_class.reshape(shape).astype(np.int32), drift_members=members,
+        hazards=tuple(HazardInfo(h.name, h.ends_run, h.penalty_m, h.feature) for h in hazards),
+        drifts=tuple(DriftInfo(d.name, *d.push_vector_m, d.spread_m, d.chance, d.feature) for d in drifts),
+        warnings=tuple(warnings_out),
+    )
+    if not np.isfinite(cost_to_goal(grid, 8)[grid.start_index]):
+        raise SiteError(
+            f"{site.source}: no sequence of moves reaches goal {site.goal_name!r} from start "
+            f"{site.start_name!r} at --cell {cell:g} m (hazards or the boundary close every way)"
+        )
+    return grid
+
+
+def _cell_index(x, y, x0, y0, cell, n_rows, n_cols) -> int:
+    col = min(max(int(math.floor((x - x0) / cell)), 0), n_cols - 1)
+    row = min(max(int(math.floor((y - y0) / cell)), 0), n_rows - 1)
+    return row * n_cols + col
+
+
+def _candidates(tree, geometry) -> np.ndarray:
+    return tree.query(geometry, predicate="intersects")
+
+
+def _covered_fraction_at_least(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
+    out = np.zeros(len(boxes), dtype=bool)
+    idx = _candidates(tree, geometry)
+    if idx.size == 0:
+        return out
+    shapely.prepare(geometry)
+    if threshold >= 1.0:
+        out[idx] = shapely.covers(geometry, boxes[idx])
+    else:
+        area = shapely.area(shapely.intersection(boxes[idx], geometry))
+        out[idx] = area >= threshold * cell_area - 1e-9 * cell_area
+    return out
+
+
+def _overlap_fraction_above(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
+    out = np.zeros(len(boxes), dtype=bool)
+    idx = _candidates(tree, geometry)
+    if idx.size == 0:
+        return out
+    area = shapely.area(shapely.intersection(boxes[idx], geometry))
+    out[idx] = area > max(threshold * cell_area, 1e-9 * cell_area)
+    return out
+
+
+def _centres_in(tree, centres, geometry, boxes) -> np.ndarray:
+    out = np.zeros(len(centres), dtype=bool)
+    idx = _candidates(tree, geometry)
+    if idx.size:
+        shapely.prepare(geometry)
+        out[idx] = shapely.covers(geometry, centres[idx])
+    return out
+
+
+def grid_from_arrays(
+    label,
+    *,
+    goal,
+    start: tuple[int, int],
+    cell_m: float = 1.0,
+    cost_factor=None,
+    hazards: tuple[HazardInfo, ...] = (),
+    drifts: tuple[DriftInfo, ...] = (),
+    drift_class=None,
+    drift_members: tuple[tuple[int, ...], ...] = ((),),
+    x0: float = 0.0,
+    y0: float = 0.0,
+) -> Grid:
+    """Build a grid directly from arrays (reference grids in tests, synthetic benchmarks).
+
+    ``label`` uses ``OUTSIDE``/``FREE``/hazard index, row 0 south. ``goal`` is a bool
+    array of the same shape. Without ``drift_class`` every cell is class 0 (no drift).
+    """
+    label = np.asarray(label, dtype=np.int16)
+    if label.ndim != 2:
+        raise SettingsError(f"label must be 2-D, got shape {label.shape}")
+    goal = np.asarray(goal, dtype=bool)
+    if goal.shape != label.shape:
+        raise SettingsError(f"goal shape {goal.shape} differs from label shape {label.shape}")
+    if label.max(initial=-1) >= len(hazards):
+        raise SettingsError(f"label uses hazard {label.max()} but only {len(hazards)} hazards are given")
+    cost_factor = np.ones(label.shape) if cost_factor is None else np.asarray(cost_factor, dtype=float)
+    if drift_class is None:
+        drift_class = np.zeros(label.shape, dtype=np.int32)
+    drift_class = np.asarray(drift_class, dtype=np.int32)
+    if drift_class.max(initial=0) >= len(drift_members):
+        raise SettingsError("drift_class refers to a class with no entry in drift_members")
+    if not goal.any():
+        raise SettingsError("grid has no goal cell")
+    if label[start] == OUTSIDE or goal[start]:
+        raise SettingsError(f"start {start} is outside or on the goal")
+    return Grid(
+        cell_m=float(cell_m), x0=float(x0), y0=float(y0), label=label, goal=goal,
+        start=(int(start[0]), int(start[1])), cost_factor=cost_factor, drift_class=drift_class,
+        drift_members=tuple(tuple(m) for m in drift_members), hazards=tuple(hazards), drifts=tuple(drifts),
+    )
+
+
+# ----------------------------------------------------------------------------- shortest paths
+
+
+#: (d_row, d_col) of the eight king moves, clockwise from north; index = action.
+KING_MOVES = np.array([(1, 0), (1, 1), (0, 1), (-1, 1), (-1, 0), (-1, -1), (0, -1), (1, -1)], dtype=np.int64)
+#: (d_row, d_col) of the four rook moves, clockwise from north.
+ROOK_MOVES = KING_MOVES[::2].copy()
+
+
+def moves_for(n_actions: int) -> np.ndarray:
+    """The action table: row ``a`` is the (d_row, d_col) of action ``a``."""
+    if n_actions == 8:
+        return KING_MOVES
+    if n_actions == 4:
+        return ROOK_MOVES
+    raise SettingsError(f"--moves must be 4 or 8, got {n_actions}")
+
+
+def cost_to_goal(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_cost: bool = False) -> np.ndarray:
+    """Deterministic cheapest cost (metres-equivalent) from each cell to the goal.
+
+    Moves go between passable cells; a diagonal move also needs both cells it cuts
+    past to be passable (the swept path counts corner-cutting). Each move costs its
+    length times the cost factor of the cell it starts from (``unit_cost``: one cell
+    per move), plus ``hazard_penalty_m[h]`` on entering a cell of a non-ending
+    hazard ``h``. Returns ``(n_cells,)`` with ``inf`` where the goal is unreachable.
+    """
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import dijkstra
+
+    n_rows, n_cols = grid.shape
+    ok = grid.passable() | grid.goal
+    lab = grid.label
+    extra = np.zeros(grid.shape)
+    if hazard_penalty_m is not None:
+        for h, pen in enumerate(hazard_penalty_m):
+            if not grid.hazards[h].ends_run:
+                extra[lab == h] = pen
+    src_all, dst_all, w_all = [], [], []
+    rows, cols = np.indices(grid.shape)
+    for dr, dc in moves_for(n_actions):
+        r1, c1 = rows + dr, cols + dc
+        valid = (r1 >= 0) & (r1 < n_rows) & (c1 >= 0) & (c1 < n_cols) & ok & ~grid.goal
+        r1c, c1c = np.clip(r1, 0, n_rows - 1), np.clip(c1, 0, n_cols - 1)
+        valid &= ok[r1c, c1c]
+        if dr and dc:
+            valid &= ok[np.clip(rows + dr, 0, n_rows - 1), cols] & ok[rows, np.clip(cols + dc, 0, n_cols - 1)]
+        length = 1.0 if unit_cost else math.hypot(dr, dc)
+        w = length * grid.cell_m * grid.cost_factor + extra[r1c, c1c]
+        src_all.append(np.ravel_multi_index((rows[valid], cols[valid]), grid.shape))
+        dst_all.append(np.ravel_multi_index((r1c[valid], c1c[valid]), grid.shape))
+        w_all.append(w[valid])
+    n = grid.n_cells
+    src, dst, w = np.concatenate(src_all), np.concatenate(dst_all), np.concatenate(w_all)
+    # Reverse the edges so one multi-source run from the goal gives cost-to-goal.
+    graph = coo_matrix((np.maximum(w, 1e-12), (dst, src)), shape=(n, n)).tocsr()
+    goals = np.flatnonzero(grid.goal.ravel())
+    return dijkstra(graph, directed=True, indices=goals, min_only=True)

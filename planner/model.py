@@ -1,0 +1,579 @@
+"""The stochastic grid MDP: one transition table that every later stage reads.
+
+This stage owns the action encoding (``planner.grid.moves_for``), the dynamics
+(actuation slip, stall, drift, swept-path incidents, edges, goal) and the outcome
+table. The table is CSR-style: the outcomes of (state ``s``, action ``a``) are the
+entries ``offsets[s * n_actions + a] : offsets[s * n_actions + a + 1]`` of the flat
+arrays ``next_state``, ``prob``, ``reward``, ``event`` and ``crossed``. Learners sample
+from it and the exact methods build sparse matrices from it, so they cannot disagree.
+
+Event codes: ``EVENT_NONE`` (the run goes on), ``EVENT_GOAL``, ``EVENT_BOUNDARY`` and
+``EVENT_HAZARD + h`` for ending hazard ``h``. ``crossed`` is a bit mask of the
+non-ending hazards the move passed through (bit ``h`` for hazard ``h``).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numba
+import numpy as np
+
+from planner.errors import SettingsError
+from planner.grid import (
+    FREE,
+    OUTSIDE,
+    Grid,
+    cost_to_goal,
+    drift_tables,
+    estimate_model_bytes,
+    moves_for,
+)
+
+EVENT_NONE = 0
+EVENT_GOAL = 1
+EVENT_BOUNDARY = 2
+EVENT_HAZARD = 3
+
+#: Probabilities of each (state, action) must sum to 1 within this.
+PROB_TOLERANCE = 1e-9
+
+
+@dataclass(frozen=True)
+class Dynamics:
+    """How the vehicle executes a move.
+
+    Parameters
+    ----------
+    n_actions : 8 (king moves, default) or 4.
+    slip : probability the executed move is a neighbouring direction (±45° with 8
+        moves, ±90° with 4), split evenly between the two.
+    stall : probability the vehicle does not move at all (drift still acts).
+    drift_scale : multiplies every drift zone's push and spread (1 = as forecast).
+    edge : ``"boundary"`` (leaving the boundary ends the run as an incident) or
+        ``"wall"`` (the landing cell is clamped into the grid; if it is outside the
+        boundary the vehicle stays put).
+    step_cost : ``"length"`` (a move costs its length in metres, default) or
+        ``"move"`` (every move costs one cell side), times the start cell's factor.
+    hazard_penalty_m : penalty for hazards without their own ``penalty_m`` and for
+        boundary incidents; ``None`` derives it from the site (see
+        :func:`default_penalty_m`).
+    """
+
+    n_actions: int = 8
+    slip: float = 0.1
+    stall: float = 0.0
+    drift_scale: float = 1.0
+    edge: str = "boundary"
+    step_cost: str = "length"
+    hazard_penalty_m: float | None = None
+
+    def __post_init__(self):
+        moves_for(self.n_actions)
+        for name, value in (("--slip", self.slip), ("--stall", self.stall)):
+            if not (math.isfinite(value) and 0.0 <= value <= 1.0):
+                raise SettingsError(f"{name} must be in [0, 1], got {value}")
+        if self.slip + self.stall > 1.0 + 1e-12:
+            raise SettingsError(f"--slip + --stall must be at most 1, got {self.slip + self.stall:g}")
+        if not (math.isfinite(self.drift_scale) and self.drift_scale >= 0):
+            raise SettingsError(f"--drift-scale must be a finite number >= 0, got {self.drift_scale}")
+        if self.edge not in ("boundary", "wall"):
+            raise SettingsError(f"--edge must be 'boundary' or 'wall', got {self.edge!r}")
+        if self.step_cost not in ("length", "move"):
+            raise SettingsError(f"step_cost must be 'length' or 'move', got {self.step_cost!r}")
+        if self.hazard_penalty_m is not None and not (
+            math.isfinite(self.hazard_penalty_m) and self.hazard_penalty_m > 0
+        ):
+            raise SettingsError(f"--penalty must be a positive number of metres, got {self.hazard_penalty_m}")
+
+
+@dataclass(frozen=True)
+class Model:
+    """The outcome table of the grid MDP (see the module docstring for the layout).
+
+    Attributes
+    ----------
+    offsets : int64 ``(n_states * n_actions + 1,)``.
+    next_state : int32 ``(n_outcomes,)``; -1 for outcomes that end the run.
+    prob, reward : float64 ``(n_outcomes,)``; reward is minus the cost in metres-equivalent.
+    event : int16 ``(n_outcomes,)``.
+    crossed : int64 ``(n_outcomes,)``, bit mask of non-ending hazards crossed.
+    active : bool ``(n_states,)``, states the vehicle can be in (others have no outcomes).
+    move_m : float64 ``(n_actions,)``, commanded length of each action in metres.
+    event_names : name of each event code (``"none"``, ``"goal"``, ``"boundary"``, hazards).
+    penalty_m : float64 ``(n_hazards,)``, the resolved penalty of each hazard.
+    """
+
+    shape: tuple[int, int]
+    n_actions: int
+    dynamics: Dynamics
+    offsets: np.ndarray
+    next_state: np.ndarray
+    prob: np.ndarray
+    reward: np.ndarray
+    event: np.ndarray
+    crossed: np.ndarray
+    active: np.ndarray
+    goal: np.ndarray
+    start: int
+    move_m: np.ndarray
+    event_names: tuple[str, ...]
+    penalty_m: np.ndarray
+    boundary_penalty_m: float
+    warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def n_states(self) -> int:
+        return int(self.shape[0] * self.shape[1])
+
+    @property
+    def n_outcomes(self) -> int:
+        return int(self.prob.size)
+
+    @property
+    def nbytes(self) -> int:
+        arrays = (self.offsets, self.next_state, self.prob, self.reward, self.event, self.crossed)
+        return int(sum(a.nbytes for a in arrays))
+
+    def outcomes(self, state: int, action: int) -> dict[str, np.ndarray]:
+        """The outcome block of one (state, action), as a dict of arrays."""
+        k = state * self.n_actions + action
+        lo, hi = self.offsets[k], self.offsets[k + 1]
+        return {
+            "next_state": self.next_state[lo:hi], "prob": self.prob[lo:hi], "reward": self.reward[lo:hi],
+            "event": self.event[lo:hi], "crossed": self.crossed[lo:hi],
+        }
+
+
+def default_penalty_m(grid: Grid, n_actions: int = 8) -> float:
+    """The hazard penalty used when the site sets none, in metres-equivalent.
+
+    Twice the longest cheapest route to the goal from any cell that can reach it,
+    rounded up to a whole 10 m: ending the run is then always worse than going to the
+    goal by the longest sensible way, with a margin.
+    """
+    cost = cost_to_goal(grid, n_actions)
+    reachable = cost[np.isfinite(cost)]
+    longest = float(reachable.max()) if reachable.size else grid.cell_m
+    return float(10.0 * math.ceil(max(2.0 * longest, 10.0 * grid.cell_m) / 10.0))
+
+
+def resolve_penalties(grid: Grid, dynamics: Dynamics) -> tuple[np.ndarray, float, list[str]]:
+    """Per-hazard penalty and the boundary penalty, with warnings for unsafe values."""
+    derived = default_penalty_m(grid, dynamics.n_actions)
+    base = derived if dynamics.hazard_penalty_m is None else dynamics.hazard_penalty_m
+    penalties = np.array([base if h.penalty_m is None else h.penalty_m for h in grid.hazards], dtype=float)
+    notes = []
+    longest = derived / 2.0
+    if dynamics.hazard_penalty_m is not None and dynamics.hazard_penalty_m <= longest:
+        notes.append(
+            f"--penalty {dynamics.hazard_penalty_m:g} m is not above the longest route to the goal "
+            f"({longest:.0f} m): from some cells ending the run would be the cheapest plan"
+        )
+    for h, info in enumerate(grid.hazards):
+        if info.ends_run and info.penalty_m is not None and info.penalty_m <= longest:
+            notes.append(
+                f"hazard {info.name!r}: penalty_m {info.penalty_m:g} is not above the longest route to the goal "
+                f"({longest:.0f} m): from some cells ending the run there would be the cheapest plan"
+            )
+    return penalties, float(base), notes
+
+
+def max_outcomes_per_action(grid: Grid, dynamics: Dynamics) -> int:
+    """Upper bound on distinct outcomes of one (state, action) before merging."""
+    ptr = drift_tables(grid, dynamics.drift_scale)[0]
+    support = int(np.diff(ptr).max())
+    return (3 + (1 if dynamics.stall > 0 else 0)) * support
+
+
+def estimate_bytes(grid: Grid, dynamics: Dynamics) -> int:
+    """Upper estimate of the model's memory, computed before building it."""
+    ptr = drift_tables(grid, dynamics.drift_scale)[0]
+    support = np.diff(ptr)[grid.drift_class.ravel()]
+    active = grid.passable().ravel() & ~grid.goal.ravel()
+    n_dirs = 3 + (1 if dynamics.stall > 0 else 0)
+    mean_outcomes = float(support[active].mean()) * n_dirs if active.any() else 1.0
+    return estimate_model_bytes(int(active.sum()), dynamics.n_actions, mean_outcomes) + 8 * grid.n_cells * 8
+
+
+def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
+    """Build the outcome table of the grid MDP.
+
+    Every (state, action) of an active state gets the merged list of outcomes of:
+    executed direction (intended with ``1 - slip - stall``, each neighbour with
+    ``slip / 2``, none with ``stall``) times the drift distribution of the start cell;
+    the swept path from the start centre to the landing centre is traversed cell by
+    cell (supercover) and the first goal, ending hazard or boundary crossing decides.
+    """
+    moves = moves_for(dynamics.n_actions)
+    penalties, boundary_penalty, notes = resolve_penalties(grid, dynamics)
+    ptr, d_row, d_col, d_prob = drift_tables(grid, dynamics.drift_scale)
+    n_rows, n_cols = grid.shape
+    label = grid.label.ravel().astype(np.int64)
+    ends = np.array([h.ends_run for h in grid.hazards], dtype=np.bool_)
+    if ends.size == 0:
+        ends = np.zeros(1, dtype=np.bool_)
+        penalties_k = np.zeros(1)
+    else:
+        penalties_k = penalties
+    goal = grid.goal.ravel().astype(np.bool_)
+    active = grid.passable().ravel() & ~goal
+    unit = np.where(np.abs(moves).sum(axis=1) == 2, math.sqrt(2.0), 1.0)
+    move_m = unit * grid.cell_m
+    step_m = move_m if dynamics.step_cost == "length" else np.full(len(moves), grid.cell_m)
+    slip_half = dynamics.slip / 2.0
+    args = (
+        n_rows, n_cols, label, goal, active, grid.cost_factor.ravel().astype(np.float64),
+        ends, penalties_k.astype(np.float64), float(boundary_penalty),
+        moves[:, 0].copy(), moves[:, 1].copy(), step_m.astype(np.float64),
+        1.0 - dynamics.slip - dynamics.stall, slip_half, dynamics.stall, dynamics.edge == "wall",
+        grid.drift_class.ravel().astype(np.int64), ptr, d_row, d_col, d_prob, OUTSIDE,
+    )
+    counts = _count_outcomes(*args)
+    offsets = np.zeros(counts.size + 1, dtype=np.int64)
+    np.cumsum(counts, out=offsets[1:])
+    next_state, prob, reward, event, crossed = _fill_outcomes(offsets, *args)
+    sums = np.add.reduceat(prob, offsets[:-1][counts > 0]) if prob.size else np.zeros(0)
+    if sums.size and np.max(np.abs(sums - 1.0)) > PROB_TOLERANCE:
+        raise ArithmeticError(f"outcome probabilities sum to {sums.min()}..{sums.max()}, not 1 (a bug)")
+    names = ("none", "goal", "boundary") + tuple(h.name for h in grid.hazards)
+    return Model(
+        shape=grid.shape, n_actions=len(moves), dynamics=dynamics, offsets=offsets, next_state=next_state,
+        prob=prob, reward=reward, event=event, crossed=crossed, active=active, goal=goal,
+        start=grid.start_index, move_m=move_m, event_names=names, penalty_m=penalties,
+        boundary_penalty_m=boundary_penalty, warnings=tuple(notes),
+    )
+
+
+@dataclass(frozen=True)
+class Chain:
+    """The Markov chain a stochastic policy induces on a model.
+
+    Attributes
+    ----------
+    transient : csr ``(n_states, n_states)``, probability of moving to another state
+        with the run going on.
+    absorb : csr ``(n_states, n_events)``, probability of ending the run with each event
+        on the next move (column ``n_events`` when ``absorb_crossing`` is set: the run
+        crossed that non-ending hazard).
+    reward : float64 ``(n_states,)``, expected reward of the next move.
+    move_m : float64 ``(n_states,)``, expected commanded metres of the next move.
+    """
+
+    transient: object
+    absorb: object
+    reward: np.ndarray
+    move_m: np.ndarray
+
+
+def policy_chain(model: Model, action_probs: np.ndarray, *, absorb_crossing: int | None = None) -> Chain:
+    """Sparse matrices of the chain induced by a stochastic policy.
+
+    Parameters
+    ----------
+    action_probs : float ``(n_states, n_actions)``, rows of active states sum to 1.
+    absorb_crossing : index of a non-ending hazard to treat as absorbing (for the
+        probability of at least one entry); such outcomes go to the extra last column
+        of ``absorb``.
+    """
+    from scipy.sparse import csr_matrix
+
+    n_s, n_a = model.n_states, model.n_actions
+    action_probs = np.asarray(action_probs, dtype=float)
+    if action_probs.shape != (n_s, n_a):
+        raise SettingsError(f"action_probs must have shape {(n_s, n_a)}, got {action_probs.shape}")
+    row_sums = action_probs[model.active].sum(axis=1)
+    if row_sums.size and np.max(np.abs(row_sums - 1.0)) > PROB_TOLERANCE:
+        raise SettingsError("policy action probabilities do not sum to 1 on every active state")
+    counts = np.diff(model.offsets)
+    pair = np.repeat(np.arange(n_s * n_a), counts)
+    state = pair // n_a
+    weight = action_probs.ravel()[pair] * model.prob
+    n_events = len(model.event_names)
+    event = model.event.astype(np.int64)
+    if absorb_crossing is not None:
+        hit = (event == EVENT_NONE) & ((model.crossed >> absorb_crossing) & 1).astype(bool)
+        event = np.where(hit, n_events, event)
+        n_events += 1
+    going = event == EVENT_NONE
+    transient = csr_matrix((weight[going], (state[going], model.next_state[going])), shape=(n_s, n_s))
+    absorb = csr_matrix((weight[~going], (state[~going], event[~going])), shape=(n_s, n_events))
+    reward = np.bincount(state, weights=weight * model.reward, minlength=n_s)
+    move_m = (action_probs * model.move_m[None, :]).sum(axis=1) * model.active
+    transient.sum_duplicates()
+    absorb.sum_duplicates()
+    return Chain(transient=transient, absorb=absorb, reward=reward, move_m=move_m)
+
+
+def epsilon_greedy(greedy_action: np.ndarray, n_actions: int, epsilon: float) -> np.ndarray:
+    """Action probabilities of executing ``greedy_action`` with noise ``epsilon``.
+
+    Greedy with probability ``1 - epsilon``, uniform over all actions otherwise.
+    """
+    if not (math.isfinite(epsilon) and 0.0 <= epsilon <= 1.0):
+        raise SettingsError(f"--noise must be in [0, 1], got {epsilon}")
+    greedy_action = np.asarray(greedy_action, dtype=np.int64)
+    probs = np.full((greedy_action.size, n_actions), epsilon / n_actions)
+    probs[np.arange(greedy_action.size), greedy_action] += 1.0 - epsilon
+    return probs
+
+
+def reaches_absorption(chain: Chain, active: np.ndarray) -> np.ndarray:
+    """Which active states end the run with positive probability (bool ``(n_states,)``).
+
+    An active state that cannot reach any absorbing outcome is trapped: the policy
+    loops forever from it. Found by reachability on the reversed transient graph.
+    """
+    from scipy.sparse.csgraph import breadth_first_order
+
+    n = chain.transient.shape[0]
+    exits = np.asarray(chain.absorb.sum(axis=1)).ravel() > 0
+    reached = np.zeros(n, dtype=bool)
+    sources = np.flatnonzero(exits & active)
+    if sources.size == 0:
+        return reached
+    # Add a super-source linked to every exit state, then walk the reversed graph.
+    from scipy.sparse import bmat, csr_matrix
+
+    reverse = (chain.transient.T > 0).astype(np.int8).tocsr()
+    link = csr_matrix((np.ones(sources.size, dtype=np.int8), (np.zeros(sources.size, dtype=np.int64), sources)),
+                      shape=(1, n))
+    graph = bmat([[csr_matrix((1, 1), dtype=np.int8), link], [None, reverse]], format="csr")
+    order = breadth_first_order(graph, 0, directed=True, return_predecessors=False)
+    reached[order[order > 0] - 1] = True
+    return reached & active
+
+
+def solve_transient(chain: Chain, rhs: np.ndarray, mask: np.ndarray, *, transpose: bool = False,
+                    tol: float = 1e-8) -> tuple[np.ndarray, float]:
+    """Solve ``(I - T) x = rhs`` (or with ``T`` transposed) on the states in ``mask``.
+
+    ``T`` is ``chain.transient``; states outside ``mask`` are held at zero. ``mask``
+    must contain only states that reach absorption (see :func:`reaches_absorption`),
+    so the system is non-singular. Returns ``x`` (``(n_states,)`` or
+    ``(n_states, k)``) and the largest relative residual.
+
+    Raises
+    ------
+    SolverError
+        When the residual is above ``tol`` or the answer is not finite.
+    """
+    from scipy.sparse import identity
+    from scipy.sparse.linalg import spsolve
+
+    from planner.errors import SolverError
+
+    idx = np.flatnonzero(mask)
+    sub = chain.transient[idx][:, idx]
+    if transpose:
+        sub = sub.T
+    system = (identity(idx.size, format="csc") - sub.tocsc()).tocsc()
+    rhs = np.asarray(rhs, dtype=float)
+    b = rhs[idx]
+    x_sub = spsolve(system, b) if idx.size else np.zeros_like(b)
+    x_sub = np.asarray(x_sub, dtype=float).reshape(b.shape)
+    residual = float(np.max(np.abs(system @ x_sub - b), initial=0.0) / max(1.0, float(np.max(np.abs(b), initial=0.0))))
+    if not np.all(np.isfinite(x_sub)) or residual > tol:
+        raise SolverError(f"absorbing-chain solve did not converge (relative residual {residual:.2e} > {tol:.0e})")
+    x = np.zeros((rhs.shape[0],) + rhs.shape[1:])
+    x[idx] = x_sub
+    return x, residual
+
+
+# ----------------------------------------------------------------------------- kernels
+
+
+@numba.njit(cache=True)
+def _trace(r0, c0, dr, dc, n_rows, n_cols, label, goal, ends, wall, outside, path_r, path_c):
+    """Supercover traversal from cell (r0, c0) to (r0 + dr, c0 + dc).
+
+    Writes the cells entered, in order, into ``path_r``/``path_c`` (the start cell
+    excluded; both side cells when the segment passes exactly through a corner) and
+    returns how many. Cells off the grid are written as they are (callers check).
+    """
+    n = 0
+    nx, ny = abs(dc), abs(dr)
+    sx = 1 if dc > 0 else -1
+    sy = 1 if dr > 0 else -1
+    x, y = c0, r0
+    ix, iy = 0, 0
+    while ix < nx or iy < ny:
+        decision = (1 + 2 * ix) * ny - (1 + 2 * iy) * nx
+        if decision == 0:
+            path_r[n] = y
+            path_c[n] = x + sx
+            n += 1
+            path_r[n] = y + sy
+            path_c[n] = x
+            n += 1
+            x += sx
+            y += sy
+            ix += 1
+            iy += 1
+        elif decision < 0:
+            x += sx
+            ix += 1
+        else:
+            y += sy
+            iy += 1
+        path_r[n] = y
+        path_c[n] = x
+        n += 1
+    return n
+
+
+@numba.njit(cache=True)
+def _outcome(s, dr, dc, n_rows, n_cols, label, goal, ends, wall, outside, path_r, path_c):
+    """Where a move from state ``s`` displaced by (dr, dc) cells ends.
+
+    Returns (next_state, event, crossed mask, ending hazard or -1).
+    """
+    r0 = s // n_cols
+    c0 = s - r0 * n_cols
+    r1 = r0 + dr
+    c1 = c0 + dc
+    if wall:
+        r1 = min(max(r1, 0), n_rows - 1)
+        c1 = min(max(c1, 0), n_cols - 1)
+        if label[r1 * n_cols + c1] == outside:
+            return s, 0, np.int64(0), -1
+    if r1 == r0 and c1 == c0:
+        return s, 0, np.int64(0), -1
+    n = _trace(r0, c0, r1 - r0, c1 - c0, n_rows, n_cols, label, goal, ends, wall, outside, path_r, path_c)
+    crossed = np.int64(0)
+    for i in range(n):
+        r = path_r[i]
+        c = path_c[i]
+        if r < 0 or r >= n_rows or c < 0 or c >= n_cols:
+            if wall:
+                return s, 0, np.int64(0), -1
+            return -1, 2, crossed, -1
+        cell = r * n_cols + c
+        lab = label[cell]
+        if lab == outside:
+            if wall:
+                return s, 0, np.int64(0), -1
+            return -1, 2, crossed, -1
+        if goal[cell]:
+            return -1, 1, crossed, -1
+        if lab >= 0:
+            if ends[lab]:
+                return -1, 3 + lab, crossed, lab
+            crossed |= np.int64(1) << lab
+    return r1 * n_cols + c1, 0, crossed, -1
+
+
+@numba.njit(cache=True)
+def _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
+           move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
+           d_prob, outside, path_r, path_c, out_next, out_prob, out_reward, out_event, out_crossed):
+    """Merged outcomes of (s, a) into the ``out_*`` scratch arrays; returns the count."""
+    n_a = move_dr.size
+    k = 0
+    cls = drift_class[s]
+    base = -step_m[a] * cost_factor[s]
+    for j in range(4):
+        if j == 0:
+            p_dir, mdr, mdc = p_main, move_dr[a], move_dc[a]
+        elif j == 1:
+            p_dir, mdr, mdc = p_side, move_dr[(a + 1) % n_a], move_dc[(a + 1) % n_a]
+        elif j == 2:
+            p_dir, mdr, mdc = p_side, move_dr[(a - 1) % n_a], move_dc[(a - 1) % n_a]
+        else:
+            p_dir, mdr, mdc = p_stall, 0, 0
+        if p_dir <= 0.0:
+            continue
+        for q in range(d_ptr[cls], d_ptr[cls + 1]):
+            p = p_dir * d_prob[q]
+            nxt, ev, crossed, haz = _outcome(s, mdr + d_row[q], mdc + d_col[q], n_rows, n_cols, label, goal,
+                                             ends, wall, outside, path_r, path_c)
+            found = -1
+            for i in range(k):
+                if out_next[i] == nxt and out_event[i] == ev and out_crossed[i] == crossed:
+                    found = i
+                    break
+            if found >= 0:
+                out_prob[found] += p
+                continue
+            reward = base
+            for h in range(penalty.size):
+                if (crossed >> h) & 1:
+                    reward -= penalty[h]
+            if ev == 2:
+                reward -= boundary_penalty
+            elif ev >= 3:
+                reward -= penalty[haz]
+            out_next[k] = nxt
+            out_prob[k] = p
+            out_reward[k] = reward
+            out_event[k] = ev
+            out_crossed[k] = crossed
+            k += 1
+    return k
+
+
+@numba.njit(cache=True)
+def _scratch(d_row, d_col, n_rows, n_cols):
+    span = 4
+    for q in range(d_row.size):
+        span = max(span, abs(d_row[q]) + abs(d_col[q]) + 4)
+    max_out = 4 * (d_row.size + 1)
+    return (np.empty(2 * span + 4, np.int64), np.empty(2 * span + 4, np.int64), np.empty(max_out, np.int64),
+            np.empty(max_out, np.float64), np.empty(max_out, np.float64), np.empty(max_out, np.int64),
+            np.empty(max_out, np.int64))
+
+
+@numba.njit(cache=True)
+def _count_outcomes(n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
+                    move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
+                    d_col, d_prob, outside):
+    n_s = n_rows * n_cols
+    n_a = move_dr.size
+    counts = np.zeros(n_s * n_a, np.int64)
+    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_row, d_col, n_rows, n_cols)
+    for s in range(n_s):
+        if not active[s]:
+            continue
+        for a in range(n_a):
+            counts[s * n_a + a] = _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty,
+                                         boundary_penalty, move_dr, move_dc, step_m, p_main, p_side, p_stall,
+                                         wall, drift_class, d_ptr, d_row, d_col, d_prob, outside, path_r,
+                                         path_c, o_next, o_prob, o_reward, o_event, o_crossed)
+    return counts
+
+
+@numba.njit(cache=True)
+def _fill_outcomes(offsets, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
+                   move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
+                   d_prob, outside):
+    n_s = n_rows * n_cols
+    n_a = move_dr.size
+    total = offsets[-1]
+    next_state = np.empty(total, np.int32)
+    prob = np.empty(total, np.float64)
+    reward = np.empty(total, np.float64)
+    event = np.empty(total, np.int16)
+    crossed = np.empty(total, np.int64)
+    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_row, d_col, n_rows, n_cols)
+    for s in range(n_s):
+        if not active[s]:
+            continue
+        for a in range(n_a):
+            k = _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
+                       move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
+                       d_col, d_prob, outside, path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed)
+            lo = offsets[s * n_a + a]
+            for i in range(k):
+                next_state[lo + i] = o_next[i]
+                prob[lo + i] = o_prob[i]
+                reward[lo + i] = o_reward[i]
+                event[lo + i] = o_event[i]
+                crossed[lo + i] = o_crossed[i]
+    return next_state, prob, reward, event, crossed
+
+
+__all__ = [
+    "EVENT_BOUNDARY", "EVENT_GOAL", "EVENT_HAZARD", "EVENT_NONE", "FREE", "Chain", "Dynamics", "Model",
+    "build_model", "default_penalty_m", "epsilon_greedy", "estimate_bytes", "policy_chain",
+]

@@ -1,0 +1,597 @@
+"""Site loading: a GeoJSON site file becomes a validated :class:`Site` in metres.
+
+This stage owns the site-file schema (roles and their properties), every rule the
+schema imposes, and the working frame (a local transverse Mercator centred on the
+boundary, or a projected metric CRS the user names). Nothing is repaired silently:
+an invalid polygon is an error naming the feature unless ``fix=True``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import shapely
+from shapely.geometry import MultiPolygon, Point, Polygon
+
+from planner.errors import SettingsError, SiteError, SiteWarning
+
+#: Largest site file read, in bytes, unless the caller raises it.
+DEFAULT_MAX_BYTES = 50_000_000
+#: Largest number of vertices accepted in one feature.
+MAX_VERTICES_PER_FEATURE = 200_000
+
+ROLES = ("boundary", "hazard", "rough", "drift", "start", "goal")
+ZONE_ROLES = ("hazard", "rough", "drift")
+
+_POLYGONAL = ("Polygon", "MultiPolygon")
+_GEOMETRY_TYPES = {
+    "boundary": _POLYGONAL,
+    "hazard": _POLYGONAL,
+    "rough": _POLYGONAL,
+    "drift": _POLYGONAL,
+    "start": ("Point",),
+    "goal": ("Point", "Polygon"),
+}
+_PROPERTIES = {
+    "boundary": {"role", "name"},
+    "hazard": {"role", "name", "ends_run", "penalty_m", "buffer_m"},
+    "rough": {"role", "name", "cost_factor"},
+    "drift": {"role", "name", "toward_deg", "from_deg", "push_m", "spread_m", "chance"},
+    "start": {"role", "name"},
+    "goal": {"role", "name"},
+}
+
+
+@dataclass(frozen=True)
+class Zone:
+    """One hazard, rough or drift zone, in the working frame (metres).
+
+    ``geometry`` is the true polygon; ``buffered`` adds ``buffer_m`` (hazards only).
+    ``toward_deg`` is always the direction the drift pushes toward (clockwise from
+    north), whichever convention the file used.
+    """
+
+    feature: int
+    name: str
+    role: str
+    geometry: Polygon | MultiPolygon
+    buffered: Polygon | MultiPolygon
+    ends_run: bool = True
+    penalty_m: float | None = None
+    buffer_m: float = 0.0
+    cost_factor: float = 1.0
+    toward_deg: float = 0.0
+    push_m: float = 0.0
+    spread_m: float = 0.0
+    chance: float = 1.0
+
+    @property
+    def label(self) -> str:
+        """How messages name this zone: ``feature 3 ('North pond')``."""
+        return f"feature {self.feature} ({self.name!r})"
+
+    @property
+    def push_vector_m(self) -> tuple[float, float]:
+        """Push per move as (east, north) metres, when the push acts (``chance`` aside)."""
+        rad = math.radians(self.toward_deg)
+        return (self.push_m * math.sin(rad), self.push_m * math.cos(rad))
+
+
+@dataclass(frozen=True)
+class Frame:
+    """The working frame: pyproj CRS text plus forward/inverse transforms.
+
+    ``kind`` is ``"local-tmerc"`` for the automatic frame or ``"named"`` for a CRS
+    the user gave.
+    """
+
+    crs: str
+    kind: str
+    lon_0: float
+    lat_0: float
+
+    def _transformer(self, inverse: bool):
+        from pyproj import CRS, Transformer
+
+        src, dst = CRS.from_epsg(4326), CRS.from_user_input(self.crs)
+        if inverse:
+            src, dst = dst, src
+        return Transformer.from_crs(src, dst, always_xy=True)
+
+    def to_xy(self, lon, lat) -> tuple[np.ndarray, np.ndarray]:
+        """Project lon/lat degrees to east/north metres (arrays in, arrays out)."""
+        x, y = self._transformer(False).transform(np.asarray(lon, float), np.asarray(lat, float))
+        x, y = np.asarray(x, float), np.asarray(y, float)
+        if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+            raise SiteError(f"coordinates cannot be projected into the working frame {self.crs}")
+        return x, y
+
+    def to_lonlat(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+        """Unproject east/north metres to lon/lat degrees (arrays in, arrays out)."""
+        lon, lat = self._transformer(True).transform(np.asarray(x, float), np.asarray(y, float))
+        lon, lat = np.asarray(lon, float), np.asarray(lat, float)
+        if not (np.all(np.isfinite(lon)) and np.all(np.isfinite(lat))):
+            raise SiteError("coordinates cannot be taken back to lon/lat")
+        return lon, lat
+
+    def scale_distortion(self, lon, lat) -> float:
+        """Largest |k - 1| of the frame's point scale over the given points."""
+        from pyproj import CRS, Proj
+
+        proj = Proj(CRS.from_user_input(self.crs))
+        factors = proj.get_factors(np.asarray(lon, float), np.asarray(lat, float))
+        k = np.concatenate([np.atleast_1d(factors.meridional_scale), np.atleast_1d(factors.parallel_scale)])
+        return float(np.max(np.abs(k - 1.0)))
+
+
+@dataclass(frozen=True)
+class Site:
+    """A validated site in the working frame.
+
+    Attributes
+    ----------
+    boundary : shapely Polygon or MultiPolygon, metres.
+    start : shapely Point, metres.
+    goal : shapely Point or Polygon, metres.
+    zones : hazards, rough and drift zones in file order.
+    scale_distortion : largest |k - 1| of the frame over the boundary.
+    """
+
+    name: str
+    source: str
+    sha256: str
+    frame: Frame
+    boundary: Polygon | MultiPolygon
+    start: Point
+    goal: Point | Polygon
+    start_name: str
+    goal_name: str
+    zones: tuple[Zone, ...]
+    scale_distortion: float
+    warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def hazards(self) -> tuple[Zone, ...]:
+        return tuple(z for z in self.zones if z.role == "hazard")
+
+    @property
+    def rough(self) -> tuple[Zone, ...]:
+        return tuple(z for z in self.zones if z.role == "rough")
+
+    @property
+    def drifts(self) -> tuple[Zone, ...]:
+        return tuple(z for z in self.zones if z.role == "drift")
+
+    @property
+    def extent_m(self) -> tuple[float, float]:
+        """Width (east) and height (north) of the boundary's bounding box, metres."""
+        x0, y0, x1, y1 = self.boundary.bounds
+        return (x1 - x0, y1 - y0)
+
+
+# ----------------------------------------------------------------------------- reading
+
+
+def read_site_text(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> tuple[Any, str]:
+    """Read and parse a site file, refusing it by size before parsing.
+
+    Returns the parsed JSON and the SHA-256 of the file's bytes.
+    """
+    path = Path(path)
+    if max_bytes <= 0:
+        raise SettingsError(f"--max-bytes must be positive, got {max_bytes}")
+    try:
+        size = path.stat().st_size
+    except OSError as err:
+        raise SiteError(f"{path}: cannot read the site file ({err.strerror or err})") from err
+    if not path.is_file():
+        raise SiteError(f"{path}: not a file")
+    if size > max_bytes:
+        raise SiteError(
+            f"{path}: file is {size:,} bytes, over the {max_bytes:,}-byte limit (raise it with --max-bytes)"
+        )
+    data = path.read_bytes()
+    digest = hashlib.sha256(data).hexdigest()
+    if not data.strip():
+        raise SiteError(f"{path}: file is empty, expected a GeoJSON FeatureCollection")
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        raise SiteError(f"{path}: not a text file (byte {err.start} is not UTF-8); expected GeoJSON") from err
+    try:
+        obj = json.loads(text, parse_constant=_refuse_constant)
+    except RecursionError as err:
+        raise SiteError(f"{path}: JSON is nested too deeply to be a site file") from err
+    except json.JSONDecodeError as err:
+        raise SiteError(f"{path}: not valid JSON (line {err.lineno}, column {err.colno}: {err.msg})") from err
+    except ValueError as err:
+        raise SiteError(f"{path}: {err}") from err
+    return obj, digest
+
+
+def _refuse_constant(name: str):
+    raise ValueError(f"JSON contains {name}, which GeoJSON does not allow")
+
+
+def load_site(
+    path: str | Path,
+    *,
+    crs: str | None = None,
+    fix: bool = False,
+    max_bytes: int = DEFAULT_MAX_BYTES,
+) -> Site:
+    """Load and validate a site file.
+
+    Parameters
+    ----------
+    path : site file (GeoJSON FeatureCollection, WGS 84 lon/lat).
+    crs : a projected metric CRS to work in (``"EPSG:32631"``); default is a local
+        transverse Mercator centred on the boundary.
+    fix : repair invalid polygons with ``shapely.make_valid`` (with a warning).
+    max_bytes : refuse larger files before parsing.
+
+    Raises
+    ------
+    SiteError
+        Naming the feature (index and name) and the rule it breaks.
+    """
+    obj, digest = read_site_text(path, max_bytes=max_bytes)
+    return site_from_geojson(obj, crs=crs, fix=fix, source=str(path), sha256=digest)
+
+
+def site_from_geojson(
+    obj: Any,
+    *,
+    crs: str | None = None,
+    fix: bool = False,
+    source: str = "<memory>",
+    sha256: str | None = None,
+) -> Site:
+    """Validate a parsed GeoJSON object and build the :class:`Site`.
+
+    ``source`` only names the input in messages; ``sha256`` defaults to the hash of
+    the canonical JSON text of ``obj``.
+    """
+    if sha256 is None:
+        try:
+            canon = json.dumps(obj, sort_keys=True, separators=(",", ":"))
+        except (TypeError, ValueError) as err:
+            raise SiteError(f"{source}: not JSON-serialisable ({err})") from err
+        sha256 = hashlib.sha256(canon.encode()).hexdigest()
+    try:
+        return _build_site(obj, crs=crs, fix=fix, source=source, sha256=sha256)
+    except RecursionError as err:
+        raise SiteError(f"{source}: coordinates are nested too deeply") from err
+
+
+def _build_site(obj, *, crs, fix, source, sha256) -> Site:
+    if not isinstance(obj, dict) or obj.get("type") != "FeatureCollection":
+        kind = obj.get("type") if isinstance(obj, dict) else type(obj).__name__
+        raise SiteError(f"{source}: not a GeoJSON FeatureCollection (found {kind!r})")
+    if "crs" in obj:
+        raise SiteError(
+            f"{source}: has a 'crs' member; RFC 7946 GeoJSON is always WGS 84 lon/lat, "
+            "so remove it (use --crs to choose the working frame)"
+        )
+    features = obj.get("features")
+    if not isinstance(features, list):
+        raise SiteError(f"{source}: 'features' must be a list")
+
+    parsed = [_parse_feature(i, f, source) for i, f in enumerate(features)]
+
+    by_role: dict[str, list] = {r: [] for r in ROLES}
+    for item in parsed:
+        by_role[item["role"]].append(item)
+    for role in ("boundary", "start", "goal"):
+        found = by_role[role]
+        if not found:
+            raise SiteError(f"{source}: no feature with role '{role}' (exactly one is required)")
+        if len(found) > 1:
+            a, b = found[0], found[1]
+            raise SiteError(
+                f"{source}: {len(found)} features with role '{role}' "
+                f"({a['label']} and {b['label']}); exactly one is required"
+            )
+    seen: dict[str, str] = {}
+    for item in parsed:
+        if item["role"] in ZONE_ROLES:
+            if item["name"] in seen:
+                raise SiteError(
+                    f"{source}: {item['label']}: zone name {item['name']!r} is already used by {seen[item['name']]}"
+                )
+            seen[item["name"]] = item["label"]
+
+    boundary_item = by_role["boundary"][0]
+    lon_b, lat_b = _all_lonlat(boundary_item["geometry"])
+    if lon_b.max() - lon_b.min() > 180.0:
+        raise SiteError(
+            f"{source}: {boundary_item['label']}: boundary spans more than 180 degrees of longitude "
+            "(it straddles the antimeridian); split the site or name a --crs that covers it"
+        )
+    if np.any(np.abs(lat_b) >= 89.5):
+        raise SiteError(
+            f"{source}: {boundary_item['label']}: boundary reaches latitude 89.5 or beyond; "
+            "sites at a pole are not supported"
+        )
+    frame = _make_frame(crs, lon_b, lat_b)
+
+    site_warnings: list[str] = []
+    geoms = {}
+    for item in parsed:
+        geoms[item["index"]] = _project_geometry(item, frame, fix, source, site_warnings)
+
+    boundary = geoms[boundary_item["index"]]
+    start_item, goal_item = by_role["start"][0], by_role["goal"][0]
+    start, goal = geoms[start_item["index"]], geoms[goal_item["index"]]
+
+    zones = []
+    for item in parsed:
+        if item["role"] not in ZONE_ROLES:
+            continue
+        geom = geoms[item["index"]]
+        props = item["props"]
+        buffered = geom.buffer(props.get("buffer_m", 0.0)) if props.get("buffer_m", 0.0) > 0 else geom
+        if not boundary.intersects(geom):
+            site_warnings.append(f"{item['label']}: lies wholly outside the boundary and has no effect")
+        zones.append(Zone(feature=item["index"], name=item["name"], role=item["role"], geometry=geom,
+                          buffered=buffered, **props))
+
+    if not boundary.covers(start):
+        raise SiteError(f"{source}: {start_item['label']}: start lies outside the boundary")
+    goal_probe = goal if goal.geom_type == "Point" else goal.representative_point()
+    if not boundary.intersects(goal):
+        raise SiteError(f"{source}: {goal_item['label']}: goal lies outside the boundary")
+    if start.equals(goal) or (goal.geom_type != "Point" and goal.covers(start)):
+        raise SiteError(f"{source}: {start_item['label']}: start is at the goal; nothing to plan")
+    for z in zones:
+        if z.role != "hazard":
+            continue
+        if z.geometry.covers(start):
+            raise SiteError(f"{source}: {start_item['label']}: start lies inside hazard {z.label}")
+        if z.buffered.covers(start):
+            raise SiteError(
+                f"{source}: {start_item['label']}: start lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
+            )
+        if z.geometry.covers(goal_probe) or (goal.geom_type == "Point" and z.buffered.covers(goal)):
+            raise SiteError(f"{source}: {goal_item['label']}: goal lies inside hazard {z.label}")
+
+    hazards = [z for z in zones if z.role == "hazard"]
+    for i, a in enumerate(hazards):
+        for b in hazards[i + 1:]:
+            if a.ends_run != b.ends_run and a.buffered.intersection(b.buffered).area > 0:
+                site_warnings.append(
+                    f"{a.label} and {b.label} overlap with different ends_run; "
+                    "cells in the overlap end the run"
+                )
+    drifts = [z for z in zones if z.role == "drift"]
+    for i, a in enumerate(drifts):
+        for b in drifts[i + 1:]:
+            if a.geometry.intersection(b.geometry).area > 0:
+                site_warnings.append(f"drift zones {a.label} and {b.label} overlap; their pushes add as vectors")
+
+    distortion = frame.scale_distortion(lon_b, lat_b)
+    name = boundary_item["name"]
+    for message in site_warnings:
+        warnings.warn(message, SiteWarning, stacklevel=2)
+    return Site(
+        name=name, source=source, sha256=sha256, frame=frame, boundary=boundary, start=start, goal=goal,
+        start_name=start_item["name"], goal_name=goal_item["name"], zones=tuple(zones),
+        scale_distortion=distortion, warnings=tuple(site_warnings),
+    )
+
+
+# ----------------------------------------------------------------------------- features
+
+
+def _parse_feature(index: int, feature: Any, source: str) -> dict:
+    """Check one feature's role, properties and geometry shape (not yet projected)."""
+    where = f"{source}: feature {index}"
+    if not isinstance(feature, dict) or feature.get("type") != "Feature":
+        raise SiteError(f"{where}: not a GeoJSON Feature")
+    props = feature.get("properties")
+    if not isinstance(props, dict):
+        raise SiteError(f"{where}: has no 'properties' object (every feature needs a 'role')")
+    raw_name = props.get("name")
+    name = raw_name if isinstance(raw_name, str) and raw_name.strip() else f"#{index}"
+    label = f"feature {index} ({name!r})"
+    where = f"{source}: {label}"
+    role = props.get("role")
+    if role not in ROLES:
+        raise SiteError(f"{where}: unknown role {role!r}; expected one of {', '.join(ROLES)}")
+    if raw_name is not None and not isinstance(raw_name, str):
+        raise SiteError(f"{where}: 'name' must be a string")
+    unknown = sorted(set(props) - _PROPERTIES[role])
+    if unknown:
+        allowed = ", ".join(sorted(_PROPERTIES[role] - {"role"}))
+        raise SiteError(f"{where}: unknown property {unknown[0]!r} for role '{role}' (allowed: {allowed})")
+    geometry = feature.get("geometry")
+    if not isinstance(geometry, dict) or geometry.get("type") not in _GEOMETRY_TYPES[role]:
+        found = geometry.get("type") if isinstance(geometry, dict) else geometry
+        raise SiteError(
+            f"{where}: role '{role}' needs geometry {' or '.join(_GEOMETRY_TYPES[role])}, found {found!r}"
+        )
+    _check_coordinates(geometry, where)
+    return {
+        "index": index, "name": name, "label": label, "role": role, "geometry": geometry,
+        "props": _zone_properties(role, props, where),
+    }
+
+
+def _number(props: dict, key: str, where: str, *, default=None, low=None, high=None,
+            low_open=False) -> float | None:
+    value = props.get(key, default)
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise SiteError(f"{where}: '{key}' must be a finite number, got {value!r}")
+    value = float(value)
+    if low is not None and (value < low or (low_open and value == low)):
+        rule = f"> {low:g}" if low_open else f">= {low:g}"
+        raise SiteError(f"{where}: '{key}' must be {rule}, got {value:g}")
+    if high is not None and value > high:
+        raise SiteError(f"{where}: '{key}' must be <= {high:g}, got {value:g}")
+    return value
+
+
+def _zone_properties(role: str, props: dict, where: str) -> dict:
+    if role == "hazard":
+        ends_run = props.get("ends_run", True)
+        if not isinstance(ends_run, bool):
+            raise SiteError(f"{where}: 'ends_run' must be true or false, got {ends_run!r}")
+        return {
+            "ends_run": ends_run,
+            "penalty_m": _number(props, "penalty_m", where, low=0.0),
+            "buffer_m": _number(props, "buffer_m", where, default=0.0, low=0.0),
+        }
+    if role == "rough":
+        if "cost_factor" not in props:
+            raise SiteError(f"{where}: rough zone needs 'cost_factor' (>= 1)")
+        return {"cost_factor": _number(props, "cost_factor", where, low=1.0)}
+    if role == "drift":
+        has_to, has_from = "toward_deg" in props, "from_deg" in props
+        if has_to == has_from:
+            which = "both" if has_to else "neither"
+            raise SiteError(f"{where}: drift zone has {which} of 'toward_deg'/'from_deg'; give exactly one")
+        if "push_m" not in props:
+            raise SiteError(f"{where}: drift zone needs 'push_m' (>= 0, metres per move)")
+        if has_to:
+            toward = _number(props, "toward_deg", where, low=0.0, high=360.0)
+        else:
+            toward = (_number(props, "from_deg", where, low=0.0, high=360.0) + 180.0) % 360.0
+        return {
+            "toward_deg": toward % 360.0,
+            "push_m": _number(props, "push_m", where, low=0.0),
+            "spread_m": _number(props, "spread_m", where, default=0.0, low=0.0),
+            "chance": _number(props, "chance", where, default=1.0, low=0.0, high=1.0),
+        }
+    return {}
+
+
+def _check_coordinates(geometry: dict, where: str) -> None:
+    """Every position is 2 or 3 finite numbers with lon in [-180, 180], lat in [-90, 90]."""
+    coords = geometry.get("coordinates")
+    kind = geometry["type"]
+    depth = {"Point": 0, "Polygon": 2, "MultiPolygon": 3}[kind]
+    count = [0]
+
+    def walk(node, level):
+        if level == 0:
+            _check_position(node, where)
+            count[0] += 1
+            if count[0] > MAX_VERTICES_PER_FEATURE:
+                raise SiteError(
+                    f"{where}: more than {MAX_VERTICES_PER_FEATURE:,} vertices; simplify the outline "
+                    "(a site this detailed is finer than any grid cell)"
+                )
+            return
+        if not isinstance(node, list) or not node:
+            raise SiteError(f"{where}: {kind} coordinates are malformed (empty or not nested {depth} deep)")
+        for child in node:
+            walk(child, level - 1)
+
+    walk(coords, depth)
+    rings = [coords] if kind == "Polygon" else (coords if kind == "MultiPolygon" else [])
+    for polygon in rings:
+        for ring in polygon:
+            if len(ring) < 4:
+                raise SiteError(f"{where}: a polygon ring has {len(ring)} positions; RFC 7946 needs at least 4")
+            if list(ring[0][:2]) != list(ring[-1][:2]):
+                raise SiteError(f"{where}: a polygon ring is not closed (first and last positions differ)")
+
+
+def _check_position(pos, where: str) -> None:
+    if not isinstance(pos, list) or not 2 <= len(pos) <= 3:
+        raise SiteError(f"{where}: a position must be [lon, lat] or [lon, lat, alt], got {pos!r:.60}")
+    for v in pos:
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            raise SiteError(f"{where}: a coordinate is not a number: {v!r:.40}")
+        if not math.isfinite(v):
+            raise SiteError(f"{where}: a coordinate is not finite ({v})")
+    lon, lat = pos[0], pos[1]
+    if not -180.0 <= lon <= 180.0:
+        raise SiteError(f"{where}: longitude {lon} is outside [-180, 180] (positions are lon, lat)")
+    if not -90.0 <= lat <= 90.0:
+        raise SiteError(f"{where}: latitude {lat} is outside [-90, 90] (positions are lon, lat)")
+
+
+def _all_lonlat(geometry: dict) -> tuple[np.ndarray, np.ndarray]:
+    flat: list = []
+
+    def walk(node):
+        if node and isinstance(node[0], (int, float)):
+            flat.append(node[:2])
+        else:
+            for child in node:
+                walk(child)
+
+    walk(geometry["coordinates"])
+    arr = np.asarray(flat, dtype=float)
+    return arr[:, 0], arr[:, 1]
+
+
+# ----------------------------------------------------------------------------- frames
+
+
+def _make_frame(crs: str | None, lon: np.ndarray, lat: np.ndarray) -> Frame:
+    lon_0 = float((lon.min() + lon.max()) / 2.0)
+    lat_0 = float((lat.min() + lat.max()) / 2.0)
+    if crs is None:
+        text = (f"+proj=tmerc +lat_0={lat_0:.9f} +lon_0={lon_0:.9f} +k=1 +x_0=0 +y_0=0 "
+                "+ellps=WGS84 +units=m +no_defs +type=crs")
+        return Frame(crs=text, kind="local-tmerc", lon_0=lon_0, lat_0=lat_0)
+    from pyproj import CRS
+    from pyproj.exceptions import CRSError
+
+    try:
+        named = CRS.from_user_input(crs)
+    except CRSError as err:
+        raise SettingsError(f"--crs {crs!r}: not a coordinate reference system pyproj knows") from err
+    if not named.is_projected:
+        raise SettingsError(f"--crs {crs!r}: is not a projected CRS (a working frame must be in metres)")
+    units = {ax.unit_name for ax in named.axis_info}
+    if units - {"metre", "meter"}:
+        raise SettingsError(f"--crs {crs!r}: axis units are {', '.join(sorted(units))}, not metres")
+    return Frame(crs=named.to_wkt(), kind="named", lon_0=lon_0, lat_0=lat_0)
+
+
+def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_warnings: list[str]):
+    geometry = item["geometry"]
+    where = f"{source}: {item['label']}"
+    kind = geometry["type"]
+    coords = geometry["coordinates"]
+    if kind == "Point":
+        x, y = frame.to_xy([coords[0]], [coords[1]])
+        return Point(x[0], y[0])
+    polygons = [coords] if kind == "Polygon" else coords
+    parts = []
+    for rings in polygons:
+        projected = []
+        for ring in rings:
+            arr = np.asarray([p[:2] for p in ring], dtype=float)
+            x, y = frame.to_xy(arr[:, 0], arr[:, 1])
+            projected.append(np.column_stack([x, y]))
+        parts.append(Polygon(projected[0], projected[1:]))
+    geom = parts[0] if kind == "Polygon" else MultiPolygon(parts)
+    if not geom.is_valid:
+        reason = shapely.is_valid_reason(geom)
+        if not fix:
+            raise SiteError(f"{where}: invalid polygon ({reason}); fix the drawing or pass --fix to repair it")
+        repaired = shapely.make_valid(geom)
+        polys = [g for g in getattr(repaired, "geoms", [repaired]) if g.geom_type in _POLYGONAL]
+        flat = []
+        for g in polys:
+            flat.extend(getattr(g, "geoms", [g]))
+        if not flat:
+            raise SiteError(f"{where}: invalid polygon ({reason}) and repairing it leaves no area")
+        geom = flat[0] if len(flat) == 1 else MultiPolygon(flat)
+        site_warnings.append(f"{item['label']}: repaired an invalid polygon ({reason}) with --fix")
+    if geom.area <= 0.0:
+        raise SiteError(f"{where}: polygon has zero area")
+    return geom

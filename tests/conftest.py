@@ -1,0 +1,63 @@
+"""Shared fixtures: tiny in-memory sites and a seeded random generator."""
+
+from __future__ import annotations
+
+import copy
+
+import numpy as np
+import pytest
+from pyproj import Transformer
+
+#: Where the in-memory test sites sit (a fictional spot; any land would do).
+ORIGIN_LON, ORIGIN_LAT = 9.25, 47.40
+
+
+def to_lonlat(points_m):
+    """East/north metres around the test origin to [lon, lat] lists (local tmerc)."""
+    t = Transformer.from_crs(
+        f"+proj=tmerc +lat_0={ORIGIN_LAT} +lon_0={ORIGIN_LON} +k=1 +ellps=WGS84 +units=m",
+        "EPSG:4326", always_xy=True,
+    )
+    return [list(t.transform(x, y)) for x, y in points_m]
+
+
+def rect(x0, y0, x1, y1):
+    """A closed counter-clockwise rectangle ring in lon/lat from metres."""
+    return [to_lonlat([(x0, y0), (x1, y0), (x1, y1), (x0, y1), (x0, y0)])]
+
+
+def feature(role, geometry_type, coordinates, **props):
+    return {"type": "Feature", "properties": {"role": role, **props},
+            "geometry": {"type": geometry_type, "coordinates": coordinates}}
+
+
+def point(x, y):
+    return to_lonlat([(x, y)])[0]
+
+
+def small_site_dict():
+    """A 100 m x 60 m yard: a pond in the middle, a drift zone, gravel, start west, goal east."""
+    return {
+        "type": "FeatureCollection",
+        "features": [
+            feature("boundary", "Polygon", rect(0, 0, 100, 60), name="Test yard"),
+            feature("start", "Point", point(10, 30), name="Launch"),
+            feature("goal", "Point", point(90, 30), name="Target"),
+            feature("hazard", "Polygon", rect(40, 20, 60, 40), name="Pond", buffer_m=2.0),
+            feature("drift", "Polygon", rect(30, 40, 70, 60), name="Gust lane", toward_deg=180.0,
+                    push_m=3.0, spread_m=1.0),
+            feature("rough", "Polygon", rect(70, 0, 100, 15), name="Gravel", cost_factor=2.0),
+        ],
+    }
+
+
+@pytest.fixture
+def site_dict():
+    """A fresh copy of the small test site, safe to mutate."""
+    return copy.deepcopy(small_site_dict())
+
+
+@pytest.fixture
+def rng():
+    """A seeded generator: tests never touch the global RNG."""
+    return np.random.default_rng(20261202)
