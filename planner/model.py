@@ -95,7 +95,9 @@ class Model:
     Attributes
     ----------
     offsets : int64 ``(n_states * n_actions + 1,)``.
-    next_state : int32 ``(n_outcomes,)``; -1 for outcomes that end the run.
+    next_state : int32 ``(n_outcomes,)``; for outcomes that end the run, the cell where
+        it ended (goal or hazard cell), or -1 when it left the boundary. Only ``event``
+        says whether the run goes on.
     prob, reward : float64 ``(n_outcomes,)``; reward is minus the cost in metres-equivalent.
     event : int16 ``(n_outcomes,)``.
     crossed : int64 ``(n_outcomes,)``, bit mask of non-ending hazards crossed.
@@ -456,10 +458,10 @@ def _outcome(s, dr, dc, n_rows, n_cols, label, goal, ends, wall, outside, path_r
                 return s, 0, np.int64(0), -1
             return -1, 2, crossed, -1
         if goal[cell]:
-            return -1, 1, crossed, -1
+            return cell, 1, crossed, -1
         if lab >= 0:
             if ends[lab]:
-                return -1, 3 + lab, crossed, lab
+                return cell, 3 + lab, crossed, lab
             crossed |= np.int64(1) << lab
     return r1 * n_cols + c1, 0, crossed, -1
 

@@ -20,7 +20,7 @@ class NominalPath:
     ``states`` are flat state indices from the start, in order; ``end_event`` is the
     model event code of the final move (``EVENT_GOAL`` for success), or -1 when the
     route returned to a cell it had visited (a loop); ``end_state`` is the cell the
-    final move reached (-1 when it left the grid).
+    final move reached (the goal or hazard cell; -1 when it left the boundary).
     """
 
     states: np.ndarray
@@ -40,8 +40,6 @@ def nominal_path(model: Model, greedy_action: np.ndarray, *, start: int | None =
     """Follow ``greedy_action`` and each move's most likely outcome.
 
     Ties between equally likely outcomes go to the first in the table (deterministic).
-    A terminal outcome's landing cell is recovered from the swept path only as the
-    event; ``end_state`` is then -1.
     """
     state = model.start if start is None else int(start)
     seen = {state}
@@ -55,7 +53,7 @@ def nominal_path(model: Model, greedy_action: np.ndarray, *, start: int | None =
         best = lo + int(np.argmax(model.prob[lo:hi]))
         event = int(model.event[best])
         if event != EVENT_NONE:
-            return NominalPath(np.asarray(states, dtype=np.int64), event, -1)
+            return NominalPath(np.asarray(states, dtype=np.int64), event, int(model.next_state[best]))
         state = int(model.next_state[best])
         if state in seen:
             return NominalPath(np.asarray(states, dtype=np.int64), -1, state)
