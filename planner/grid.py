@@ -22,6 +22,8 @@ OUTSIDE = -2
 FREE = -1
 #: Default budget on the number of grid cells.
 DEFAULT_MAX_CELLS = 400_000
+#: Overlaps thinner than this (metres) are drawing precision, not geometry.
+DRAWING_TOLERANCE_M = 0.01
 #: Hazards are tracked in a 64-bit mask per outcome.
 MAX_HAZARDS = 62
 
@@ -37,6 +39,9 @@ class GridSpec:
         fraction of it; 0 (default) means any overlap at all.
     boundary_cover : a cell is inside when the boundary covers at least this fraction
         of it; 1 (default) means wholly.
+
+    Both rules ignore overlaps thinner than ``DRAWING_TOLERANCE_M`` (1 cm) along a
+    cell side: that is projection round-off, not a drawn edge.
     max_cells : refuse grids with more cells than this.
     """
 
@@ -378,12 +383,8 @@ def _covered_fraction_at_least(tree, boxes, geometry, threshold, cell_area) -> n
     idx = _candidates(tree, geometry)
     if idx.size == 0:
         return out
-    shapely.prepare(geometry)
-    if threshold >= 1.0:
-        out[idx] = shapely.covers(geometry, boxes[idx])
-    else:
-        area = shapely.area(shapely.intersection(boxes[idx], geometry))
-        out[idx] = area >= threshold * cell_area - 1e-9 * cell_area
+    area = shapely.area(shapely.intersection(boxes[idx], geometry))
+    out[idx] = area >= threshold * cell_area - _sliver_area(cell_area)
     return out
 
 
@@ -393,8 +394,18 @@ def _overlap_fraction_above(tree, boxes, geometry, threshold, cell_area) -> np.n
     if idx.size == 0:
         return out
     area = shapely.area(shapely.intersection(boxes[idx], geometry))
-    out[idx] = area > max(threshold * cell_area, 1e-9 * cell_area)
+    out[idx] = area > max(threshold * cell_area, _sliver_area(cell_area))
     return out
+
+
+def _sliver_area(cell_area: float) -> float:
+    """Overlap too thin to count: a strip of ``DRAWING_TOLERANCE_M`` along one cell side.
+
+    Projection round-off moves drawn edges by fractions of a millimetre; without this
+    a hazard drawn exactly on a cell edge would claim the next row of cells, and a
+    boundary drawn on one would lose its edge cells.
+    """
+    return DRAWING_TOLERANCE_M * math.sqrt(cell_area)
 
 
 def _centres_in(tree, centres, geometry, boxes) -> np.ndarray:

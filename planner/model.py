@@ -173,7 +173,7 @@ def resolve_penalties(grid: Grid, dynamics: Dynamics) -> tuple[np.ndarray, float
             f"--penalty {dynamics.hazard_penalty_m:g} m is not above the longest route to the goal "
             f"({longest:.0f} m): from some cells ending the run would be the cheapest plan"
         )
-    for h, info in enumerate(grid.hazards):
+    for info in grid.hazards:
         if info.ends_run and info.penalty_m is not None and info.penalty_m <= longest:
             notes.append(
                 f"hazard {info.name!r}: penalty_m {info.penalty_m:g} is not above the longest route to the goal "
@@ -579,3 +579,48 @@ __all__ = [
     "EVENT_BOUNDARY", "EVENT_GOAL", "EVENT_HAZARD", "EVENT_NONE", "FREE", "Chain", "Dynamics", "Model",
     "build_model", "default_penalty_m", "epsilon_greedy", "estimate_bytes", "policy_chain",
 ]
+
+
+def site_summary(site, spec, dynamics: Dynamics = Dynamics()) -> dict:
+    """Everything ``yardplan check`` reports, as plain data (JSON-ready).
+
+    Rasterises the site at ``spec`` (refusing grids over budget) and estimates the
+    model's memory without building it.
+    """
+    from planner.grid import rasterise
+
+    width, height = site.extent_m
+    roles: dict[str, list[str]] = {"hazard": [], "rough": [], "drift": []}
+    for zone in site.zones:
+        roles[zone.role].append(zone.name)
+    grid = rasterise(site, spec)
+    lab = grid.label
+    penalties, base, notes = resolve_penalties(grid, dynamics)
+    return {
+        "site": site.name,
+        "source": site.source,
+        "sha256": site.sha256,
+        "frame": {"kind": site.frame.kind, "crs": site.frame.crs,
+                  "largest_scale_distortion": site.scale_distortion},
+        "extent_m": {"east": round(width, 3), "north": round(height, 3)},
+        "start": site.start_name,
+        "goal": site.goal_name,
+        "zones": {
+            "hazard": [{"name": z.name, "ends_run": z.ends_run, "buffer_m": z.buffer_m,
+                        "penalty_m": float(penalties[i])} for i, z in enumerate(site.hazards)],
+            "rough": [{"name": z.name, "cost_factor": z.cost_factor} for z in site.rough],
+            "drift": [{"name": z.name, "toward_deg": round(z.toward_deg, 3), "push_m": z.push_m,
+                       "spread_m": z.spread_m, "chance": z.chance} for z in site.drifts],
+        },
+        "grid": {
+            "cell_m": spec.cell_m, "rows": grid.shape[0], "cols": grid.shape[1], "cells": grid.n_cells,
+            "inside_cells": int((lab != OUTSIDE).sum()), "hazard_cells": int((lab >= 0).sum()),
+            "active_cells": int((grid.passable() & ~grid.goal).sum()),
+            "hazard_overlap": spec.hazard_overlap, "boundary_cover": spec.boundary_cover,
+            "max_cells": spec.max_cells,
+        },
+        "model": {"moves": dynamics.n_actions, "slip": dynamics.slip, "stall": dynamics.stall,
+                  "drift_scale": dynamics.drift_scale, "edge": dynamics.edge,
+                  "hazard_penalty_m": base, "estimated_bytes": estimate_bytes(grid, dynamics)},
+        "warnings": list(site.warnings) + list(grid.warnings) + notes,
+    }

@@ -1,0 +1,125 @@
+"""``yardplan check`` and ``yardplan grid``: look at a site before planning on it."""
+
+from __future__ import annotations
+
+import json
+
+import click
+
+from planner.cli import cli
+from planner.cli.options import dynamics_options, grid_options, site_argument, site_options
+
+
+def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells):
+    """Read the site and make the grid settings (the cell size defaults from the site)."""
+    from planner.grid import GridSpec, grid_shape
+    from planner.site import load_site
+
+    loaded = load_site(site, crs=crs, fix=fix, max_bytes=max_bytes)
+    if cell_m is None:
+        cell_m = default_cell_m(loaded)
+    spec = GridSpec(cell_m=cell_m, hazard_overlap=hazard_overlap, boundary_cover=boundary_cover,
+                    max_cells=max_cells)
+    grid_shape(loaded, spec.cell_m)
+    return loaded, spec
+
+
+def default_cell_m(site) -> float:
+    """A cell size giving about 60 cells across the longer side, rounded to 0.5 m."""
+    longest = max(site.extent_m)
+    return max(0.5, round(longest / 60.0 * 2.0) / 2.0)
+
+
+def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):
+    from planner.model import Dynamics
+
+    return Dynamics(n_actions=int(n_actions), slip=slip, stall=stall, drift_scale=drift_scale, edge=edge,
+                    hazard_penalty_m=penalty_m)
+
+
+@cli.command()
+@site_argument
+@site_options
+@grid_options
+@dynamics_options
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions, slip, stall,
+          drift_scale, edge, penalty_m, as_json):
+    """Validate SITE and print its summary.
+
+    Reports the working frame and its largest scale distortion, the extent in metres,
+    the zones by role, the grid size at --cell, the model's memory estimate and any
+    warnings. Exit code 2 and one line naming the feature when the site is invalid.
+    """
+    from planner.model import site_summary
+
+    loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
+                                      max_cells)
+    summary = site_summary(loaded, spec, make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m))
+    if as_json:
+        click.echo(json.dumps(summary, indent=2, sort_keys=True))
+        return
+    click.echo(format_summary(summary))
+
+
+def format_summary(s: dict) -> str:
+    g, m, z = s["grid"], s["model"], s["zones"]
+    frame = s["frame"]
+    kind = "local transverse Mercator" if frame["kind"] == "local-tmerc" else "named CRS"
+    lines = [
+        f"site        {s['site']}  ({s['source']})",
+        f"sha256      {s['sha256'][:16]}...",
+        f"frame       {kind}; largest scale distortion {frame['largest_scale_distortion']:.1e}",
+        f"extent      {s['extent_m']['east']:.0f} m east x {s['extent_m']['north']:.0f} m north",
+        f"start/goal  {s['start']} -> {s['goal']}",
+        f"hazards     {len(z['hazard'])}",
+    ]
+    for h in z["hazard"]:
+        ends = "ends run" if h["ends_run"] else "run goes on"
+        buffer = f", buffer {h['buffer_m']:g} m" if h["buffer_m"] else ""
+        lines.append(f"  - {h['name']} ({ends}, penalty {h['penalty_m']:g} m{buffer})")
+    lines.append(f"rough       {len(z['rough'])}")
+    lines += [f"  - {r['name']} (cost x{r['cost_factor']:g})" for r in z["rough"]]
+    lines.append(f"drift       {len(z['drift'])}")
+    for d in z["drift"]:
+        chance = f", chance {d['chance']:g}" if d["chance"] < 1 else ""
+        lines.append(f"  - {d['name']} (toward {d['toward_deg']:.0f} deg, push {d['push_m']:g} m/move, "
+                     f"spread {d['spread_m']:g} m{chance})")
+    lines += [
+        f"grid        {g['cols']} x {g['rows']} cells of {g['cell_m']:g} m = {g['cells']:,} cells "
+        f"({g['active_cells']:,} usable, {g['hazard_cells']:,} hazard; budget {g['max_cells']:,})",
+        f"model       {m['moves']} moves, slip {m['slip']:g}, stall {m['stall']:g}, drift x{m['drift_scale']:g}, "
+        f"edge {m['edge']}; about {m['estimated_bytes'] / 2**20:.0f} MiB",
+    ]
+    if s["warnings"]:
+        lines.append(f"warnings    {len(s['warnings'])}")
+        lines += [f"  ! {w}" for w in s["warnings"]]
+    else:
+        lines.append("warnings    none")
+    return "\n".join(lines)
+
+
+@cli.command()
+@site_argument
+@site_options
+@grid_options
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=str),
+              help="PNG file to write.")
+def grid(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, output):
+    """Draw the labelled grid of SITE to a PNG.
+
+    Shows hazards (with buffers), rough ground, drift arrows, start, goal, a legend, a
+    metre scale bar and a north arrow. Nothing is written when the site is invalid.
+    """
+    from planner.grid import rasterise
+    from planner.plots import plot_grid
+    from planner.runfolder import atomic_output
+
+    if not output.lower().endswith(".png"):
+        raise click.BadParameter(f"{output!r} must end in .png", param_hint="-o/--output")
+    loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
+                                      max_cells)
+    labelled = rasterise(loaded, spec)
+    with atomic_output(output) as tmp:
+        plot_grid(loaded, labelled, tmp)
+    click.echo(f"wrote {output} ({labelled.shape[1]} x {labelled.shape[0]} cells of {spec.cell_m:g} m)")
