@@ -488,6 +488,8 @@ def _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty
             continue
         for q in range(d_ptr[cls], d_ptr[cls + 1]):
             p = p_dir * d_prob[q]
+            if p <= 0.0:
+                continue
             nxt, ev, crossed, haz = _outcome(s, mdr + d_row[q], mdc + d_col[q], n_rows, n_cols, label, goal,
                                              ends, wall, outside, path_r, path_c)
             found = -1
