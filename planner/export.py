@@ -1,0 +1,363 @@
+"""Waypoint files: GeoJSON (RFC 7946), CSV and GPX 1.1 routes, for simulators only.
+
+This stage owns the waypoint file formats. Every file says, in a field or comment that
+survives its format, that it is for simulation only and not approved for field
+operation. Files are written atomically (a temporary file in the same folder, then
+``os.replace``) and deterministically: the same routes give byte-identical files, and
+nothing time-dependent is written unless the caller passes it in.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import os
+import tempfile
+from collections.abc import Iterable
+from datetime import UTC, datetime
+from pathlib import Path
+from xml.sax.saxutils import escape
+
+from planner.errors import RunFolderError, SettingsError
+from planner.route import Route
+
+#: The notice every waypoint file carries.
+SIMULATION_NOTICE = (
+    "simulation only - not approved for field operation; follow the site's safety rules, "
+    "certified operators and local regulations"
+)
+#: GPX 1.1 namespace.
+GPX_NAMESPACE = "http://www.topografix.com/GPX/1/1"
+#: Decimals of lon/lat in every file: 1e-9 degree is about 0.1 mm on the ground.
+LONLAT_DECIMALS = 9
+#: Decimals of metres (positions, lengths, clearances, altitude) in every file.
+METRE_DECIMALS = 3
+#: Columns of the waypoint CSV, in order (``alt_m`` is inserted after ``lat`` when set).
+CSV_COLUMNS = ("policy", "seq", "east_m", "north_m", "lon", "lat", "leg_m", "cumulative_m",
+               "clearance_m", "nearest_hazard")
+
+
+def _check_alt(alt_m) -> float | None:
+    if alt_m is None:
+        return None
+    if isinstance(alt_m, bool) or not isinstance(alt_m, (int, float)) or not math.isfinite(alt_m) or alt_m < 0:
+        raise SettingsError(f"--alt-m must be a finite number of metres above ground >= 0, got {alt_m!r}")
+    return float(alt_m)
+
+
+def notice(alt_m: float | None = None) -> str:
+    """The simulation-only notice, with the altitude convention when one is set."""
+    alt_m = _check_alt(alt_m)
+    if alt_m is None:
+        return SIMULATION_NOTICE
+    return (f"{SIMULATION_NOTICE}; altitude is a constant {alt_m:.{METRE_DECIMALS}f} m above ground level "
+            "(not above sea level)")
+
+
+def _routes(route_or_routes) -> list[Route]:
+    routes = [route_or_routes] if isinstance(route_or_routes, Route) else list(route_or_routes)
+    if not routes:
+        raise SettingsError("no route to export")
+    for r in routes:
+        if not isinstance(r, Route):
+            raise SettingsError(f"expected planner.route.Route objects to export, got {type(r).__name__}")
+    names = [r.name for r in routes]
+    if len(set(names)) != len(names):
+        raise SettingsError(f"routes to export share a policy name ({', '.join(names)}); names must differ")
+    return routes
+
+
+def _metres(value: float) -> float:
+    return round(float(value), METRE_DECIMALS)
+
+
+def _degrees(value: float) -> float:
+    return round(float(value), LONLAT_DECIMALS)
+
+
+def _clearance(value: float) -> float | None:
+    return _metres(value) if math.isfinite(value) else None
+
+
+def _lon_normalised(lon: float) -> float:
+    # GPX and most readers want longitude in [-180, 180); 180 and -180 are one meridian.
+    return lon - 360.0 if lon >= 180.0 else lon
+
+
+# ----------------------------------------------------------------------------- GeoJSON
+
+
+def to_geojson(route_or_routes, *, site, alt_m: float | None = None) -> dict:
+    """The routes as an RFC 7946 FeatureCollection (a plain dict, JSON-ready).
+
+    Per route: one LineString feature through its waypoints (``geometry`` is ``null``
+    when the route has a single waypoint, since a LineString needs two positions) and
+    one Point feature per waypoint. Positions are ``[lon, lat]`` (``[lon, lat, alt]``
+    with ``alt_m``) rounded to 9 decimals. Every feature's properties carry ``use``,
+    the simulation-only notice; so does the collection (a foreign member).
+
+    Parameters
+    ----------
+    route_or_routes : a :class:`~planner.route.Route` or several (distinct names).
+    site : the :class:`~planner.site.Site` the routes were planned on (its name and
+        input hash are recorded).
+    alt_m : constant altitude above ground level, metres, added as a third coordinate.
+    """
+    routes = _routes(route_or_routes)
+    alt_m = _check_alt(alt_m)
+    use = notice(alt_m)
+
+    def position(w) -> list[float]:
+        pos = [_degrees(_lon_normalised(w.lon)), _degrees(w.lat)]
+        if alt_m is not None:
+            pos.append(_metres(alt_m))
+        return pos
+
+    features = []
+    for r in routes:
+        coords = [position(w) for w in r.waypoints]
+        features.append({
+            "type": "Feature",
+            "geometry": {"type": "LineString", "coordinates": coords} if len(coords) >= 2 else None,
+            "properties": {
+                "kind": "route", "policy": r.name, "reached_goal": r.reached_goal, "end_event": r.end_event,
+                "n_moves": r.n_moves, "cell_path_m": _metres(r.length_m), "length_m": _metres(r.waypoint_length_m),
+                "n_waypoints": len(r.waypoints), "min_clearance_m": _clearance(r.min_clearance_m),
+                "min_clearance_hazard": r.min_clearance_hazard, "alt_m_above_ground": alt_m, "use": use,
+            },
+        })
+        for w, pos in zip(r.waypoints, coords, strict=True):
+            features.append({
+                "type": "Feature",
+                "geometry": {"type": "Point", "coordinates": pos},
+                "properties": {
+                    "kind": "waypoint", "policy": r.name, "seq": w.seq, "east_m": _metres(w.east_m),
+                    "north_m": _metres(w.north_m), "leg_m": _metres(w.leg_m), "cumulative_m": _metres(w.cumulative_m),
+                    "clearance_m": _clearance(w.clearance_m), "nearest_hazard": w.nearest_hazard, "use": use,
+                },
+            })
+    return {
+        "type": "FeatureCollection",
+        "use": use,
+        "site": {"name": site.name, "sha256": site.sha256},
+        "features": features,
+    }
+
+
+def geojson_text(route_or_routes, *, site, alt_m: float | None = None) -> str:
+    """:func:`to_geojson` as the exact text :func:`write_geojson` writes."""
+    obj = to_geojson(route_or_routes, site=site, alt_m=alt_m)
+
+    def dump(value) -> str:
+        # allow_nan=False: a NaN or inf that slipped through would make the file invalid JSON.
+        return json.dumps(value, ensure_ascii=False, allow_nan=False)
+
+    # One feature per line: compact, yet a reviewer can read and diff it.
+    head = dump({k: v for k, v in obj.items() if k != "features"})
+    body = ",\n".join(dump(f) for f in obj["features"])
+    return f'{head[:-1]}, "features": [\n{body}\n]}}\n'
+
+
+def write_geojson(route_or_routes, path, *, site, alt_m: float | None = None) -> Path:
+    """Write :func:`to_geojson` to ``path`` atomically; returns the path."""
+    return _write_atomic(path, geojson_text(route_or_routes, site=site, alt_m=alt_m))
+
+
+def read_waypoints_geojson(path, *, policy: str | None = None) -> list[tuple[float, float]]:
+    """The (lon, lat) of the waypoint Points of a file written by :func:`write_geojson`.
+
+    Points come in file order (route by route, by ``seq``); ``policy`` keeps one route's.
+
+    Raises
+    ------
+    RunFolderError
+        When the file cannot be read or is not a waypoint FeatureCollection.
+    """
+    path = Path(path)
+    try:
+        obj = json.loads(path.read_text(encoding="utf-8"))
+    except OSError as err:
+        raise RunFolderError(f"{path}: cannot read the waypoint file ({err.strerror or err})") from err
+    except ValueError as err:
+        raise RunFolderError(f"{path}: not valid JSON ({err})") from err
+    if not isinstance(obj, dict) or obj.get("type") != "FeatureCollection" or not isinstance(
+            obj.get("features"), list):
+        raise RunFolderError(f"{path}: not a GeoJSON FeatureCollection of waypoints")
+    out = []
+    for i, feat in enumerate(obj["features"]):
+        props = feat.get("properties") if isinstance(feat, dict) else None
+        if not isinstance(props, dict) or props.get("kind") != "waypoint":
+            continue
+        if policy is not None and props.get("policy") != policy:
+            continue
+        geom = feat.get("geometry")
+        coords = geom.get("coordinates") if isinstance(geom, dict) and geom.get("type") == "Point" else None
+        if not (isinstance(coords, list) and 2 <= len(coords) <= 3
+                and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in coords)):
+            raise RunFolderError(f"{path}: feature {i} is a waypoint without a [lon, lat] Point")
+        out.append((float(coords[0]), float(coords[1])))
+    if not out:
+        which = f" of policy {policy!r}" if policy is not None else ""
+        raise RunFolderError(f"{path}: has no waypoints{which}")
+    return out
+
+
+# ----------------------------------------------------------------------------- CSV
+
+
+def csv_text(route: Route, *, alt_m: float | None = None) -> str:
+    """The waypoint CSV as text: ``#`` notice lines, a header row, one row per waypoint.
+
+    Fixed decimals: east/north and lengths 3, lon/lat 9. ``clearance_m`` and
+    ``nearest_hazard`` are empty when the site has no hazards.
+    """
+    (route,) = _routes([route])
+    alt_m = _check_alt(alt_m)
+    columns = list(CSV_COLUMNS)
+    if alt_m is not None:
+        columns.insert(columns.index("lat") + 1, "alt_m")
+    buf = io.StringIO()
+    buf.write(f"# {notice(alt_m)}\n")
+    clearance = "none" if not math.isfinite(route.min_clearance_m) else (
+        f"{route.min_clearance_m:.{METRE_DECIMALS}f} m ({route.min_clearance_hazard})")
+    buf.write(f"# policy {route.name}: reached goal {'yes' if route.reached_goal else 'no'} "
+              f"(ended: {route.end_event}), {len(route.waypoints)} waypoints, "
+              f"{route.waypoint_length_m:.{METRE_DECIMALS}f} m, least clearance to a hazard {clearance}\n")
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(columns)
+    m, d = METRE_DECIMALS, LONLAT_DECIMALS
+    for w in route.waypoints:
+        row = {
+            "policy": route.name, "seq": str(w.seq), "east_m": f"{w.east_m:.{m}f}", "north_m": f"{w.north_m:.{m}f}",
+            "lon": f"{_lon_normalised(w.lon):.{d}f}", "lat": f"{w.lat:.{d}f}", "leg_m": f"{w.leg_m:.{m}f}",
+            "cumulative_m": f"{w.cumulative_m:.{m}f}",
+            "clearance_m": f"{w.clearance_m:.{m}f}" if math.isfinite(w.clearance_m) else "",
+            "nearest_hazard": w.nearest_hazard or "",
+        }
+        if alt_m is not None:
+            row["alt_m"] = f"{alt_m:.{m}f}"
+        writer.writerow([row[c] for c in columns])
+    return buf.getvalue()
+
+
+def write_csv(route: Route, path, *, alt_m: float | None = None) -> Path:
+    """Write :func:`csv_text` of one route to ``path`` atomically; returns the path."""
+    return _write_atomic(path, csv_text(route, alt_m=alt_m))
+
+
+# ----------------------------------------------------------------------------- GPX
+
+
+def _gpx_time(time) -> str:
+    if isinstance(time, str):
+        try:
+            time = datetime.fromisoformat(time.replace("Z", "+00:00"))
+        except ValueError as err:
+            raise SettingsError(f"GPX time {time!r} is not an ISO 8601 date and time") from err
+    if not isinstance(time, datetime) or time.tzinfo is None:
+        raise SettingsError(f"GPX time must be a timezone-aware datetime or ISO 8601 text, got {time!r}")
+    return time.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def gpx_text(routes, *, alt_m: float | None = None, time=None, name: str | None = None) -> str:
+    """The routes as a GPX 1.1 document: ``<metadata>`` then one ``<rte>`` per policy.
+
+    Element order follows the GPX 1.1 schema: in ``metadata`` name, desc, time, bounds;
+    in ``rte`` name, desc, rtept; in ``rtept`` ele (only with ``alt_m``, metres above
+    ground level as the notice says), then name. The notice is in ``<metadata><desc>``
+    and in every ``<rte><desc>``. ``time`` (aware datetime or ISO 8601 text) is written
+    only when given.
+    """
+    routes = _routes(routes)
+    alt_m = _check_alt(alt_m)
+    text = notice(alt_m)
+    d = LONLAT_DECIMALS
+    lats = [w.lat for r in routes for w in r.waypoints]
+    lons = [_lon_normalised(w.lon) for r in routes for w in r.waypoints]
+    lines = [
+        '<?xml version="1.0" encoding="UTF-8"?>',
+        f'<gpx xmlns="{GPX_NAMESPACE}" version="1.1" creator="yardplan">',
+        " <metadata>",
+    ]
+    if name is not None:
+        lines.append(f"  <name>{escape(name)}</name>")
+    lines.append(f"  <desc>{escape(text)}</desc>")
+    if time is not None:
+        lines.append(f"  <time>{_gpx_time(time)}</time>")
+    lines.append(f'  <bounds minlat="{min(lats):.{d}f}" minlon="{min(lons):.{d}f}" '
+                 f'maxlat="{max(lats):.{d}f}" maxlon="{max(lons):.{d}f}"/>')
+    lines.append(" </metadata>")
+    for r in routes:
+        lines += [" <rte>", f"  <name>{escape(r.name)}</name>",
+                  f"  <desc>{escape(f'{r.name} route: {text}')}</desc>"]
+        for w in r.waypoints:
+            lines.append(f'  <rtept lat="{w.lat:.{d}f}" lon="{_lon_normalised(w.lon):.{d}f}">')
+            if alt_m is not None:
+                lines.append(f"   <ele>{alt_m:.{METRE_DECIMALS}f}</ele>")
+            lines.append(f"   <name>{escape(f'{r.name}-{w.seq:03d}')}</name>")
+            lines.append("  </rtept>")
+        lines.append(" </rte>")
+    lines.append("</gpx>")
+    return "\n".join(lines) + "\n"
+
+
+def write_gpx(routes, path, *, alt_m: float | None = None, time=None, name: str | None = None) -> Path:
+    """Write :func:`gpx_text` to ``path`` atomically; returns the path."""
+    return _write_atomic(path, gpx_text(routes, alt_m=alt_m, time=time, name=name))
+
+
+# ----------------------------------------------------------------------------- files
+
+
+def _write_atomic(path, text: str) -> Path:
+    """Write UTF-8 ``text`` to a temporary file beside ``path``, then rename it into place.
+
+    A reader never sees a half-written file: it finds the old file or the new one.
+    """
+    path = Path(path)
+    folder = path.parent
+    if not folder.is_dir():
+        raise RunFolderError(f"{path}: folder {folder} does not exist")
+    data = text.encode("utf-8")
+    tmp = None
+    try:
+        with tempfile.NamedTemporaryFile(dir=folder, prefix=f".{path.name}.", suffix=".tmp", delete=False) as fh:
+            tmp = fh.name
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+        tmp = None
+    except OSError as err:
+        raise RunFolderError(f"{path}: cannot write ({err.strerror or err})") from err
+    finally:
+        if tmp is not None:
+            Path(tmp).unlink(missing_ok=True)
+    return path
+
+
+def export_routes(routes: Iterable[Route], folder, *, site, formats=("geojson", "csv"), alt_m=None) -> list[Path]:
+    """Write each route in each of ``formats`` into ``folder``; returns the paths written.
+
+    One file per route and format, in the order of ``routes`` then of ``formats``, named
+    as the run folder names them: ``routes-{policy}.geojson``, ``waypoints-{policy}.csv``,
+    ``routes-{policy}.gpx``.
+    """
+    routes = _routes(list(routes))
+    unknown = sorted(set(formats) - {"geojson", "csv", "gpx"})
+    if unknown:
+        raise SettingsError(f"--format {unknown[0]!r} is not one of geojson, csv, gpx")
+    folder = Path(folder)
+    written = []
+    for r in routes:
+        for fmt in formats:
+            target = folder / f"{'waypoints' if fmt == 'csv' else 'routes'}-{r.name}.{fmt}"
+            if fmt == "geojson":
+                written.append(write_geojson(r, target, site=site, alt_m=alt_m))
+            elif fmt == "csv":
+                written.append(write_csv(r, target, alt_m=alt_m))
+            else:
+                written.append(write_gpx([r], target, alt_m=alt_m, name=site.name))
+    return written
