@@ -152,8 +152,9 @@ def grid_shape(site, cell_m: float) -> tuple[int, int]:
         raise SettingsError(
             f"--cell {cell_m:g} m is larger than the site ({width:.0f} m x {height:.0f} m)"
         )
-    # A millimetre-scale tolerance keeps projection round-off from adding a sliver column.
-    return (max(1, math.ceil(height / cell_m - 1e-3)), max(1, math.ceil(width / cell_m - 1e-3)))
+    # Drawing precision keeps coordinate round-off from adding a sliver column.
+    slack = DRAWING_TOLERANCE_M / cell_m
+    return (max(1, math.ceil(height / cell_m - slack)), max(1, math.ceil(width / cell_m - slack)))
 
 
 def check_budget(n_cells: int, max_cells: int, cell_m: float) -> None:
@@ -161,8 +162,16 @@ def check_budget(n_cells: int, max_cells: int, cell_m: float) -> None:
     if n_cells > max_cells:
         raise BudgetError(
             f"--cell {cell_m:g} m gives {n_cells:,} cells, over the --max-cells budget of {max_cells:,} "
-            f"(about {estimate_model_bytes(n_cells, 8, 9) / 2**30:.1f} GiB of model); use a larger --cell"
+            f"(about {format_bytes(estimate_model_bytes(n_cells, 8, 9))} of model); use a larger --cell"
         )
+
+
+def format_bytes(n: int) -> str:
+    """1.5 GiB, 340 MiB, 12 KiB: the unit that keeps the figure readable."""
+    for unit, size in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+        if n >= size:
+            return f"{n / size:.1f} {unit}"
+    return f"{n} B"
 
 
 def estimate_model_bytes(n_cells: int, n_actions: int, outcomes_per_action: float) -> int:
@@ -329,7 +338,7 @@ def rasterise(site, spec: GridSpec) -> Grid:
     shape = (n_rows, n_cols)
     start = _cell_index(site.start.x, site.start.y, x0, y0, cell, n_rows, n_cols)
     warnings_out = []
-    if label[start] >= 0:
+    if label[start] >= 0 and hazards[label[start]].ends_run:
         raise SiteError(
             f"{site.source}: start {site.start_name!r} falls in a cell touched by hazard "
             f"{hazards[label[start]].label} at --cell {cell:g} m; use a smaller --cell or move the start"

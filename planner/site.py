@@ -24,6 +24,8 @@ from planner.errors import SettingsError, SiteError, SiteWarning
 
 #: Largest site file read, in bytes, unless the caller raises it.
 DEFAULT_MAX_BYTES = 50_000_000
+#: Polygons smaller than this (square metres) are degenerate: collinear or repeated points.
+MIN_AREA_M2 = 1e-4
 #: Largest number of vertices accepted in one feature.
 MAX_VERTICES_PER_FEATURE = 200_000
 
@@ -354,13 +356,22 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         if z.role != "hazard":
             continue
         if z.geometry.covers(start):
-            raise SiteError(f"{source}: {start_item['label']}: start lies inside hazard {z.label}")
-        if z.buffered.covers(start):
+            if z.ends_run:
+                raise SiteError(f"{source}: {start_item['label']}: start lies inside hazard {z.label}")
+            site_warnings.append(f"{start_item['label']}: start lies inside hazard {z.label}, which does not end "
+                                 "the run; leaving it is charged its penalty")
+        elif z.buffered.covers(start) and z.ends_run:
             raise SiteError(
                 f"{source}: {start_item['label']}: start lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
             )
+        if not z.ends_run:
+            continue
         if z.geometry.covers(goal_probe) or (goal.geom_type == "Point" and z.buffered.covers(goal)):
             raise SiteError(f"{source}: {goal_item['label']}: goal lies inside hazard {z.label}")
+        if goal.geom_type != "Point" and z.buffered.covers(goal):
+            raise SiteError(
+                f"{source}: {goal_item['label']}: goal lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
+            )
 
     hazards = [z for z in zones if z.role == "hazard"]
     for i, a in enumerate(hazards):
@@ -429,8 +440,8 @@ def _number(props: dict, key: str, where: str, *, default=None, low=None, high=N
     value = props.get(key, default)
     if value is None:
         return None
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise SiteError(f"{where}: '{key}' must be a finite number, got {value!r}")
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not _finite(value):
+        raise SiteError(f"{where}: '{key}' must be a finite number, got {value!r:.40}")
     value = float(value)
     if low is not None and (value < low or (low_open and value == low)):
         rule = f"> {low:g}" if low_open else f">= {low:g}"
@@ -512,13 +523,21 @@ def _check_position(pos, where: str) -> None:
     for v in pos:
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             raise SiteError(f"{where}: a coordinate is not a number: {v!r:.40}")
-        if not math.isfinite(v):
-            raise SiteError(f"{where}: a coordinate is not finite ({v})")
+        if not _finite(v):
+            raise SiteError(f"{where}: a coordinate is not finite ({v!r:.40})")
     lon, lat = pos[0], pos[1]
     if not -180.0 <= lon <= 180.0:
         raise SiteError(f"{where}: longitude {lon} is outside [-180, 180] (positions are lon, lat)")
     if not -90.0 <= lat <= 90.0:
         raise SiteError(f"{where}: latitude {lat} is outside [-90, 90] (positions are lon, lat)")
+
+
+def _finite(value) -> bool:
+    """Finite as a float; integers too large for a float are not."""
+    try:
+        return math.isfinite(float(value))
+    except OverflowError:
+        return False
 
 
 def _all_lonlat(geometry: dict) -> tuple[np.ndarray, np.ndarray]:
@@ -592,6 +611,6 @@ def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_war
             raise SiteError(f"{where}: invalid polygon ({reason}) and repairing it leaves no area")
         geom = flat[0] if len(flat) == 1 else MultiPolygon(flat)
         site_warnings.append(f"{item['label']}: repaired an invalid polygon ({reason}) with --fix")
-    if geom.area <= 0.0:
-        raise SiteError(f"{where}: polygon has zero area")
+    if geom.area <= MIN_AREA_M2:
+        raise SiteError(f"{where}: polygon has zero area (under {MIN_AREA_M2:g} m2; collinear or repeated points?)")
     return geom

@@ -23,7 +23,7 @@ def site_options(f):
 def grid_options(f):
     """Options that control rasterising."""
     f = click.option("--cell", "cell_m", type=float, default=None, metavar="M",
-                     help="Cell size in metres (default: the site's recommended size, else 1/60 of its extent).")(f)
+                     help="Cell size in metres (default: about 1/100 of the site's longer side, rounded to 0.5 m).")(f)
     f = click.option("--hazard-overlap", type=float, default=0.0, show_default=True,
                      help="A cell is hazard when a buffered hazard covers more than this fraction of it.")(f)
     f = click.option("--boundary-cover", type=float, default=1.0, show_default=True,

@@ -25,9 +25,13 @@ def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, bounda
 
 
 def default_cell_m(site) -> float:
-    """A cell size giving about 60 cells across the longer side, rounded to 0.5 m."""
+    """A cell size giving about 100 cells along the longer side, rounded to 0.5 m.
+
+    That keeps a 200-600 m yard at a few thousand cells: fine enough to resolve
+    lanes between hazards, small enough to train to convergence in seconds.
+    """
     longest = max(site.extent_m)
-    return max(0.5, round(longest / 60.0 * 2.0) / 2.0)
+    return max(0.5, round(longest / 100.0 * 2.0) / 2.0)
 
 
 def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):

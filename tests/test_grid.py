@@ -1,0 +1,553 @@
+"""Rasterising: cell labels, buffers, cost factors, drift distributions, shortest paths."""
+
+from __future__ import annotations
+
+import math
+import warnings
+from collections import defaultdict
+from pathlib import Path
+
+import numpy as np
+import pytest
+from conftest import feature, point, rect
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from numpy.testing import assert_allclose, assert_array_equal
+from shapely.geometry import Point, Polygon, box
+from shapely.ops import unary_union
+
+from planner.errors import BudgetError, SettingsError, SiteError, SiteWarning
+from planner.grid import (
+    FREE,
+    OUTSIDE,
+    DriftInfo,
+    GridSpec,
+    HazardInfo,
+    axis_distribution,
+    cost_to_goal,
+    drift_tables,
+    grid_from_arrays,
+    rasterise,
+    zone_drift_distribution,
+)
+from planner.site import Frame, Site, Zone, load_site, site_from_geojson
+
+MAPS = Path(__file__).resolve().parent.parent / "maps"
+#: The cell sizes maps/README.md recommends for the demo sites.
+RECOMMENDED_CELL_M = {"ground-yard": 5.0, "drone-range": 5.0}
+
+CELL = 5.0
+START = (12.5, 32.5)
+GOAL = (87.5, 32.5)
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def zone(index, name, role, geometry, **props):
+    """A zone drawn directly in metres (buffered as the loader does)."""
+    buffer_m = props.get("buffer_m", 0.0)
+    buffered = geometry.buffer(buffer_m) if buffer_m > 0 else geometry
+    return Zone(feature=index, name=name, role=role, geometry=geometry, buffered=buffered, **props)
+
+
+def metric_site(*zones, boundary=None, start=START, goal=GOAL):
+    """A site in exact metres (no projection), so cell edges fall where we say.
+
+    The default boundary is 100 m x 60 m with its south-west corner at the origin:
+    at 5 m cells, column ``c`` spans x in [5c, 5c + 5] and row ``r`` y in [5r, 5r + 5].
+    """
+    boundary = box(0.0, 0.0, 100.0, 60.0) if boundary is None else boundary
+    goal_geometry = goal if hasattr(goal, "geom_type") else Point(goal)
+    return Site(
+        name="Metric yard", source="metric.geojson", sha256="0" * 64,
+        frame=Frame(crs="+proj=tmerc +lat_0=0 +lon_0=0 +ellps=WGS84 +units=m +type=crs", kind="local-tmerc",
+                    lon_0=0.0, lat_0=0.0),
+        boundary=boundary, start=Point(start), goal=goal_geometry, start_name="Launch", goal_name="Target",
+        zones=tuple(zones), scale_distortion=0.0,
+    )
+
+
+def interval_overlap(lo, hi, cell_lo, cell_hi):
+    return np.clip(np.minimum(hi, cell_hi) - np.maximum(lo, cell_lo), 0.0, None)
+
+
+def box_fraction(bounds, shape, cell=CELL):
+    """Fraction of each cell an axis-aligned box covers: a product of two 1-D overlaps."""
+    x0, y0, x1, y1 = bounds
+    rows, cols = np.indices(shape)
+    fx = interval_overlap(x0, x1, cols * cell, (cols + 1) * cell) / cell
+    fy = interval_overlap(y0, y1, rows * cell, (rows + 1) * cell) / cell
+    return fx * fy
+
+
+def centres_in_box(bounds, shape, cell=CELL):
+    x0, y0, x1, y1 = bounds
+    rows, cols = np.indices(shape)
+    cx, cy = (cols + 0.5) * cell, (rows + 0.5) * cell
+    return (cx >= x0) & (cx <= x1) & (cy >= y0) & (cy <= y1)
+
+
+def box_distance(bounds, shape, cell=CELL):
+    """Euclidean distance from each cell (as a closed square) to an axis-aligned box."""
+    x0, y0, x1, y1 = bounds
+    rows, cols = np.indices(shape)
+    gap_x = np.maximum.reduce([x0 - (cols + 1) * cell, cols * cell - x1, np.zeros(shape)])
+    gap_y = np.maximum.reduce([y0 - (rows + 1) * cell, rows * cell - y1, np.zeros(shape)])
+    return np.hypot(gap_x, gap_y)
+
+
+def moments(offsets, probs):
+    offsets = np.asarray(offsets, dtype=float)
+    mean = probs @ offsets
+    centred = offsets - mean
+    var = probs @ (centred**2) if centred.ndim == 1 else (probs[:, None] * centred).T @ centred
+    return mean, var
+
+
+def as_dict(offsets, probs):
+    """A distribution as {offset tuple: probability}, duplicates summed."""
+    table = defaultdict(float)
+    for o, p in zip(np.asarray(offsets).tolist(), probs, strict=True):
+        table[tuple(o) if isinstance(o, list) else (o,)] += float(p)
+    return dict(table)
+
+
+# ----------------------------------------------------------------------------- labels
+
+
+@pytest.mark.parametrize("threshold", [0.0, 0.005, 0.01, 0.3, 0.5, 0.9])
+def test_hazard_labels_follow_the_overlap_threshold(threshold):
+    # The pond covers 0.1 m of columns 9 and 12 and 2.4 m of rows 4 and 7.
+    pond = (49.9, 22.6, 60.1, 37.4)
+    site = metric_site(zone(3, "Pond", "hazard", box(*pond)))
+    grid = rasterise(site, GridSpec(CELL, hazard_overlap=threshold))
+    fraction = box_fraction(pond, grid.shape)
+    # Conservative by default: any overlap with positive area makes the cell hazard.
+    assert_array_equal(grid.label == 0, fraction > threshold)
+    if threshold == 0.0:
+        assert (grid.label == 0).sum() == 16
+
+
+def test_hazard_touching_only_along_a_cell_edge_does_not_spread():
+    # Edges exactly on cell edges: the neighbours share a line, not an area.
+    site = metric_site(zone(3, "Pond", "hazard", box(50.0, 20.0, 60.0, 40.0)))
+    grid = rasterise(site, GridSpec(CELL))
+    expected = np.zeros(grid.shape, dtype=bool)
+    expected[4:8, 10:12] = True
+    assert_array_equal(grid.label == 0, expected)
+
+
+@pytest.mark.parametrize("cover", [1.0, 0.6, 0.5, 0.2, 0.1])
+def test_boundary_labels_follow_the_cover_threshold(cover):
+    # A 98 m x 61 m yard: the last column is 60% inside, the top row 20%, their corner 12%.
+    bounds = (0.0, 0.0, 98.0, 61.0)
+    site = metric_site(boundary=box(*bounds))
+    grid = rasterise(site, GridSpec(CELL, boundary_cover=cover))
+    assert grid.shape == (13, 20)
+    fraction = box_fraction(bounds, grid.shape)
+    # "At least" the fraction: a cell exactly 60% inside is inside at cover 0.6.
+    assert_array_equal(grid.label != OUTSIDE, fraction >= cover - 1e-12)
+
+
+def test_boundary_must_cover_a_cell_wholly_by_default():
+    # A right triangle with legs 100 m (east) and 60 m (north): a cell is wholly
+    # inside exactly when its north-east corner is, i.e. 60 x + 100 y <= 6000.
+    site = metric_site(boundary=Polygon([(0, 0), (100, 0), (0, 60)]), start=(12.5, 12.5), goal=(52.5, 7.5))
+    grid = rasterise(site, GridSpec(CELL))
+    rows, cols = np.indices(grid.shape)
+    wholly = 60.0 * (cols + 1) * CELL + 100.0 * (rows + 1) * CELL <= 6000.0
+    assert_array_equal(grid.label != OUTSIDE, wholly)
+    assert wholly.sum() < (grid.label.size // 2)
+
+
+def test_buffers_enlarge_hazard_cells_with_round_corners():
+    # A 15.2 m square pond with a 3 m buffer. Cells beside an edge lie 2.4 m away
+    # (inside the buffer); the diagonal cells lie hypot(2.4, 2.4) = 3.39 m away, so a
+    # round buffer leaves them free where a square one would not.
+    pond = (42.4, 22.4, 57.6, 37.6)
+    plain = rasterise(metric_site(zone(3, "Pond", "hazard", box(*pond))), GridSpec(CELL))
+    buffered = rasterise(metric_site(zone(3, "Pond", "hazard", box(*pond), buffer_m=3.0)), GridSpec(CELL))
+    distance = box_distance(pond, plain.shape)
+    assert not np.any(np.abs(distance - 3.0) < 0.05)  # no cell sits on the buffer's edge
+    assert_array_equal(plain.label == 0, box_fraction(pond, plain.shape) > 0)
+    assert_array_equal(buffered.label == 0, distance < 3.0)
+    assert (buffered.label == 0).sum() == 6 * 6 - 4
+    assert np.all(buffered.label[plain.label == 0] == 0)
+
+
+def test_loader_buffer_enlarges_hazard_cells(site_dict):
+    site_dict["features"][3]["properties"]["buffer_m"] = 0.0
+    plain = rasterise(site_from_geojson(site_dict), GridSpec(2.0))
+    site_dict["features"][3]["properties"]["buffer_m"] = 4.0
+    buffered = rasterise(site_from_geojson(site_dict), GridSpec(2.0))
+    inner, outer = plain.label == 0, buffered.label == 0
+    assert np.all(outer[inner]) and outer.sum() > inner.sum()
+    # 20 m square + 4 m all round spans 28 m: 14 cells of 2 m, give or take the
+    # cell each side the outline straddles.
+    rows, cols = np.nonzero(outer)
+    assert 14 <= cols.max() - cols.min() + 1 <= 16
+    assert 14 <= rows.max() - rows.min() + 1 <= 16
+
+
+def test_ending_hazard_wins_where_hazards_overlap():
+    puddle = zone(3, "Puddle", "hazard", box(30.5, 20.5, 49.5, 39.5), ends_run=False, penalty_m=10.0)
+    pit = zone(4, "Pit", "hazard", box(40.5, 20.5, 59.5, 39.5))
+    grid = rasterise(metric_site(puddle, pit), GridSpec(CELL))
+    assert_array_equal(grid.label[4:8, 6:8], 0)
+    assert_array_equal(grid.label[4:8, 8:12], 1)
+    assert grid.hazards[0].ends_run is False and grid.hazards[1].ends_run is True
+    assert not grid.passable()[5, 9] and grid.passable()[5, 6]
+
+
+def test_rough_cells_take_the_largest_cost_factor_by_cell_centre():
+    a, b = (20.0, 0.0, 41.0, 16.0), (31.0, 0.0, 51.0, 11.0)
+    # The dearer zone comes first, so "last one wins" would fail where they overlap.
+    site = metric_site(zone(3, "Rubble", "rough", box(*b), cost_factor=3.0),
+                       zone(4, "Gravel", "rough", box(*a), cost_factor=2.0))
+    grid = rasterise(site, GridSpec(CELL))
+    expected = np.ones(grid.shape)
+    expected[centres_in_box(a, grid.shape)] = 2.0
+    expected[centres_in_box(b, grid.shape)] = 3.0
+    assert_array_equal(grid.cost_factor, expected)
+    assert (grid.cost_factor == 3.0).sum() == 8 and (grid.cost_factor == 2.0).sum() == 12 - 4
+
+
+def test_goal_area_marks_the_cells_whose_centres_it_covers():
+    grid = rasterise(metric_site(goal=box(80.5, 25.5, 94.5, 39.5)), GridSpec(CELL))
+    expected = np.zeros(grid.shape, dtype=bool)
+    expected[5:8, 16:19] = True
+    assert_array_equal(grid.goal, expected)
+
+
+def test_row_zero_is_south_and_column_zero_is_west():
+    site = metric_site(zone(3, "South-west pit", "hazard", box(0.5, 0.5, 4.5, 4.5)))
+    grid = rasterise(site, GridSpec(CELL))
+    assert grid.label[0, 0] == 0 and grid.start == (6, 2)
+    east, north = grid.centres()
+    assert_allclose((east[0, 0], north[0, 0]), (2.5, 2.5))
+    rows, cols = np.indices(grid.shape)
+    looked_up = np.array([grid.cell_of(x, y) for x, y in zip(east.ravel(), north.ravel(), strict=True)])
+    assert_array_equal(looked_up, np.column_stack([rows.ravel(), cols.ravel()]))
+
+
+# ----------------------------------------------------------------------------- drift
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.floats(-6.0, 6.0), st.floats(0.0, 4.0))
+def test_axis_distribution_has_the_stated_mean_and_spread(mean, sd):
+    offsets, probs = axis_distribution(mean, sd)
+    assert offsets.dtype == np.int64 and 1 <= offsets.size <= 3
+    assert np.all(probs > 0) and abs(probs.sum() - 1.0) < 1e-12
+    got_mean, got_var = moments(offsets, probs)
+    assert_allclose(got_mean, mean, atol=1e-12)
+    frac = mean - math.floor(mean)
+    least = frac * (1.0 - frac)  # variance of the two integers either side of the mean
+    if sd * sd >= least:
+        assert_allclose(got_var, sd * sd, atol=1e-9)
+    else:
+        assert_allclose(got_var, least, atol=1e-9)
+        assert set(offsets.tolist()) <= {math.floor(mean), math.floor(mean) + 1}
+
+
+def test_axis_distribution_examples():
+    # Whole-cell mean, no spread: a single point.
+    assert as_dict(*axis_distribution(2.0, 0.0)) == {(2,): 1.0}
+    # sd 1 around 0 needs the outer points with probability 1/2 in all.
+    offsets, probs = axis_distribution(0.0, 1.0)
+    assert_array_equal(offsets, [-1, 1])
+    assert_allclose(probs, [0.5, 0.5], atol=1e-15)
+    # Below the spread a fractional mean needs, the two integers either side carry it.
+    offsets, probs = axis_distribution(-0.3, 0.0)
+    assert_array_equal(offsets, [-1, 0])
+    assert_allclose(probs, [0.3, 0.7], atol=1e-15)
+
+
+drift_values = st.tuples(
+    st.floats(-12.0, 12.0), st.floats(-12.0, 12.0), st.floats(0.0, 8.0), st.floats(0.0, 1.0),
+    st.sampled_from([1.0, 2.0, 2.5, 5.0]),
+)
+
+
+@settings(max_examples=200, deadline=None)
+@given(drift_values)
+def test_zone_drift_distribution_mean_spread_and_chance(values):
+    east_m, north_m, spread_m, chance, cell = values
+    info = DriftInfo("Gusts", east_m, north_m, spread_m, chance)
+    offsets, probs = zone_drift_distribution(info, cell)
+    assert offsets.shape == (probs.size, 2) and abs(probs.sum() - 1.0) < 1e-12 and np.all(probs > 0)
+    mean, _ = moments(offsets, probs)
+    # (d_row, d_col): rows run north, columns east; chance scales the mean push.
+    assert_allclose(mean, [chance * north_m / cell, chance * east_m / cell], atol=1e-9)
+    # Without the "no push" mix the axes are independent, each with the stated spread
+    # when it is at least what the fractional mean needs.
+    full_offsets, full_probs = zone_drift_distribution(DriftInfo("Gusts", east_m, north_m, spread_m, 1.0), cell)
+    _, cov = moments(full_offsets, full_probs)
+    assert_allclose(cov[0, 1], 0.0, atol=1e-9)
+    sd = spread_m / cell
+    for axis, m in enumerate((north_m / cell, east_m / cell)):
+        frac = m - math.floor(m)
+        assert_allclose(cov[axis, axis], max(sd * sd, frac * (1 - frac)), atol=1e-9)
+    # chance mixes in "no push": p = chance * full + (1 - chance) * [0, 0].
+    expected = defaultdict(float)
+    for o, p in as_dict(full_offsets, full_probs).items():
+        expected[o] += chance * p
+    expected[(0, 0)] += 1.0 - chance
+    got = as_dict(offsets, probs)
+    for key in set(got) | {k for k, v in expected.items() if v > 1e-12}:
+        assert_allclose(got.get(key, 0.0), expected[key], atol=1e-12)
+
+
+def _two_drift_site(site_dict):
+    site_dict["features"].append(feature("drift", "Polygon", rect(50, 30, 90, 60), name="Ridge wind",
+                                         toward_deg=90.0, push_m=4.0, spread_m=2.0, chance=0.5))
+    with pytest.warns(SiteWarning, match=r"drift zones feature 4 \('Gust lane'\) and feature 6 \('Ridge wind'\) "
+                                         r"overlap; their pushes add as vectors"):
+        site = site_from_geojson(site_dict)
+    return site
+
+
+def test_overlapping_drift_zones_convolve(site_dict):
+    site = _two_drift_site(site_dict)
+    grid = rasterise(site, GridSpec(CELL))
+    ptr, d_row, d_col, prob = drift_tables(grid)
+    assert grid.drift_members[0] == ()
+    both = grid.drift_members.index((0, 1))
+    # The zones overlap on 50-70 m east, 40-60 m north: class (0, 1) is exactly there,
+    # by cell centre, give or take the sub-millimetre rotation of the loader's frame.
+    assert (grid.drift_class == both).sum() == 4 * 4
+    lo, hi = ptr[both], ptr[both + 1]
+    got = as_dict(np.column_stack([d_row[lo:hi], d_col[lo:hi]]), prob[lo:hi])
+    # Independent pushes: the joint distribution is the convolution of the two.
+    first = as_dict(*zone_drift_distribution(grid.drifts[0], CELL))
+    second = as_dict(*zone_drift_distribution(grid.drifts[1], CELL))
+    expected = defaultdict(float)
+    for (r1, c1), p1 in first.items():
+        for (r2, c2), p2 in second.items():
+            expected[(r1 + r2, c1 + c2)] += p1 * p2
+    assert set(got) == {k for k, v in expected.items() if v > 1e-15}
+    for key, value in got.items():
+        assert_allclose(value, expected[key], atol=1e-12)
+    mean, _ = moments(np.column_stack([d_row[lo:hi], d_col[lo:hi]]), prob[lo:hi])
+    # Gust lane pushes 3 m south; Ridge wind 4 m east half the time: means add.
+    assert_allclose(mean, [-3.0 / CELL, 0.5 * 4.0 / CELL], atol=1e-9)
+
+
+@pytest.mark.parametrize("scale", [0.0, 0.5, 1.0, 2.0, 3.7])
+def test_drift_scale_scales_the_mean(site_dict, scale):
+    grid = rasterise(site_from_geojson(site_dict), GridSpec(CELL))
+    ptr, d_row, d_col, prob = drift_tables(grid, scale)
+    assert ptr[0] == 0 and ptr[-1] == prob.size
+    for k, members in enumerate(grid.drift_members):
+        lo, hi = ptr[k], ptr[k + 1]
+        assert_allclose(prob[lo:hi].sum(), 1.0, atol=1e-12)
+        mean, _ = moments(np.column_stack([d_row[lo:hi], d_col[lo:hi]]), prob[lo:hi])
+        push = np.zeros(2)
+        for m in members:
+            d = grid.drifts[m]
+            push += d.chance * np.array([d.north_m, d.east_m]) / CELL
+        assert_allclose(mean, scale * push, atol=1e-9)
+    if scale == 0.0:
+        assert_array_equal(d_row, 0)
+        assert_array_equal(d_col, 0)
+
+
+@pytest.mark.parametrize("scale", [-0.5, float("nan"), float("inf")])
+def test_drift_scale_must_be_finite_and_not_negative(site_dict, scale):
+    grid = rasterise(site_from_geojson(site_dict), GridSpec(CELL))
+    with pytest.raises(SettingsError, match="--drift-scale must be a finite number >= 0"):
+        drift_tables(grid, scale)
+
+
+# ----------------------------------------------------------------------------- refusals
+
+
+def test_grid_over_the_cell_budget_is_refused_with_the_estimate():
+    site = metric_site()
+    # 100 m x 60 m at 0.1 m is 1000 x 600 cells; the estimate is 8 actions x (9
+    # outcomes x 30 bytes + 8) bytes per cell = 1.33e9 bytes, 1.2 GiB.
+    with pytest.raises(BudgetError, match=r"--cell 0.1 m gives 600,000 cells, over the --max-cells budget of "
+                                          r"400,000 \(about 1.2 GiB of model\); use a larger --cell") as info:
+        rasterise(site, GridSpec(0.1))
+    assert isinstance(info.value, MemoryError)
+    with pytest.raises(BudgetError, match=r"--cell 0.5 m gives 24,000 cells, over the --max-cells budget of 23,999"):
+        rasterise(site, GridSpec(0.5, max_cells=23_999))
+    assert rasterise(site, GridSpec(0.5, max_cells=24_000)).n_cells == 24_000
+
+
+def test_cell_larger_than_the_site_is_refused():
+    site = metric_site()
+    with pytest.raises(SettingsError, match=r"--cell 150 m is larger than the site \(100 m x 60 m\)"):
+        rasterise(site, GridSpec(150.0))
+
+
+@pytest.mark.parametrize(("kwargs", "message"), [
+    ({"cell_m": 0.0}, r"--cell must be a positive number of metres, got 0.0"),
+    ({"cell_m": -5.0}, r"--cell must be a positive number of metres, got -5.0"),
+    ({"cell_m": float("nan")}, r"--cell must be a positive number of metres, got nan"),
+    ({"cell_m": float("inf")}, r"--cell must be a positive number of metres, got inf"),
+    ({"cell_m": "5"}, r"--cell must be a positive number of metres, got '5'"),
+    ({"cell_m": 5.0, "hazard_overlap": 1.0}, r"--hazard-overlap must be in \[0, 1\), got 1.0"),
+    ({"cell_m": 5.0, "hazard_overlap": -0.1}, r"--hazard-overlap must be in \[0, 1\), got -0.1"),
+    ({"cell_m": 5.0, "boundary_cover": 0.0}, r"--boundary-cover must be in \(0, 1\], got 0.0"),
+    ({"cell_m": 5.0, "boundary_cover": 1.5}, r"--boundary-cover must be in \(0, 1\], got 1.5"),
+    ({"cell_m": 5.0, "max_cells": 0}, r"--max-cells must be a positive whole number, got 0"),
+    ({"cell_m": 5.0, "max_cells": 1e6}, r"--max-cells must be a positive whole number, got 1000000.0"),
+])
+def test_grid_spec_refuses_bad_settings(kwargs, message):
+    with pytest.raises(SettingsError, match=message):
+        GridSpec(**kwargs)
+
+
+def test_goal_behind_a_hazard_wall_is_refused(site_dict):
+    site_dict["features"].append(feature("hazard", "Polygon", rect(70, -1, 73, 61), name="Perimeter wall"))
+    site = site_from_geojson(site_dict)
+    with pytest.raises(SiteError, match=r"no sequence of moves reaches goal 'Target' from start 'Launch' at "
+                                        r"--cell 5 m \(hazards or the boundary close every way\)"):
+        rasterise(site, GridSpec(CELL))
+
+
+def test_goal_behind_a_diagonal_seam_is_refused():
+    # Hazard cells meeting only at corners still block: corner-cutting counts.
+    # Cells (row 11 - k, column k) for k = 0..11 run from the north-west corner to the
+    # south edge, with the start south-west of them and the goal north-east.
+    cells = [box(5 * k + 0.5, 5 * (11 - k) + 0.5, 5 * k + 4.5, 5 * (11 - k) + 4.5) for k in range(12)]
+    seam = zone(3, "Trench seam", "hazard", unary_union(cells[2:10]))
+    boundary = Polygon([(0, 0), (100, 0), (100, 60), (0, 60)])
+    site = metric_site(seam, boundary=boundary, start=(2.5, 2.5), goal=(97.5, 57.5))
+    grid = rasterise(site, GridSpec(CELL))
+    assert np.isfinite(cost_to_goal(grid)[grid.start_index])  # the seam leaves both ends open
+    closed = metric_site(zone(3, "Trench seam", "hazard", unary_union(cells)), boundary=boundary,
+                         start=(2.5, 2.5), goal=(97.5, 57.5))
+    with pytest.raises(SiteError, match="no sequence of moves reaches goal 'Target'"):
+        rasterise(closed, GridSpec(CELL))
+
+
+def test_start_in_a_cell_touched_by_a_buffer_is_refused_at_coarse_cells(site_dict):
+    # The pond's 2 m buffer reaches 38 m east; a start at 37 m is legal, but the 5 m
+    # cell holding it is touched by the buffer. At 1 m cells it is free.
+    site_dict["features"][1]["geometry"]["coordinates"] = point(37, 30)
+    site = site_from_geojson(site_dict)
+    with pytest.raises(SiteError, match=r"start 'Launch' falls in a cell touched by hazard feature 3 \('Pond'\) "
+                                        r"at --cell 5 m; use a smaller --cell or move the start"):
+        rasterise(site, GridSpec(CELL))
+    grid = rasterise(site, GridSpec(1.0))
+    assert grid.label[grid.start] == FREE
+
+
+# ----------------------------------------------------------------------------- arrays
+
+
+def _open(shape=(3, 4)):
+    goal = np.zeros(shape, dtype=bool)
+    goal[-1, -1] = True
+    return np.full(shape, FREE), goal
+
+
+@pytest.mark.parametrize(("change", "message"), [
+    (lambda kw: kw.update(label=np.full(5, FREE)), r"label must be 2-D, got shape \(5,\)"),
+    (lambda kw: kw.update(goal=np.zeros((2, 2), dtype=bool)), r"goal shape \(2, 2\) differs from label shape"),
+    (lambda kw: kw["label"].__setitem__((1, 1), 0), r"label uses hazard 0 but only 0 hazards are given"),
+    (lambda kw: kw.update(drift_class=np.ones((3, 4), dtype=int)),
+     r"drift_class refers to a class with no entry in drift_members"),
+    (lambda kw: kw.update(goal=np.zeros((3, 4), dtype=bool)), r"grid has no goal cell"),
+    (lambda kw: kw["label"].__setitem__((0, 0), OUTSIDE), r"start \(0, 0\) is outside or on the goal"),
+    (lambda kw: kw.update(start=(2, 3)), r"start \(2, 3\) is outside or on the goal"),
+])
+def test_grid_from_arrays_validates(change, message):
+    label, goal = _open()
+    kwargs = {"label": label, "goal": goal, "start": (0, 0)}
+    change(kwargs)
+    with pytest.raises(SettingsError, match=message):
+        grid_from_arrays(**kwargs)
+
+
+def test_grid_from_arrays_keeps_what_it_is_given():
+    label, goal = _open()
+    label[1, 1] = 0
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), cell_m=2.0, hazards=(HazardInfo("Pit"),),
+                            x0=100.0, y0=200.0)
+    assert grid.shape == (3, 4) and grid.n_cells == 12 and grid.start_index == 0
+    assert grid.label.dtype == np.int16 and grid.label[1, 1] == 0
+    assert_array_equal(grid.cost_factor, 1.0)
+    assert_array_equal(grid.drift_class, 0)
+    assert grid.cell_of(100.0 + 2.0 * 3.5, 200.0 + 2.0 * 1.5) == (1, 3)
+
+
+# ----------------------------------------------------------------------------- shortest paths
+
+
+def test_cost_to_goal_on_an_open_grid_is_the_octile_distance():
+    # Closed form for king moves with diagonal cost sqrt(2) and no obstacles:
+    # (max(dx, dy) - min(dx, dy)) + sqrt(2) min(dx, dy), times the cell side.
+    shape, goal_cell, cell = (9, 13), (4, 6), 2.5
+    label = np.full(shape, FREE)
+    goal = np.zeros(shape, dtype=bool)
+    goal[goal_cell] = True
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), cell_m=cell)
+    rows, cols = np.indices(shape)
+    dy, dx = np.abs(rows - goal_cell[0]), np.abs(cols - goal_cell[1])
+    lo, hi = np.minimum(dx, dy), np.maximum(dx, dy)
+    assert_allclose(cost_to_goal(grid, 8).reshape(shape), ((hi - lo) + math.sqrt(2.0) * lo) * cell, rtol=1e-12)
+    # Four moves: the Manhattan distance; one cell side per move: the king's move count.
+    assert_allclose(cost_to_goal(grid, 4).reshape(shape), (dx + dy) * cell, rtol=1e-12)
+    assert_allclose(cost_to_goal(grid, 8, unit_cost=True).reshape(shape), hi * cell, rtol=1e-12)
+
+
+def test_cost_to_goal_scales_with_a_uniform_cost_factor():
+    label, goal = _open((5, 6))
+    plain = grid_from_arrays(label, goal=goal, start=(0, 0))
+    rough = grid_from_arrays(label, goal=goal, start=(0, 0), cost_factor=np.full((5, 6), 1.5))
+    assert_allclose(cost_to_goal(rough), 1.5 * cost_to_goal(plain), rtol=1e-12)
+
+
+def test_cost_to_goal_does_not_cut_corners_past_a_hazard():
+    label = np.array([[FREE, 0], [FREE, FREE]])  # row 0 south: hazard at the south-east
+    goal = np.array([[False, False], [False, True]])
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), cell_m=1.0, hazards=(HazardInfo("Pit"),))
+    # The diagonal from (0, 0) to (1, 1) passes the pit's corner: go north, then east.
+    assert_allclose(cost_to_goal(grid)[0], 2.0)
+
+
+def test_cost_to_goal_adds_the_penalty_of_a_non_ending_hazard():
+    label = np.array([[FREE, FREE, 0, FREE, FREE]])
+    goal = np.array([[True, False, False, False, False]])
+    grid = grid_from_arrays(label, goal=goal, start=(0, 4), cell_m=2.0,
+                            hazards=(HazardInfo("Cattle grid", ends_run=False, penalty_m=7.0),))
+    assert_allclose(cost_to_goal(grid, 4, hazard_penalty_m=[7.0]), [0.0, 2.0, 4.0, 13.0, 15.0])
+    assert_allclose(cost_to_goal(grid, 4), [0.0, 2.0, 4.0, 6.0, 8.0])
+
+
+# ----------------------------------------------------------------------------- demo sites
+
+
+@pytest.mark.parametrize("name", sorted(RECOMMENDED_CELL_M))
+def test_demo_sites_rasterise_at_the_recommended_cell(name):
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", SiteWarning)
+        site = load_site(MAPS / f"{name}.geojson")
+    grid = rasterise(site, GridSpec(RECOMMENDED_CELL_M[name]))
+    assert 2_000 <= grid.n_cells <= 10_000
+    assert grid.warnings == ()
+    assert grid.label[grid.start] == FREE and grid.goal.any()
+    assert set(np.unique(grid.label[grid.label >= 0]).tolist()) == set(range(len(site.hazards)))
+    assert np.isfinite(cost_to_goal(grid)[grid.start_index])
+    assert len(grid.drift_members) >= 2
+
+
+def test_ground_yard_layout_survives_rasterising():
+    site = load_site(MAPS / "ground-yard.geojson")
+    grid = rasterise(site, GridSpec(RECOMMENDED_CELL_M["ground-yard"]))
+    names = [h.name for h in grid.hazards]
+    drop, pond = names.index("Loading-dock drop edge"), names.index("Settling pond")
+    drop_rows = np.unique(np.nonzero(grid.label == drop)[0])
+    pond_rows = np.unique(np.nonzero(grid.label == pond)[0])
+    # Row 0 is south: the drop edge is one row of cells, the pond north of it, with a
+    # four-row lane between them on the slope, where the straight line runs.
+    assert drop_rows.size == 1 and pond_rows.min() - drop_rows.max() - 1 == 4
+    assert drop_rows.max() < grid.start[0] < pond_rows.min()
+    slope_cells = grid.drift_class > 0
+    assert np.all(slope_cells[drop_rows.max() + 1:pond_rows.min(), 22:62])
+    gravel = grid.cost_factor > 1
+    assert gravel.any() and np.nonzero(gravel)[0].max() < drop_rows.min()
