@@ -356,31 +356,75 @@ def solve_transient(chain: Chain, rhs: np.ndarray, mask: np.ndarray, *, transpos
     so the system is non-singular. Returns ``x`` (``(n_states,)`` or
     ``(n_states, k)``) and the largest relative residual.
 
+    The solve is a sparse LU factorisation (SuperLU) in a fill-reducing symmetric
+    ordering (minimum degree on the pattern of ``A + A^T``) without row pivoting:
+    ``I - T`` restricted to states that reach absorption is a non-singular M-matrix,
+    so elimination in any symmetric order needs no pivoting. The factorisation of the
+    latest system is kept (until its chain is garbage-collected), so further solves
+    on the same chain and mask, transposed or not, cost only triangular solves; the
+    chain's matrices must not be changed in place.
+
     Raises
     ------
     SolverError
         When the residual is above ``tol`` or the answer is not finite.
     """
-    from scipy.sparse import identity
-    from scipy.sparse.linalg import spsolve
-
     from planner.errors import SolverError
 
+    mask = np.asarray(mask, dtype=bool)
     idx = np.flatnonzero(mask)
-    sub = chain.transient[idx][:, idx]
-    if transpose:
-        sub = sub.T
-    system = (identity(idx.size, format="csc") - sub.tocsc()).tocsc()
     rhs = np.asarray(rhs, dtype=float)
     b = rhs[idx]
-    x_sub = spsolve(system, b) if idx.size else np.zeros_like(b)
+    if idx.size:
+        system, lu = _factorised(chain.transient, mask, idx)
+        x_sub = lu.solve(np.asfortranarray(b), trans="T" if transpose else "N")
+        applied = system.T @ x_sub if transpose else system @ x_sub
+    else:
+        x_sub = np.zeros_like(b)
+        applied = x_sub
     x_sub = np.asarray(x_sub, dtype=float).reshape(b.shape)
-    residual = float(np.max(np.abs(system @ x_sub - b), initial=0.0) / max(1.0, float(np.max(np.abs(b), initial=0.0))))
-    if not np.all(np.isfinite(x_sub)) or residual > tol:
+    residual = float(np.max(np.abs(applied - b), initial=0.0) / max(1.0, float(np.max(np.abs(b), initial=0.0))))
+    if not np.all(np.isfinite(x_sub)) or not residual <= tol:
         raise SolverError(f"absorbing-chain solve did not converge (relative residual {residual:.2e} > {tol:.0e})")
     x = np.zeros((rhs.shape[0],) + rhs.shape[1:])
     x[idx] = x_sub
     return x, residual
+
+
+#: The factorisation of the most recent system solved (see :func:`solve_transient`).
+_LAST_FACTOR: dict = {}
+
+
+def _factorised(transient, mask: np.ndarray, idx: np.ndarray):
+    """``(I - T[mask, mask])`` in CSC form and its LU factorisation, reused when possible."""
+    import hashlib
+    import weakref
+
+    from scipy.sparse import identity
+    from scipy.sparse.linalg import splu
+
+    from planner.errors import SolverError
+
+    digest = hashlib.blake2b(np.packbits(mask).tobytes(), digest_size=16).digest()
+    last = _LAST_FACTOR.get("entry")
+    if last is not None and last[0]() is transient and last[1] == digest:
+        return last[2], last[3]
+    # Free the previous factorisation before making a new one.
+    _LAST_FACTOR.clear()
+    sub = transient[idx][:, idx]
+    system = (identity(idx.size, format="csc") - sub.tocsc()).tocsc()
+    try:
+        lu = splu(system, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+    except RuntimeError as err:
+        raise SolverError(f"absorbing-chain system is singular ({err}); a state in the mask never ends the run") \
+            from err
+
+    def forget(ref):
+        if _LAST_FACTOR.get("entry", (None,))[0] is ref:
+            _LAST_FACTOR.clear()
+
+    _LAST_FACTOR["entry"] = (weakref.ref(transient, forget), digest, system, lu)
+    return system, lu
 
 
 # ----------------------------------------------------------------------------- kernels

@@ -29,8 +29,12 @@ MIN_AREA_M2 = 1e-4
 #: Largest number of vertices accepted in one feature.
 MAX_VERTICES_PER_FEATURE = 200_000
 
+#: Outcome names of the risk table; a hazard may not take one.
+RESERVED_NAMES = ("none", "goal", "boundary", "incident", "never")
 ROLES = ("boundary", "hazard", "rough", "drift", "start", "goal")
-ZONE_ROLES = ("hazard", "rough", "drift")
+ZONE_#: Outcome names of the risk table; a hazard may not take one.
+RESERVED_NAMES = ("none", "goal", "boundary", "incident", "never")
+ROLES = ("hazard", "rough", "drift")
 
 _POLYGONAL = ("Polygon", "MultiPolygon")
 _GEOMETRY_TYPES = {
@@ -303,6 +307,9 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
             )
     seen: dict[str, str] = {}
     for item in parsed:
+        if item["role"] == "hazard" and item["name"] in RESERVED_NAMES:
+            raise SiteError(f"{source}: {item['label']}: hazard name {item['name']!r} is reserved "
+                            f"({', '.join(RESERVED_NAMES)} name outcomes in the risk table); rename it")
         if item["role"] in ZONE_ROLES:
             if item["name"] in seen:
                 raise SiteError(

@@ -1,0 +1,926 @@
+"""Risk: the absorbing-chain analysis of a policy, its Monte Carlo cross-check, the table.
+
+This stage owns what a reviewer reads before a field trial. A policy (greedy actions,
+or a Q table to take them from) executed with noise epsilon on a model (which fixes
+the drift scale) induces an absorbing Markov chain (:func:`planner.model.policy_chain`).
+From one sparse solve of that chain come, for every cell, the probability of ending
+the run with each event (:class:`Absorption`, :func:`risk_map`); :func:`evaluate`
+turns the start cell's figures into a :class:`RiskRow`: P(goal), P(incident) by zone
+and ``boundary``, P(never absorbed), expected moves and metres given success, the
+same within a step budget, P(at least one entry) for zones that do not end the run,
+and a seeded Monte Carlo estimate with a Wilson 95% interval beside each probability.
+:func:`sensitivity` repeats that over noise levels and drift scales, and
+:func:`format_table` prints the result for people (text, markdown) and programs (csv,
+json). :func:`clearance_m` measures a route's clearance to the true hazard polygons.
+
+States from which the policy can never end the run ("trapped") are found by graph
+reachability and reported as ``p_never``, never as a solver error or a silent zero.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import textwrap
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+
+import numba
+import numpy as np
+
+from planner.errors import SettingsError, SolverError
+from planner.model import (
+    EVENT_BOUNDARY,
+    EVENT_GOAL,
+    EVENT_HAZARD,
+    EVENT_NONE,
+    Chain,
+    Model,
+    build_model,
+    epsilon_greedy,
+    policy_chain,
+    reaches_absorption,
+    solve_transient,
+)
+
+#: Normal quantile of a two-sided 95% interval.
+Z95 = 1.959963984540054
+#: Default noise levels and drift scales of the sensitivity table.
+DEFAULT_NOISES = (0.0, 0.05, 0.1, 0.2)
+DEFAULT_DRIFT_SCALES = (1.0, 1.5, 2.0)
+#: Default cap on the moves of one Monte Carlo rollout.
+DEFAULT_MAX_ROLLOUT_STEPS = 100_000
+#: Relative residual every linear solve must meet.
+SOLVE_TOLERANCE = 1e-8
+#: The probabilities of the ways a run can end must sum to 1 within this.
+SUM_TOLERANCE = 1e-8
+#: Slack when comparing an exact figure with its Monte Carlo interval (round-off only).
+INTERVAL_SLACK = 1e-12
+#: Output formats of :func:`format_table`.
+FORMATS = ("text", "csv", "json", "markdown")
+
+
+# ----------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class McEstimate:
+    """A Monte Carlo estimate of one probability with its Wilson 95% interval.
+
+    Attributes
+    ----------
+    count : rollouts where the event happened.
+    n : rollouts made.
+    estimate : ``count / n``.
+    lo, hi : Wilson score interval at 95% (``z = 1.959963984540054``).
+    """
+
+    count: int
+    n: int
+    estimate: float
+    lo: float
+    hi: float
+
+    def contains(self, p: float, z: float = Z95) -> bool:
+        """Whether ``p`` lies in the interval (with round-off slack); another ``z`` widens it."""
+        lo, hi = (self.lo, self.hi) if z == Z95 else wilson_interval(self.count, self.n, z)
+        return lo - INTERVAL_SLACK <= p <= hi + INTERVAL_SLACK
+
+
+@dataclass(frozen=True)
+class RiskRow:
+    """One row of the risk table: one policy, one noise level, one drift scale.
+
+    All probabilities are from the start cell. Exact figures come from the absorbing
+    chain; Monte Carlo figures (when ``n_rollouts > 0``) are in ``mc``.
+
+    Attributes
+    ----------
+    policy : the policy's name.
+    noise : execution noise epsilon (greedy with ``1 - noise``, uniform otherwise).
+    drift_scale : the model's drift scale.
+    p_goal : P(the run ends at the goal).
+    p_incident : P(the run ends in an incident): the sum of ``p_by_event``.
+    p_by_event : P(the run ends with each event), for every hazard that ends the run
+        and ``"boundary"``.
+    p_never : P(the run never ends): the policy loops forever with this probability.
+    expected_moves, expected_m : expected moves and commanded metres given the run
+        ends at the goal (NaN when ``p_goal`` is 0).
+    residual : largest relative residual of the linear solves behind this row.
+    n_trapped_states : states from which the run can never end under this policy.
+    budget : step budget T, or None.
+    p_goal_within_budget, p_incident_within_budget, p_timeout : P(goal within T moves),
+        P(incident within T moves), P(still going after T moves); None without budget.
+    p_entry : P(at least one move passes through the zone) for every hazard that does
+        not end the run; the start cell itself does not count as an entry, and only
+        moves after which the run goes on count (as in the model's crossing mask).
+    n_rollouts : Monte Carlo rollouts made (0: none).
+    n_truncated : rollouts stopped at the step cap before ending (counted in ``n``
+        but in no event).
+    mc : Monte Carlo estimates, keyed ``"goal"``, ``"incident"``, ``"never"``,
+        ``"event:<name>"``, ``"entry:<zone>"`` and, with a budget, ``"goal_within_budget"``,
+        ``"incident_within_budget"`` and ``"timeout"``.
+    mc_disagrees : keys of ``mc`` whose exact figure falls outside its Wilson interval
+        at ``z = mc_flag_z`` (by default the 95% interval shown).
+    mc_flag_z : the normal quantile of the interval behind ``mc_disagrees``.
+    """
+
+    policy: str
+    noise: float
+    drift_scale: float
+    p_goal: float
+    p_incident: float
+    p_by_event: dict[str, float]
+    p_never: float
+    expected_moves: float
+    expected_m: float
+    residual: float
+    n_trapped_states: int = 0
+    budget: int | None = None
+    p_goal_within_budget: float | None = None
+    p_incident_within_budget: float | None = None
+    p_timeout: float | None = None
+    p_entry: dict[str, float] = field(default_factory=dict)
+    n_rollouts: int = 0
+    n_truncated: int = 0
+    mc: dict[str, McEstimate] = field(default_factory=dict)
+    mc_disagrees: tuple[str, ...] = ()
+    mc_flag_z: float = Z95
+
+    def exact(self) -> dict[str, float]:
+        """The exact figure behind every Monte Carlo key (see ``mc``)."""
+        out = {"goal": self.p_goal, "incident": self.p_incident, "never": self.p_never}
+        out.update({f"event:{k}": v for k, v in self.p_by_event.items()})
+        out.update({f"entry:{k}": v for k, v in self.p_entry.items()})
+        if self.budget is not None:
+            out["goal_within_budget"] = self.p_goal_within_budget
+            out["incident_within_budget"] = self.p_incident_within_budget
+            out["timeout"] = self.p_timeout
+        return out
+
+    def as_dict(self) -> dict:
+        """Plain data (floats, ints, strings, None for NaN), for JSON."""
+        return {
+            "policy": self.policy, "noise": _plain(self.noise), "drift_scale": _plain(self.drift_scale),
+            "p_goal": _plain(self.p_goal), "p_incident": _plain(self.p_incident),
+            "p_by_event": {k: _plain(v) for k, v in self.p_by_event.items()}, "p_never": _plain(self.p_never),
+            "expected_moves": _plain(self.expected_moves), "expected_m": _plain(self.expected_m),
+            "residual": _plain(self.residual), "n_trapped_states": int(self.n_trapped_states),
+            "budget": self.budget, "p_goal_within_budget": _plain(self.p_goal_within_budget),
+            "p_incident_within_budget": _plain(self.p_incident_within_budget), "p_timeout": _plain(self.p_timeout),
+            "p_entry": {k: _plain(v) for k, v in self.p_entry.items()},
+            "n_rollouts": int(self.n_rollouts), "n_truncated": int(self.n_truncated),
+            "mc": {k: {"count": int(m.count), "n": int(m.n), "estimate": _plain(m.estimate), "lo": _plain(m.lo),
+                       "hi": _plain(m.hi)} for k, m in self.mc.items()},
+            "mc_disagrees": list(self.mc_disagrees), "mc_flag_z": _plain(self.mc_flag_z),
+        }
+
+
+@dataclass(frozen=True)
+class Absorption:
+    """How the run ends from every state, under one stochastic policy.
+
+    Attributes
+    ----------
+    chain : the chain solved.
+    probs : float64 ``(n_states, n_columns)``; column ``e`` is P(the run ends with event
+        code ``e``) (column 0, "none", is 0; with ``absorb_crossing`` the last column is
+        P(crossing that zone first)). Rows of inactive states are NaN.
+    never : float64 ``(n_states,)``, P(the run never ends); NaN on inactive states.
+    moves : float64 ``(n_states,)``, expected moves until the run ends; ``inf`` where
+        ``never > 0``, NaN on inactive states.
+    reaches : bool ``(n_states,)``, active states that end the run with positive
+        probability (the rest are trapped).
+    residual : largest relative residual of the solve.
+    """
+
+    chain: Chain
+    probs: np.ndarray
+    never: np.ndarray
+    moves: np.ndarray
+    reaches: np.ndarray
+    residual: float
+
+
+# ----------------------------------------------------------------------------- exact
+
+
+def absorption(model: Model, action_probs: np.ndarray, *, absorb_crossing: int | None = None) -> Absorption:
+    """Solve the absorbing chain of a stochastic policy for every state at once.
+
+    One sparse solve ``(I - T) X = [B, t, 1]`` on the states that reach absorption,
+    where ``B`` holds the one-move absorption probabilities of each event, ``t`` the
+    one-move probability of falling into a trapped state and ``1`` counts moves.
+
+    Parameters
+    ----------
+    model : the model.
+    action_probs : float ``(n_states, n_actions)``, rows of active states sum to 1.
+    absorb_crossing : index of a non-ending hazard to treat as absorbing (see
+        :func:`planner.model.policy_chain`).
+
+    Returns
+    -------
+    Absorption
+
+    Raises
+    ------
+    SolverError
+        When the solve misses its residual tolerance, or the ways a run can end do not
+        sum to 1.
+    """
+    chain = policy_chain(model, action_probs, absorb_crossing=absorb_crossing)
+    return _absorb(model, chain)
+
+
+def _absorb(model: Model, chain: Chain) -> Absorption:
+    active = model.active
+    reaches = reaches_absorption(chain, active)
+    trapped = active & ~reaches
+    n_s = model.n_states
+    into_trap = np.asarray(chain.transient @ trapped.astype(float)).ravel()
+    rhs = np.column_stack([chain.absorb.toarray(), into_trap, np.ones(n_s)])
+    # Events that never happen (e.g. "none", zones that do not end the run) need no solve.
+    used = np.flatnonzero(np.any(rhs[reaches] != 0.0, axis=0))
+    x = np.zeros_like(rhs)
+    residual = 0.0
+    if used.size:
+        x[:, used], residual = solve_transient(chain, rhs[:, used], reaches, tol=SOLVE_TOLERANCE)
+    n_cols = chain.absorb.shape[1]
+    probs = _clip_unit(x[:, :n_cols])
+    never = _clip_unit(x[:, n_cols])
+    never[trapped] = 1.0
+    total = probs.sum(axis=1) + never
+    err = float(np.max(np.abs(total[active] - 1.0), initial=0.0))
+    if err > SUM_TOLERANCE:
+        raise SolverError(f"absorbing-chain solve: end probabilities sum to 1 only within {err:.2e}")
+    moves = np.where(never > 0, np.inf, x[:, n_cols + 1])
+    probs[~active] = np.nan
+    never[~active] = np.nan
+    moves[~active] = np.nan
+    return Absorption(chain=chain, probs=probs, never=never, moves=moves, reaches=reaches, residual=residual)
+
+
+def _clip_unit(x: np.ndarray) -> np.ndarray:
+    """Probabilities clipped to [0, 1]; anything further out than round-off is a bug."""
+    x = np.asarray(x, dtype=float)
+    worst = float(np.max(np.maximum(-x, x - 1.0), initial=0.0))
+    if worst > SUM_TOLERANCE:
+        raise SolverError(f"a computed probability lies {worst:.2e} outside [0, 1]")
+    return np.clip(x, 0.0, 1.0)
+
+
+def risk_map(model: Model, action_probs: np.ndarray) -> np.ndarray:
+    """Per-cell incident probability: P(the run ends in a hazard or off the boundary).
+
+    Parameters
+    ----------
+    model : the model.
+    action_probs : float ``(n_states, n_actions)``, e.g. from
+        :func:`planner.model.epsilon_greedy`.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 ``(n_states,)``, in [0, 1] on active states (0 on trapped ones), NaN on
+        inactive states (outside, ending hazards, goal). Reshape with ``model.shape``.
+    """
+    return incident_probability(absorption(model, action_probs))
+
+
+def incident_probability(result: Absorption) -> np.ndarray:
+    """P(incident) from every state of a solved chain (NaN on inactive states)."""
+    # Summing events may overshoot 1 by round-off; NaN rows stay NaN.
+    return np.clip(result.probs[:, EVENT_BOUNDARY:].sum(axis=1), 0.0, 1.0)
+
+
+def greedy_actions(q: np.ndarray) -> np.ndarray:
+    """Greedy action of every state of a Q table ``(n_states, n_actions)``.
+
+    Ties go to the lowest action index (``numpy.argmax``), so the result is
+    deterministic.
+    """
+    q = np.asarray(q, dtype=float)
+    if q.ndim != 2:
+        raise SettingsError(f"a Q table must be 2-D (n_states, n_actions), got shape {q.shape}")
+    return np.argmax(q, axis=1).astype(np.int64)
+
+
+def _policy_actions(model: Model, policy) -> np.ndarray:
+    policy = np.asarray(policy)
+    if policy.ndim == 2:
+        if policy.shape != (model.n_states, model.n_actions):
+            raise SettingsError(f"Q table has shape {policy.shape}, model needs {(model.n_states, model.n_actions)}")
+        return greedy_actions(policy)
+    if policy.shape != (model.n_states,):
+        raise SettingsError(f"greedy actions have shape {policy.shape}, model needs ({model.n_states},)")
+    if not np.issubdtype(policy.dtype, np.integer):
+        raise SettingsError(f"greedy actions must be whole numbers, got dtype {policy.dtype}")
+    act = policy.astype(np.int64)
+    bad = model.active & ((act < 0) | (act >= model.n_actions))
+    if bad.any():
+        s = int(np.flatnonzero(bad)[0])
+        raise SettingsError(f"greedy action {act[s]} of state {s} is not in 0..{model.n_actions - 1}")
+    return np.where(model.active, act, 0)
+
+
+def _ending_hazards(model: Model, hazards) -> np.ndarray:
+    """Which hazards end the run: from ``hazards`` (HazardInfo) or read off the table."""
+    n_h = len(model.event_names) - EVENT_HAZARD
+    if hazards is not None:
+        if len(hazards) != n_h:
+            raise SettingsError(f"{len(hazards)} hazards given, the model has {n_h}")
+        return np.array([bool(h.ends_run) for h in hazards], dtype=bool)
+    # A zone whose bit is ever set in the crossing mask does not end the run.
+    union = int(np.bitwise_or.reduce(model.crossed)) if model.crossed.size else 0
+    return np.array([not (union >> h) & 1 for h in range(n_h)], dtype=bool)
+
+
+def _conditional_on_goal(model: Model, chain: Chain, action_probs: np.ndarray, h: np.ndarray,
+                         reaches: np.ndarray) -> tuple[float, float, float]:
+    """Expected moves and commanded metres from the start, given the run ends at the goal.
+
+    With ``h`` = P(goal) per state, ``N = (I - T)^-1`` and ``g(s, a)`` = P(goal | the
+    next action from ``s`` is ``a``), the expected moves on the event "goal" are
+    ``sum_t N[s, t] h(t)`` (each move made from a transient state ``t`` counts when
+    the run then ends at the goal, which has probability ``h(t)``), and the metres
+    ``sum_t N[s, t] sum_a pi(t, a) m(a) g(t, a)``; dividing by ``h(s)`` conditions on
+    success (the h-transform of the chain).
+    """
+    n_s, n_a = model.n_states, model.n_actions
+    counts = np.diff(model.offsets)
+    value = np.where(model.event == EVENT_GOAL, 1.0, 0.0)
+    going = model.event == EVENT_NONE
+    value[going] = h[model.next_state[going]]
+    weighted = model.prob * value
+    g = np.zeros(n_s * n_a)
+    full = counts > 0
+    if weighted.size:
+        g[full] = np.add.reduceat(weighted, model.offsets[:-1][full])
+    g = g.reshape(n_s, n_a)
+    check = float(np.max(np.abs((action_probs * g).sum(axis=1) - h)[reaches], initial=0.0))
+    if check > SUM_TOLERANCE:
+        raise SolverError(f"goal probabilities are not self-consistent within {check:.2e} (one-step check)")
+    metres = (action_probs * g * model.move_m[None, :]).sum(axis=1)
+    y, residual = solve_transient(chain, np.column_stack([h, metres]), reaches, tol=SOLVE_TOLERANCE)
+    s0 = model.start
+    if h[s0] <= 0.0:
+        return math.nan, math.nan, residual
+    return float(y[s0, 0] / h[s0]), float(y[s0, 1] / h[s0]), residual
+
+
+def _within_budget(model: Model, chain: Chain, budget: int) -> tuple[np.ndarray, float]:
+    """Absorption probability of each column within ``budget`` moves, and P(timeout)."""
+    step = chain.transient.T.tocsr()
+    absorb_t = chain.absorb.T.tocsr()
+    dist = np.zeros(model.n_states)
+    dist[model.start] = 1.0
+    ended = np.zeros(chain.absorb.shape[1])
+    for _ in range(budget):
+        ended += absorb_t @ dist
+        dist = step @ dist
+        if not dist.any():
+            break
+    timeout = float(dist.sum())
+    err = abs(ended.sum() + timeout - 1.0)
+    if err > SUM_TOLERANCE:
+        raise SolverError(f"step-budget iteration: probabilities sum to 1 only within {err:.2e}")
+    return _clip_unit(ended), min(max(timeout, 0.0), 1.0)
+
+
+def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy", budget: int | None = None,
+             rollouts: int = 0, rng: np.random.Generator | None = None,
+             max_rollout_steps: int = DEFAULT_MAX_ROLLOUT_STEPS, hazards=None, flag_z: float = Z95) -> RiskRow:
+    """The risk row of one policy at one noise level on one model.
+
+    Parameters
+    ----------
+    model : the model (its ``dynamics.drift_scale`` is the row's drift scale).
+    greedy_action : int ``(n_states,)`` greedy actions, or a Q table
+        ``(n_states, n_actions)`` to take them from (ties to the lowest index).
+    noise : execution noise epsilon in [0, 1].
+    name : the policy's name in the table.
+    budget : step budget T (moves), or None.
+    rollouts : Monte Carlo rollouts (0: none).
+    rng : the generator of the rollouts; required when ``rollouts > 0``.
+    max_rollout_steps : a rollout still going after this many moves is truncated
+        (raised to ``budget`` when that is larger).
+    hazards : the grid's ``HazardInfo`` tuple, to say which hazards end the run; by
+        default read off the table (a zone ever crossed without ending the run does
+        not end it).
+    flag_z : normal quantile of the Wilson interval an exact figure must fall in not to
+        be flagged (default: the 95% interval shown). A table makes many checks, and
+        about 1 in 20 misses a 95% interval by chance; a larger ``z`` (e.g. a
+        Bonferroni level for the whole table) makes a flag evidence of a real
+        disagreement.
+
+    Returns
+    -------
+    RiskRow
+
+    Raises
+    ------
+    SettingsError
+        On a bad policy, noise, budget or rollout setting, or a start state that is
+        not active.
+    SolverError
+        When a solve misses its tolerance.
+    """
+    if not model.active[model.start]:
+        raise SettingsError(f"start state {model.start} is not a state the vehicle can be in")
+    if budget is not None and not (isinstance(budget, (int, np.integer)) and budget >= 0):
+        raise SettingsError(f"--budget must be a whole number of moves >= 0, got {budget!r}")
+    if not (isinstance(rollouts, (int, np.integer)) and rollouts >= 0):
+        raise SettingsError(f"--rollouts must be a whole number >= 0, got {rollouts!r}")
+    if rollouts > 0 and not isinstance(rng, np.random.Generator):
+        raise SettingsError("Monte Carlo rollouts need a numpy.random.Generator (rng=...)")
+    if not (isinstance(flag_z, (int, float)) and math.isfinite(flag_z) and flag_z > 0):
+        raise SettingsError(f"flag_z must be a positive number, got {flag_z!r}")
+    if not (isinstance(max_rollout_steps, (int, np.integer)) and max_rollout_steps >= 1):
+        raise SettingsError(f"max_rollout_steps must be a whole number >= 1, got {max_rollout_steps!r}")
+    greedy = _policy_actions(model, greedy_action)
+    action_probs = epsilon_greedy(greedy, model.n_actions, noise)
+    ends = _ending_hazards(model, hazards)
+    names = model.event_names
+    s0 = model.start
+
+    result = absorption(model, action_probs)
+    row_probs = result.probs[s0]
+    incident_codes = [EVENT_BOUNDARY] + [EVENT_HAZARD + h for h in np.flatnonzero(ends)]
+    p_by_event = {names[c]: float(row_probs[c]) for c in incident_codes}
+    p_incident = min(float(row_probs[EVENT_BOUNDARY:].sum()), 1.0)
+    p_goal = float(row_probs[EVENT_GOAL])
+    p_never = float(result.never[s0])
+    h = np.nan_to_num(result.probs[:, EVENT_GOAL], nan=0.0)
+    moves, metres, res_cond = _conditional_on_goal(model, result.chain, action_probs, h, result.reaches)
+    residual = max(result.residual, res_cond)
+
+    within = {}
+    if budget is not None:
+        ended, timeout = _within_budget(model, result.chain, int(budget))
+        within = dict(p_goal_within_budget=float(ended[EVENT_GOAL]),
+                      p_incident_within_budget=min(float(ended[EVENT_BOUNDARY:].sum()), 1.0),
+                      p_timeout=timeout)
+
+    p_entry = {}
+    for h_idx in np.flatnonzero(~ends):
+        entry = absorption(model, action_probs, absorb_crossing=int(h_idx))
+        p_entry[names[EVENT_HAZARD + h_idx]] = float(entry.probs[s0, -1])
+        residual = max(residual, entry.residual)
+
+    row = RiskRow(
+        policy=str(name), noise=float(noise), drift_scale=float(model.dynamics.drift_scale), p_goal=p_goal,
+        p_incident=p_incident, p_by_event=p_by_event, p_never=p_never, expected_moves=moves, expected_m=metres,
+        residual=float(residual), n_trapped_states=int((model.active & ~result.reaches).sum()),
+        budget=None if budget is None else int(budget), p_entry=p_entry, **within,
+    )
+    if rollouts > 0:
+        row = _with_monte_carlo(row, model, action_probs, result.reaches, ends, int(rollouts), rng,
+                                max(int(max_rollout_steps), int(budget or 0)), float(flag_z))
+    return row
+
+
+def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: Sequence[float] = DEFAULT_NOISES,
+                drift_scales: Sequence[float] = DEFAULT_DRIFT_SCALES, budget: int | None = None,
+                rollouts: int = 0, seed: np.random.SeedSequence | int | None = None,
+                max_rollout_steps: int = DEFAULT_MAX_ROLLOUT_STEPS, flag_z: float = Z95) -> list[RiskRow]:
+    """The risk table over drift scales, policies and noise levels.
+
+    The model is rebuilt once per drift scale (``dataclasses.replace(dynamics,
+    drift_scale=m)``). Rows come ordered by drift scale, then policy (in the mapping's
+    order), then noise. Row ``k``'s rollouts use the ``k``-th child of ``seed``
+    (``SeedSequence(seed.entropy, spawn_key=seed.spawn_key + (k,))``, what
+    ``seed.spawn`` would give on a fresh sequence), so the table is reproducible
+    from ``seed`` alone and ``seed`` itself is not advanced.
+
+    Parameters
+    ----------
+    grid : the grid (``planner.grid.Grid``).
+    dynamics : the base ``planner.model.Dynamics``.
+    policies : policy name -> greedy actions ``(n_states,)`` or Q table.
+    noises, drift_scales : the levels to tabulate.
+    budget, rollouts, max_rollout_steps, flag_z : as in :func:`evaluate`.
+    seed : root of the rollouts' randomness; required when ``rollouts > 0``.
+
+    Returns
+    -------
+    list of RiskRow
+    """
+    if not policies:
+        raise SettingsError("sensitivity needs at least one policy")
+    if rollouts and seed is None:
+        raise SettingsError("Monte Carlo rollouts need a seed (a numpy.random.SeedSequence or an int)")
+    root = seed if isinstance(seed, np.random.SeedSequence) or seed is None else np.random.SeedSequence(seed)
+    rows = []
+    k = 0
+    for scale in drift_scales:
+        model = build_model(grid, replace(dynamics, drift_scale=float(scale)))
+        for name, policy in policies.items():
+            for eps in noises:
+                rng = None
+                if rollouts:
+                    child = np.random.SeedSequence(root.entropy, spawn_key=tuple(root.spawn_key) + (k,),
+                                                   pool_size=root.pool_size)
+                    rng = np.random.default_rng(child)
+                rows.append(evaluate(model, policy, noise=float(eps), name=name, budget=budget, rollouts=rollouts,
+                                     rng=rng, max_rollout_steps=max_rollout_steps, hazards=grid.hazards,
+                                     flag_z=flag_z))
+                k += 1
+    return rows
+
+
+# ----------------------------------------------------------------------------- Monte Carlo
+
+
+def wilson_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
+    """Wilson score interval for a binomial proportion.
+
+    Wilson, E. B. (1927), "Probable inference, the law of succession, and statistical
+    inference", Journal of the American Statistical Association 22(158), 209-212.
+
+    Examples
+    --------
+    >>> lo, hi = wilson_interval(0, 100)
+    >>> f"{lo:.4f} {hi:.4f}"
+    '0.0000 0.0370'
+    """
+    if not (n > 0 and 0 <= count <= n):
+        raise SettingsError(f"Wilson interval needs 0 <= count <= n and n > 0, got {count} of {n}")
+    p = count / n
+    z2 = z * z
+    denom = 1.0 + z2 / n
+    centre = (p + z2 / (2 * n)) / denom
+    half = z / denom * math.sqrt(p * (1 - p) / n + z2 / (4 * n * n))
+    lo = 0.0 if count == 0 else max(0.0, centre - half)
+    hi = 1.0 if count == n else min(1.0, centre + half)
+    return lo, hi
+
+
+def mc_estimate(count: int, n: int) -> McEstimate:
+    """A :class:`McEstimate` from a count of ``n`` rollouts."""
+    lo, hi = wilson_interval(count, n)
+    return McEstimate(count=int(count), n=int(n), estimate=count / n, lo=lo, hi=hi)
+
+
+def sample_runs(model: Model, action_probs: np.ndarray, n: int, rng: np.random.Generator, *,
+             trapped: np.ndarray | None = None, max_steps: int = DEFAULT_MAX_ROLLOUT_STEPS):
+    """Sample ``n`` runs of a stochastic policy from the start on the model's table.
+
+    Parameters
+    ----------
+    trapped : bool ``(n_states,)``; a run entering such a state is stopped and counted
+        as never ending (they cannot end the run; see :class:`Absorption`).
+    max_steps : a run still going after this many moves is stopped (truncated).
+
+    Returns
+    -------
+    end : int16 ``(n,)``, the event code that ended each run (``EVENT_GOAL``,
+        ``EVENT_BOUNDARY``, ``EVENT_HAZARD + h``), 0 for never (trapped), -1 truncated.
+    steps : int64 ``(n,)``, moves made.
+    crossed : int64 ``(n,)``, bit mask of non-ending zones crossed by moves after
+        which the run went on.
+    """
+    action_probs = np.asarray(action_probs, dtype=float)
+    cum = np.cumsum(action_probs, axis=1)
+    # The last action with positive probability takes any round-off shortfall, so the
+    # sampler cannot fall off the end of the table nor pick an impossible action.
+    positive = action_probs > 0
+    last = action_probs.shape[1] - 1 - np.argmax(positive[:, ::-1], axis=1)
+    cum[np.arange(cum.shape[1])[None, :] >= last[:, None]] = 1.0
+    if trapped is None:
+        trapped = np.zeros(model.n_states, dtype=bool)
+    end = np.empty(n, dtype=np.int16)
+    steps = np.empty(n, dtype=np.int64)
+    crossed = np.empty(n, dtype=np.int64)
+    _rollout_kernel(rng, int(model.start), cum, model.offsets, model.next_state, model.prob, model.event,
+                    model.crossed, np.ascontiguousarray(trapped, dtype=np.bool_), int(max_steps), end, steps, crossed)
+    return end, steps, crossed
+
+
+@numba.njit(cache=True)
+def _rollout_kernel(rng, start, cum, offsets, next_state, prob, event, crossed, trapped, max_steps,
+                    out_end, out_steps, out_crossed):
+    n_a = cum.shape[1]
+    for i in range(out_end.size):
+        s = start
+        steps = 0
+        mask = np.int64(0)
+        end = -1
+        while True:
+            if trapped[s]:
+                end = 0
+                break
+            if steps >= max_steps:
+                break
+            u = rng.random()
+            a = n_a - 1
+            for j in range(n_a):
+                if u < cum[s, j]:
+                    a = j
+                    break
+            k = s * n_a + a
+            lo = offsets[k]
+            hi = offsets[k + 1]
+            u = rng.random()
+            acc = 0.0
+            o = hi - 1
+            for j in range(lo, hi):
+                acc += prob[j]
+                if u < acc:
+                    o = j
+                    break
+            steps += 1
+            ev = event[o]
+            if ev != 0:
+                end = ev
+                break
+            mask |= crossed[o]
+            s = next_state[o]
+        out_end[i] = end
+        out_steps[i] = steps
+        out_crossed[i] = mask
+
+
+def _with_monte_carlo(row: RiskRow, model: Model, action_probs, reaches, ends, n: int, rng, max_steps: int,
+                      flag_z: float):
+    end, steps, crossed = sample_runs(model, action_probs, n, rng, trapped=model.active & ~reaches,
+                                   max_steps=max_steps)
+    names = model.event_names
+    mc = {
+        "goal": mc_estimate(int(np.sum(end == EVENT_GOAL)), n),
+        "incident": mc_estimate(int(np.sum(end >= EVENT_BOUNDARY)), n),
+        "never": mc_estimate(int(np.sum(end == 0)), n),
+    }
+    for code in [EVENT_BOUNDARY] + [EVENT_HAZARD + h for h in np.flatnonzero(ends)]:
+        mc[f"event:{names[code]}"] = mc_estimate(int(np.sum(end == code)), n)
+    for h in np.flatnonzero(~ends):
+        mc[f"entry:{names[EVENT_HAZARD + h]}"] = mc_estimate(int(np.sum((crossed >> h) & 1)), n)
+    if row.budget is not None:
+        in_time = steps <= row.budget
+        mc["goal_within_budget"] = mc_estimate(int(np.sum((end == EVENT_GOAL) & in_time)), n)
+        mc["incident_within_budget"] = mc_estimate(int(np.sum((end >= EVENT_BOUNDARY) & in_time)), n)
+        mc["timeout"] = mc_estimate(int(np.sum(~((end > 0) & in_time))), n)
+    exact = row.exact()
+    disagrees = tuple(k for k, est in mc.items() if not est.contains(exact[k], flag_z))
+    return replace(row, n_rollouts=n, n_truncated=int(np.sum(end == -1)), mc=mc, mc_disagrees=disagrees,
+                   mc_flag_z=flag_z)
+
+
+# ----------------------------------------------------------------------------- clearance
+
+
+def clearance_m(path_xy, hazards) -> dict[str, float]:
+    """Clearance of a route to each hazard polygon, in metres (0 where they touch).
+
+    Parameters
+    ----------
+    path_xy : float ``(n, 2)``, east/north metres of the route's points in order (a
+        polyline through cell centres; one point is a point).
+    hazards : mapping name -> shapely geometry, or site zones (objects with ``name``
+        and ``geometry``, e.g. ``site.hazards``): the true polygons, unbuffered.
+
+    Returns
+    -------
+    dict
+        hazard name -> shortest distance from the route to the polygon, metres.
+    """
+    import shapely
+
+    xy = np.asarray(path_xy, dtype=float).reshape(-1, 2)
+    if xy.shape[0] == 0:
+        raise SettingsError("clearance needs a route with at least one point")
+    if not np.all(np.isfinite(xy)):
+        raise SettingsError("route coordinates must be finite")
+    route = shapely.points(xy[0]) if xy.shape[0] == 1 else shapely.linestrings(xy)
+    items = hazards.items() if isinstance(hazards, Mapping) else ((z.name, z.geometry) for z in hazards)
+    return {str(name): float(shapely.distance(route, geom)) for name, geom in items}
+
+
+# ----------------------------------------------------------------------------- formatting
+
+
+def format_prob(p) -> str:
+    """A probability in a form that keeps small values (and small complements) readable.
+
+    ``0`` and ``1`` print as such; values below 0.01 in two-digit scientific form
+    (``1.2e-4``); values above 0.9999 as one minus a small number (``1-3.0e-6``);
+    the rest with four decimals. ``None`` and NaN print as ``-``.
+
+    Examples
+    --------
+    >>> [format_prob(p) for p in (0.0, 1.2e-4, 0.25, 0.999997, 1.0)]
+    ['0', '1.2e-4', '0.2500', '1-3.0e-6', '1']
+    """
+    if p is None or (isinstance(p, float) and math.isnan(p)):
+        return "-"
+    p = float(p)
+    if p == 0.0:
+        return "0"
+    if p == 1.0:
+        return "1"
+    if not 0.0 < p < 1.0:
+        return f"{p:.3g}"
+    if p < 0.01:
+        return _short_exp(p)
+    if p > 0.9999:
+        return "1-" + _short_exp(1.0 - p)
+    return f"{p:.4f}"
+
+
+def _short_exp(x: float) -> str:
+    mantissa, exponent = f"{x:.1e}".split("e")
+    return f"{mantissa}e{int(exponent)}"
+
+
+def _num(x, digits: int = 1) -> str:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "-" if x is None or math.isnan(x) else ("inf" if x > 0 else "-inf")
+    return f"{x:.{digits}f}"
+
+
+def _plain(x):
+    """A float for JSON: None for NaN/None, strings for infinities are not allowed."""
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def format_table(rows: Iterable[RiskRow], fmt: str = "text") -> str:
+    """The risk table as text (80 columns), csv, json or markdown.
+
+    Exact figures whose Monte Carlo interval does not contain them are marked ``!``
+    in text and markdown, with a footnote; csv and json carry ``mc_disagrees``.
+    JSON is plain data (no NaN: ``null``) with sorted keys.
+
+    Parameters
+    ----------
+    rows : the rows (from :func:`evaluate` or :func:`sensitivity`).
+    fmt : ``"text"``, ``"csv"``, ``"json"`` or ``"markdown"``.
+
+    Returns
+    -------
+    str
+    """
+    rows = list(rows)
+    if fmt not in FORMATS:
+        raise SettingsError(f"--format must be one of {', '.join(FORMATS)}, got {fmt!r}")
+    if fmt == "json":
+        return json.dumps([r.as_dict() for r in rows], sort_keys=True, indent=2, allow_nan=False) + "\n"
+    if fmt == "csv":
+        return _format_csv(rows)
+    if fmt == "markdown":
+        return _format_markdown(rows)
+    return _format_text(rows)
+
+
+def _flat(row: RiskRow) -> dict:
+    out = {
+        "policy": row.policy, "noise": row.noise, "drift_scale": row.drift_scale, "p_goal": row.p_goal,
+        "p_incident": row.p_incident,
+    }
+    out.update({f"p_event:{k}": v for k, v in row.p_by_event.items()})
+    out.update({"p_never": row.p_never, "expected_moves": row.expected_moves, "expected_m": row.expected_m})
+    out.update({"budget": row.budget, "p_goal_within_budget": row.p_goal_within_budget,
+                "p_incident_within_budget": row.p_incident_within_budget, "p_timeout": row.p_timeout})
+    out.update({f"p_entry:{k}": v for k, v in row.p_entry.items()})
+    out.update({"n_rollouts": row.n_rollouts, "n_truncated": row.n_truncated})
+    for k, m in row.mc.items():
+        out.update({f"mc_{k}": m.estimate, f"mc_{k}_lo": m.lo, f"mc_{k}_hi": m.hi})
+    out.update({"mc_disagrees": " ".join(row.mc_disagrees), "mc_flag_z": row.mc_flag_z, "residual": row.residual,
+                "n_trapped_states": row.n_trapped_states})
+    return out
+
+
+def _format_csv(rows: list[RiskRow]) -> str:
+    flat = [_flat(r) for r in rows]
+    columns = []
+    for f in flat:
+        columns.extend(k for k in f if k not in columns)
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(columns)
+    for f in flat:
+        writer.writerow(["" if _blank(f.get(c)) else (repr(float(f[c])) if isinstance(f[c], float) else f[c])
+                         for c in columns])
+    return buf.getvalue()
+
+
+def _blank(x) -> bool:
+    return x is None or (isinstance(x, float) and math.isnan(x))
+
+
+def _mark(row: RiskRow, key: str, text: str) -> str:
+    return text + ("!" if key in row.mc_disagrees else "")
+
+
+_TEXT_HEADER = (
+    f"{'policy':<12} {'noise':>5} {'drift':>5} {'P(goal)':>9} {'P(incid.)':>9} {'P(never)':>9} "
+    f"{'moves|goal':>10} {'m|goal':>9}"
+)
+
+
+def _format_text(rows: list[RiskRow]) -> str:
+    lines = [_TEXT_HEADER, "-" * len(_TEXT_HEADER)]
+    flagged = False
+    wrap = textwrap.TextWrapper(width=80, initial_indent="  ", subsequent_indent="      ", break_on_hyphens=False)
+    for r in rows:
+        lines.append(
+            f"{r.policy[:12]:<12} {r.noise:>5.2f} {r.drift_scale:>5.2f} "
+            f"{_mark(r, 'goal', format_prob(r.p_goal)):>9} {_mark(r, 'incident', format_prob(r.p_incident)):>9} "
+            f"{_mark(r, 'never', format_prob(r.p_never)):>9} {_num(r.expected_moves):>10} {_num(r.expected_m):>9}"
+        )
+        details = []
+        if r.p_by_event:
+            parts = [f"{k} {_mark(r, f'event:{k}', format_prob(v))}" for k, v in r.p_by_event.items()]
+            details.append("incidents: " + ", ".join(parts))
+        if r.p_entry:
+            parts = [f"{k} {_mark(r, f'entry:{k}', format_prob(v))}" for k, v in r.p_entry.items()]
+            details.append("entries: " + ", ".join(parts))
+        if r.budget is not None:
+            details.append(
+                f"within {r.budget} moves: goal {_mark(r, 'goal_within_budget', format_prob(r.p_goal_within_budget))}"
+                f", incident {_mark(r, 'incident_within_budget', format_prob(r.p_incident_within_budget))}"
+                f", timeout {_mark(r, 'timeout', format_prob(r.p_timeout))}"
+            )
+        if r.n_trapped_states:
+            details.append(f"{r.n_trapped_states} states can never end the run under this policy")
+        if r.mc:
+            parts = [f"{_short_key(k)} {format_prob(m.estimate)} [{format_prob(m.lo)}, {format_prob(m.hi)}]"
+                     for k, m in r.mc.items()]
+            trunc = f", {r.n_truncated} truncated" if r.n_truncated else ""
+            details.append(f"Monte Carlo ({r.n_rollouts} runs{trunc}): " + "; ".join(parts))
+        flagged = flagged or bool(r.mc_disagrees)
+        lines.extend(wrap.fill(d) for d in details)
+    if flagged:
+        lines.extend(_footnote(rows, 80))
+    return "\n".join(lines) + "\n"
+
+
+def _footnote(rows: list[RiskRow], width: int | None) -> list[str]:
+    levels = sorted({r.mc_flag_z for r in rows if r.mc_disagrees})
+    if levels == [Z95]:
+        text = ("! exact figure outside its Monte Carlo 95% (Wilson) interval. About 1 check in 20 misses "
+                "by chance: one mark is weak evidence, many marks are strong.")
+    else:
+        z = ", ".join(f"{v:.2f}" for v in levels)
+        text = f"! exact figure outside its Monte Carlo Wilson interval at z = {z} (wider than the 95% shown)."
+    return [text] if width is None else textwrap.wrap(text, width, subsequent_indent="  ")
+
+
+def _short_key(key: str) -> str:
+    return key.split(":", 1)[1] if ":" in key else key.replace("_within_budget", " in budget")
+
+
+def _format_markdown(rows: list[RiskRow]) -> str:
+    events = _union(r.p_by_event for r in rows)
+    entries = _union(r.p_entry for r in rows)
+    with_budget = any(r.budget is not None for r in rows)
+    with_mc = any(r.mc for r in rows)
+    head = ["policy", "noise", "drift", "P(goal)", "P(incident)"] + [f"P({e})" for e in events] + ["P(never)"]
+    head += ["moves given goal", "metres given goal"]
+    if with_budget:
+        head += ["budget", "P(goal) in budget", "P(incident) in budget", "P(timeout)"]
+    head += [f"P(entry {e})" for e in entries]
+    if with_mc:
+        head += ["MC runs", "MC P(goal) [95%]", "MC P(incident) [95%]"]
+    lines = ["| " + " | ".join(head) + " |", "|" + "|".join("---" for _ in head) + "|"]
+    flagged = False
+    for r in rows:
+        cells = [r.policy.replace("|", "/"), f"{r.noise:.2f}", f"{r.drift_scale:.2f}",
+                 _mark(r, "goal", format_prob(r.p_goal)), _mark(r, "incident", format_prob(r.p_incident))]
+        cells += [_mark(r, f"event:{e}", format_prob(r.p_by_event.get(e))) for e in events]
+        cells += [_mark(r, "never", format_prob(r.p_never)), _num(r.expected_moves), _num(r.expected_m)]
+        if with_budget:
+            cells += ["-" if r.budget is None else str(r.budget),
+                      _mark(r, "goal_within_budget", format_prob(r.p_goal_within_budget)),
+                      _mark(r, "incident_within_budget", format_prob(r.p_incident_within_budget)),
+                      _mark(r, "timeout", format_prob(r.p_timeout))]
+        cells += [_mark(r, f"entry:{e}", format_prob(r.p_entry.get(e))) for e in entries]
+        if with_mc:
+            cells += [str(r.n_rollouts)] + [
+                f"{format_prob(r.mc[k].estimate)} [{format_prob(r.mc[k].lo)}, {format_prob(r.mc[k].hi)}]"
+                if k in r.mc else "-" for k in ("goal", "incident")
+            ]
+        flagged = flagged or bool(r.mc_disagrees)
+        lines.append("| " + " | ".join(cells) + " |")
+    if flagged:
+        lines.append("")
+        lines.append(" ".join(_footnote(rows, None)))
+    return "\n".join(lines) + "\n"
+
+
+def _union(dicts) -> list[str]:
+    out = []
+    for d in dicts:
+        out.extend(k for k in d if k not in out)
+    return out
+
+
+__all__ = [
+    "DEFAULT_DRIFT_SCALES", "DEFAULT_NOISES", "Z95", "Absorption", "McEstimate", "RiskRow", "absorption",
+    "clearance_m", "evaluate", "format_prob", "format_table", "greedy_actions", "incident_probability",
+    "mc_estimate", "risk_map", "sample_runs", "sensitivity", "wilson_interval",
+]

@@ -1,0 +1,551 @@
+"""The risk table: absorbing-chain figures against closed forms, a textbook, gymnasium and Monte Carlo."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from numpy.testing import assert_allclose
+
+from planner.errors import SettingsError
+from planner.grid import FREE, DriftInfo, GridSpec, HazardInfo, grid_from_arrays, rasterise
+from planner.model import EVENT_GOAL, EVENT_HAZARD, Dynamics, build_model, epsilon_greedy
+from planner.risk import (
+    McEstimate,
+    RiskRow,
+    absorption,
+    clearance_m,
+    evaluate,
+    format_prob,
+    format_table,
+    greedy_actions,
+    mc_estimate,
+    risk_map,
+    sample_runs,
+    sensitivity,
+    wilson_interval,
+)
+from planner.site import site_from_geojson
+
+EAST, WEST = 1, 3  # 4-move action indices (N, E, S, W)
+
+
+# ----------------------------------------------------------------------------- corridors
+#
+# A 1 x (a + 1) corridor: column 0 is a hazard (or a trap, or a zone that does not end
+# the run), column a the goal, edges are walls, 4 moves, no slip. The policy always
+# commands east. A drift zone over the whole corridor pushes two cells west with
+# probability q ("chance"), so a move lands one cell east with probability p = 1 - q
+# and one cell west with probability q: exactly the gambler's-ruin walk on 0..a with
+# no stay-put steps (the swept path of a one-cell move crosses only the landing cell).
+
+
+def corridor(a: int, start: int, *, west_chance: float = 0.0, first: str = "hazard"):
+    """Grid and model of the corridor; ``first`` is what column 0 is."""
+    label = np.full((1, a + 1), FREE)
+    hazards = ()
+    if first in ("hazard", "zone"):
+        label[0, 0] = 0
+        hazards = (HazardInfo("Drop", ends_run=(first == "hazard")),)
+    goal = np.zeros(label.shape, dtype=bool)
+    goal[0, a] = True
+    drifts, drift_class, members = (), None, ((),)
+    if west_chance > 0:
+        drifts = (DriftInfo("West gust", east_m=-2.0, north_m=0.0, spread_m=0.0, chance=west_chance),)
+        drift_class = np.ones(label.shape, dtype=np.int32)
+        members = ((), (0,))
+    grid = grid_from_arrays(label, goal=goal, start=(0, start), cell_m=1.0, hazards=hazards, drifts=drifts,
+                            drift_class=drift_class, drift_members=members)
+    model = build_model(grid, Dynamics(n_actions=4, slip=0.0, edge="wall", step_cost="move",
+                                       hazard_penalty_m=1000.0))
+    return grid, model
+
+
+def east_policy(model):
+    return np.full(model.n_states, EAST, dtype=np.int64)
+
+
+def ruin_probability(z: int, a: int, p: float) -> float:
+    # Feller, An Introduction to Probability Theory and Its Applications, Vol. 1, 3rd ed.,
+    # ch. XIV, sec. 2 (the classical ruin problem): q_z = ((q/p)^a - (q/p)^z) / ((q/p)^a - 1),
+    # and q_z = 1 - z/a when p = q = 1/2.
+    q = 1.0 - p
+    if abs(p - q) < 1e-15:
+        return 1.0 - z / a
+    r = q / p
+    return (r**a - r**z) / (r**a - 1.0)
+
+
+def expected_duration(z: int, a: int, p: float) -> float:
+    # Feller, Vol. 1, 3rd ed., ch. XIV, sec. 3 (expected duration of the game):
+    # D_z = z/(q - p) - (a/(q - p)) (1 - (q/p)^z) / (1 - (q/p)^a), and D_z = z (a - z) when p = q.
+    q = 1.0 - p
+    if abs(p - q) < 1e-15:
+        return z * (a - z)
+    r = q / p
+    return z / (q - p) - a / (q - p) * (1.0 - r**z) / (1.0 - r**a)
+
+
+def duration_given_win(z: int, a: int, p: float) -> float:
+    # Derived for this test, independently of the code under test: u(z) = E_z[T; win]
+    # solves u(z) = P_z(win) + p u(z + 1) + q u(z - 1), u(0) = u(a) = 0. With r = q/p the
+    # solution divided by P_z(win) is (a (1 + r^a)/(1 - r^a) - z (1 + r^z)/(1 - r^z)) / (p - q);
+    # for p = 1/2 it is (a^2 - z^2) / 3. (Checked against a dense solve in
+    # test_duration_given_win_formula.)
+    q = 1.0 - p
+    if abs(p - q) < 1e-15:
+        return (a * a - z * z) / 3.0
+    r = q / p
+    return (a * (1 + r**a) / (1 - r**a) - z * (1 + r**z) / (1 - r**z)) / (p - q)
+
+
+def test_duration_given_win_formula():
+    # The derived closed form against a plain dense solve of the walk (numpy.linalg),
+    # built from the walk's definition alone.
+    for a, p in ((6, 0.3), (7, 0.5), (5, 0.8)):
+        q = 1.0 - p
+        t = np.zeros((a - 1, a - 1))
+        for i in range(a - 1):
+            if i + 1 < a - 1:
+                t[i, i + 1] = p
+            if i > 0:
+                t[i, i - 1] = q
+        n = np.linalg.inv(np.eye(a - 1) - t)
+        win = n @ np.eye(a - 1)[:, -1] * p
+        cond = (n @ win) / win
+        assert_allclose(cond, [duration_given_win(z, a, p) for z in range(1, a)], rtol=1e-10)
+
+
+@pytest.mark.parametrize("a, p", [(2, 0.5), (5, 0.5), (9, 0.5), (5, 0.3), (6, 0.6), (9, 0.8), (4, 0.95)])
+def test_gamblers_ruin_closed_forms(a, p):
+    for z in sorted({1, a // 2, a - 1}):
+        _, model = corridor(a, z, west_chance=1.0 - p)
+        row = evaluate(model, east_policy(model), noise=0.0)
+        # Feller, Vol. 1, 3rd ed., ch. XIV, sec. 2 (ruin probability).
+        assert_allclose(row.p_incident, ruin_probability(z, a, p), rtol=1e-10, atol=1e-12)
+        assert_allclose(row.p_by_event["Drop"], ruin_probability(z, a, p), rtol=1e-10, atol=1e-12)
+        assert_allclose(row.p_goal, 1.0 - ruin_probability(z, a, p), rtol=1e-10, atol=1e-12)
+        assert row.p_never == 0.0 and row.n_trapped_states == 0
+        # Derived closed form for the duration given a win (see duration_given_win).
+        assert_allclose(row.expected_moves, duration_given_win(z, a, p), rtol=1e-9)
+        # Every move commands one cell side (1 m).
+        assert_allclose(row.expected_m, duration_given_win(z, a, p), rtol=1e-9)
+        # Feller, Vol. 1, 3rd ed., ch. XIV, sec. 3 (expected duration), from every cell at once.
+        result = absorption(model, epsilon_greedy(east_policy(model), 4, 0.0))
+        cells = np.arange(1, a)
+        assert_allclose(result.moves[cells], [expected_duration(k, a, p) for k in cells], rtol=1e-9)
+        assert_allclose(risk_map(model, epsilon_greedy(east_policy(model), 4, 0.0))[cells],
+                        [ruin_probability(k, a, p) for k in cells], rtol=1e-10, atol=1e-12)
+
+
+@pytest.mark.parametrize("noise", [0.4, 1.0])
+def test_lazy_walk_from_execution_noise(noise):
+    # No drift: the noisy policy commands E with 1 - 3 noise / 4, W with noise / 4, and N
+    # or S (noise / 2), which in a one-row walled corridor stay put. The walk is the
+    # gambler's ruin with p' = P(E) / (P(E) + P(W)) slowed by stay-put steps, so the
+    # ruin probability is Feller's with p' and the duration is Feller's divided by
+    # 1 - P(stay) (each move is a real step with probability 1 - P(stay), a geometric
+    # wait). Feller, Vol. 1, 3rd ed., ch. XIV, secs. 2-3.
+    a, z = 6, 2
+    p_e, p_w, p_stay = 1 - 3 * noise / 4, noise / 4, noise / 2
+    p = p_e / (p_e + p_w)
+    _, model = corridor(a, z)
+    row = evaluate(model, east_policy(model), noise=noise)
+    assert_allclose(row.p_incident, ruin_probability(z, a, p), rtol=1e-10)
+    result = absorption(model, epsilon_greedy(east_policy(model), 4, noise))
+    assert_allclose(result.moves[model.start], expected_duration(z, a, p) / (1 - p_stay), rtol=1e-9)
+    assert_allclose(row.expected_moves, duration_given_win(z, a, p) / (1 - p_stay), rtol=1e-9)
+
+
+def test_drunkards_walk_textbook():
+    # Grinstead & Snell, Introduction to Probability, 2nd rev. ed., ch. 11, sec. 11.2,
+    # Example 11.13 (drunkard's walk, states 0..4 absorbing at 0 and 4, p = 1/2):
+    # B = [[3/4, 1/4], [1/2, 1/2], [1/4, 3/4]] and t = N 1 = (3, 4, 3).
+    _, model = corridor(4, 2, west_chance=0.5)
+    result = absorption(model, epsilon_greedy(east_policy(model), 4, 0.0))
+    cells = [1, 2, 3]
+    b = np.column_stack([result.probs[cells, EVENT_HAZARD], result.probs[cells, EVENT_GOAL]])
+    assert_allclose(b, [[0.75, 0.25], [0.5, 0.5], [0.25, 0.75]], atol=1e-12)
+    assert_allclose(result.moves[cells], [3.0, 4.0, 3.0], atol=1e-12)
+    assert_allclose(result.never[cells], 0.0, atol=0)
+
+
+def test_step_budget_matches_matrix_powers():
+    # Reference: the walk's transition matrix built by hand (states 0..a, 0 and a
+    # absorbing) raised to the T-th power with numpy; P(absorbed at a within T) is
+    # entry (z, a) of P^T (the Chapman-Kolmogorov equations).
+    a, z, p = 6, 3, 0.55
+    walk = np.zeros((a + 1, a + 1))
+    walk[0, 0] = walk[a, a] = 1.0
+    for k in range(1, a):
+        walk[k, k + 1], walk[k, k - 1] = p, 1 - p
+    _, model = corridor(a, z, west_chance=1 - p)
+    for budget in (0, 1, 3, 4, 17):
+        row = evaluate(model, east_policy(model), noise=0.0, budget=budget)
+        power = np.linalg.matrix_power(walk, budget)
+        assert_allclose(row.p_goal_within_budget, power[z, a], atol=1e-14)
+        assert_allclose(row.p_incident_within_budget, power[z, 0], atol=1e-14)
+        assert_allclose(row.p_timeout, power[z, 1:a].sum(), atol=1e-14)
+
+
+def test_trapped_policy_is_reported_not_an_error(rng):
+    # Column 0 is free, and there the policy pushes into the wall for ever: a run that
+    # reaches column 0 never ends. Reaching it is the gambler's ruin, so p_never equals
+    # Feller's ruin probability (Vol. 1, 3rd ed., ch. XIV, sec. 2).
+    a, z, p = 5, 2, 0.6
+    _, model = corridor(a, z, west_chance=1 - p, first="free")
+    policy = east_policy(model)
+    policy[0] = WEST
+    row = evaluate(model, policy, noise=0.0, rollouts=4000, rng=rng, budget=50)
+    assert_allclose(row.p_never, ruin_probability(z, a, p), rtol=1e-10)
+    assert_allclose(row.p_goal, 1 - ruin_probability(z, a, p), rtol=1e-10)
+    assert row.p_incident == 0.0
+    assert row.n_trapped_states == 1
+    assert row.mc["never"].contains(row.p_never)
+    assert row.p_timeout >= row.p_never
+    # Wholly trapped: the policy drives straight into the wall with no drift.
+    _, still = corridor(a, z, first="free")
+    row = evaluate(still, np.full(still.n_states, WEST), noise=0.0)
+    assert row.p_never == 1.0 and row.p_goal == 0.0 and math.isnan(row.expected_moves)
+    text = format_table([row])
+    assert "can never end the run" in text
+
+
+def test_entry_probability_of_a_zone_that_does_not_end_the_run(rng):
+    # The zone at column 0 lets the run go on; P(at least one entry) is the probability
+    # that the walk reaches 0 before a, Feller's ruin probability (Vol. 1, 3rd ed.,
+    # ch. XIV, sec. 2). It is not an incident.
+    a, z, p = 6, 3, 0.45
+    grid, model = corridor(a, z, west_chance=1 - p, first="zone")
+    row = evaluate(model, east_policy(model), noise=0.0, rollouts=4000, rng=rng)
+    assert set(row.p_by_event) == {"boundary"}
+    assert_allclose(row.p_entry["Drop"], ruin_probability(z, a, p), rtol=1e-10)
+    assert row.mc["entry:Drop"].contains(row.p_entry["Drop"])
+    assert_allclose(row.p_goal, 1.0, atol=1e-12)
+    # Saying which hazards end the run gives the same row as reading it off the table.
+    assert evaluate(model, east_policy(model), noise=0.0, hazards=grid.hazards).p_entry == row.p_entry
+
+
+# ----------------------------------------------------------------------------- frozen lake
+
+FROZEN_LAKE = ["SFFF", "FHFH", "FFFH", "HFFG"]
+
+
+def frozen_lake_grid():
+    """Gymnasium's 4x4 map (first text line north) as a grid (row 0 south)."""
+    label = np.full((4, 4), FREE)
+    goal = np.zeros((4, 4), dtype=bool)
+    start = None
+    for i, line in enumerate(FROZEN_LAKE):
+        for c, ch in enumerate(line):
+            r = 3 - i
+            if ch == "H":
+                label[r, c] = 0
+            elif ch == "G":
+                goal[r, c] = True
+            elif ch == "S":
+                start = (r, c)
+    return grid_from_arrays(label, goal=goal, start=start, hazards=(HazardInfo("hole"),))
+
+
+def gymnasium_max_goal_probability():
+    """Value iteration for max P(goal) on gymnasium's own FrozenLake-v1 table ``P``."""
+    gym = pytest.importorskip("gymnasium")
+    table = gym.make("FrozenLake-v1", map_name="4x4", is_slippery=True).unwrapped.P
+    v = np.zeros(16)
+    for _ in range(100_000):
+        # Duplicate (probability, next) entries of one action simply add in the sum.
+        new = np.array([max(sum(prob * (reward + (0.0 if done else v[nxt])) for prob, nxt, reward, done in table[s][a])
+                            for a in range(4)) for s in range(16)])
+        change = np.max(np.abs(new - v))
+        v = new
+        if change < 1e-15:
+            break
+    return v
+
+
+def test_frozen_lake_optimal_goal_probability():
+    # gymnasium's FrozenLake-v1 4x4, is_slippery=True (Farama Foundation, gymnasium 1.x):
+    # intended and the two perpendicular moves each with probability 1/3, walls at the
+    # edges, holes end the run. The optimal probability of reaching the goal from the
+    # start with no step limit is 14/17 (value from memory), checked here by value
+    # iteration on gymnasium's own transition table.
+    exact = pytest.importorskip("planner.exact")
+    v_gym = gymnasium_max_goal_probability()
+    assert_allclose(v_gym[0], 14 / 17, atol=1e-9)
+    # Our side: moves cost 1, a hole costs 10^4 moves, so one hole entry outweighs any
+    # difference in expected moves (about 49 here) and the cost-optimal policy is a
+    # P(goal)-maximising one, the fastest among them. Its greedy actions (ties to the
+    # lowest index) then go through our risk solve. That this choice maximises P(goal)
+    # is checked, not assumed: every state's P(goal) must equal gymnasium's optimum.
+    grid = frozen_lake_grid()
+    model = build_model(grid, Dynamics(n_actions=4, slip=2 / 3, edge="wall", step_cost="move",
+                                       hazard_penalty_m=1e4))
+    q = exact.optimal_q(model).q
+    row = evaluate(model, q, noise=0.0, hazards=grid.hazards)
+    assert_allclose(row.p_goal, 14 / 17, atol=1e-6)
+    assert_allclose(row.p_incident, 3 / 17, atol=1e-6)
+    h = absorption(model, epsilon_greedy(greedy_actions(q), 4, 0.0)).probs[:, EVENT_GOAL]
+    gym_index = np.array([(3 - r) * 4 + c for r in range(4) for c in range(4)])  # ours -> gymnasium state
+    active = model.active
+    assert_allclose(h[active], v_gym[gym_index][active], atol=1e-6)
+
+
+# ----------------------------------------------------------------------------- Monte Carlo
+
+
+def test_wilson_interval_reference_values():
+    # Newcombe, R. G. (1998), "Two-sided confidence intervals for the single proportion:
+    # comparison of seven methods", Statistics in Medicine 17, 857-872, Table I, Wilson
+    # score method (values from memory, four decimals).
+    for (k, n), (lo, hi) in {(81, 263): (0.2553, 0.3662), (15, 148): (0.0624, 0.1605),
+                             (0, 20): (0.0, 0.1611), (1, 29): (0.0061, 0.1718)}.items():
+        assert_allclose(wilson_interval(k, n), (lo, hi), atol=5e-5)
+    # Defining property (Wilson, JASA 22(158), 1927): the bounds solve
+    # (k/n - p)^2 = z^2 p (1 - p) / n.
+    k, n, z = 37, 120, 1.959963984540054
+    for p in wilson_interval(k, n):
+        assert_allclose((k / n - p) ** 2, z * z * p * (1 - p) / n, rtol=1e-10)
+    with pytest.raises(SettingsError):
+        wilson_interval(5, 0)
+
+
+def small_site_grid(site_dict):
+    site = site_from_geojson(site_dict)
+    return site, rasterise(site, GridSpec(cell_m=2.0))
+
+
+def test_exact_and_monte_carlo_agree_on_small_site(site_dict):
+    # Monte Carlo on the same table, one seeded generator per row; every exact figure
+    # (goal, incident, each zone, never, within the budget) must lie in its Wilson 95%
+    # interval.
+    exact = pytest.importorskip("planner.exact")
+    _, grid = small_site_grid(site_dict)
+    dynamics = Dynamics()
+    model = build_model(grid, dynamics)
+    policies = {"shortest": exact.optimal_q(model).q, "cautious": exact.on_policy_q(model, 0.1).q}
+    rows = sensitivity(grid, dynamics, policies, noises=(0.0, 0.1, 0.3), drift_scales=(1.0, 2.0), budget=60,
+                       rollouts=3000, seed=np.random.SeedSequence(20261202))
+    assert len(rows) == 12
+    assert [(r.drift_scale, r.policy, r.noise) for r in rows[:4]] == [
+        (1.0, "shortest", 0.0), (1.0, "shortest", 0.1), (1.0, "shortest", 0.3), (1.0, "cautious", 0.0)]
+    for r in rows:
+        assert r.n_rollouts == 3000 and r.n_truncated == 0
+        assert r.mc_disagrees == (), (r.policy, r.noise, r.drift_scale, r.mc_disagrees)
+        assert_allclose(r.p_goal + r.p_incident + r.p_never, 1.0, atol=1e-9)
+        assert set(r.mc) >= {"goal", "incident", "never", "event:Pond", "event:boundary", "timeout"}
+    # Stronger drift and more noise do not make the shortest route safer here.
+    by_key = {(r.policy, r.noise, r.drift_scale): r for r in rows}
+    assert by_key["shortest", 0.3, 1.0].p_incident > by_key["shortest", 0.0, 1.0].p_incident
+
+
+def test_monte_carlo_is_reproducible_and_does_not_advance_the_seed(site_dict):
+    _, grid = small_site_grid(site_dict)
+    model = build_model(grid, Dynamics())
+    policy = np.full(model.n_states, 2, dtype=np.int64)  # always east
+    seed = np.random.SeedSequence(7)
+    one = sensitivity(grid, Dynamics(), {"east": policy}, noises=(0.1,), drift_scales=(1.0,), rollouts=500, seed=seed)
+    two = sensitivity(grid, Dynamics(), {"east": policy}, noises=(0.1,), drift_scales=(1.0,), rollouts=500, seed=seed)
+    assert [r.as_dict() for r in one] == [r.as_dict() for r in two]
+    assert seed.n_children_spawned == 0
+    probs = epsilon_greedy(policy, model.n_actions, 0.1)
+    a = sample_runs(model, probs, 200, np.random.default_rng(3))
+    b = sample_runs(model, probs, 200, np.random.default_rng(3))
+    for x, y in zip(a, b, strict=True):
+        np.testing.assert_array_equal(x, y)
+    with pytest.raises(SettingsError):
+        evaluate(model, policy, noise=0.1, rollouts=10)
+    with pytest.raises(SettingsError):
+        sensitivity(grid, Dynamics(), {"east": policy}, rollouts=10)
+
+
+def test_q_table_and_its_greedy_actions_give_the_same_row(site_dict):
+    _, grid = small_site_grid(site_dict)
+    model = build_model(grid, Dynamics())
+    q = np.random.default_rng(11).normal(size=(model.n_states, model.n_actions))
+    q[:, 2] += 1.5  # mostly east
+    assert evaluate(model, q, noise=0.1) == evaluate(model, np.argmax(q, axis=1), noise=0.1)
+    with pytest.raises(SettingsError):
+        evaluate(model, np.zeros(3, dtype=np.int64), noise=0.1)
+
+
+# ----------------------------------------------------------------------------- expectations given success
+
+
+def forward_given_goal(model, action_probs, max_moves=20_000):
+    """E[moves; goal] and E[commanded metres; goal] by running the distribution forward.
+
+    A different derivation from the code under test: it carries, for every state, the
+    probability of being there with the run going on and the expected metres already
+    commanded on that event, and collects both when a move ends at the goal.
+    """
+    n_s, n_a = model.n_states, model.n_actions
+    alive = np.zeros(n_s)
+    alive[model.start] = 1.0
+    metres_so_far = np.zeros(n_s)
+    moves_on_goal = metres_on_goal = 0.0
+    counts = np.diff(model.offsets)
+    pair = np.repeat(np.arange(n_s * n_a), counts)
+    state, action = pair // n_a, pair % n_a
+    w = action_probs[state, action] * model.prob
+    goal_o = model.event == EVENT_GOAL
+    go_o = model.event == 0
+    for n in range(max_moves):
+        mass = alive[state] * w
+        carried = metres_so_far[state] * w + mass * model.move_m[action]
+        moves_on_goal += (n + 1) * mass[goal_o].sum()
+        metres_on_goal += carried[goal_o].sum()
+        alive = np.bincount(model.next_state[go_o], weights=mass[go_o], minlength=n_s)
+        metres_so_far = np.bincount(model.next_state[go_o], weights=carried[go_o], minlength=n_s)
+        if alive.sum() < 1e-16:
+            break
+    return moves_on_goal, metres_on_goal
+
+
+def test_expectations_given_success_match_forward_computation():
+    # 8 moves (straight moves 1 m, diagonals sqrt(2) m), slip, drift with spread,
+    # noise: the h-transform answer must equal the forward computation.
+    label = np.full((5, 6), FREE)
+    label[2, 2:4] = 0
+    goal = np.zeros(label.shape, dtype=bool)
+    goal[4, 5] = True
+    drifts = (DriftInfo("Gust", east_m=0.3, north_m=-0.4, spread_m=0.6),)
+    drift_class = np.zeros(label.shape, dtype=np.int32)
+    drift_class[1:4, :] = 1
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("Pit"),), drifts=drifts,
+                            drift_class=drift_class, drift_members=((), (0,)))
+    model = build_model(grid, Dynamics(slip=0.2, hazard_penalty_m=500.0))
+    policy = np.random.default_rng(5).integers(0, 8, size=model.n_states)
+    policy[::2] = 1  # north-east half of the time
+    noise = 0.3
+    row = evaluate(model, policy, noise=noise)
+    moves_on_goal, metres_on_goal = forward_given_goal(model, epsilon_greedy(policy, 8, noise))
+    assert 0 < row.p_goal < 1
+    assert_allclose(row.expected_moves, moves_on_goal / row.p_goal, rtol=1e-8)
+    assert_allclose(row.expected_m, metres_on_goal / row.p_goal, rtol=1e-8)
+
+
+# ----------------------------------------------------------------------------- risk map properties
+
+
+@st.composite
+def small_grids(draw):
+    n_rows = draw(st.integers(2, 4))
+    n_cols = draw(st.integers(3, 5))
+    n = n_rows * n_cols
+    cells = draw(st.permutations(range(n)))
+    start, goal_cell, extra = cells[0], cells[1], cells[2]
+    hazard = draw(st.lists(st.booleans(), min_size=n, max_size=n))
+    actions = draw(st.lists(st.integers(0, 7), min_size=n, max_size=n))
+    noise = draw(st.sampled_from([0.0, 0.1, 0.5]))
+    edge = draw(st.sampled_from(["boundary", "wall"]))
+    return n_rows, n_cols, start, goal_cell, extra, hazard, actions, noise, edge
+
+
+def build_small(n_rows, n_cols, start, goal_cell, hazard_cells, edge):
+    label = np.full(n_rows * n_cols, FREE)
+    label[list(hazard_cells)] = 0
+    goal = np.zeros(n_rows * n_cols, dtype=bool)
+    goal[goal_cell] = True
+    grid = grid_from_arrays(label.reshape(n_rows, n_cols), goal=goal.reshape(n_rows, n_cols),
+                            start=divmod(start, n_cols), hazards=(HazardInfo("H"),))
+    return build_model(grid, Dynamics(slip=0.2, edge=edge, hazard_penalty_m=1000.0))
+
+
+@settings(max_examples=40, deadline=None)
+@given(small_grids())
+def test_adding_a_hazard_never_lowers_risk(case):
+    n_rows, n_cols, start, goal_cell, extra, hazard, actions, noise, edge = case
+    hazard_cells = {i for i, h in enumerate(hazard) if h} - {start, goal_cell}
+    before = build_small(n_rows, n_cols, start, goal_cell, hazard_cells - {extra}, edge)
+    after = build_small(n_rows, n_cols, start, goal_cell, hazard_cells | {extra}, edge)
+    probs = epsilon_greedy(np.array(actions), 8, noise)
+    risk_before, risk_after = risk_map(before, probs), risk_map(after, probs)
+    for risk, model in ((risk_before, before), (risk_after, after)):
+        assert np.all(np.isnan(risk[~model.active]))
+        assert np.all((risk[model.active] >= 0) & (risk[model.active] <= 1))
+    both = before.active & after.active
+    # Any run that ended in an incident still does; some may now end in the new hazard.
+    assert np.all(risk_after[both] >= risk_before[both] - 1e-9)
+
+
+# ----------------------------------------------------------------------------- clearance
+
+
+def test_clearance_is_measured_on_the_true_polygon(site_dict):
+    site, _ = small_site_grid(site_dict)
+    pond = site.hazards[0]
+    x0, y0, x1, y1 = pond.geometry.bounds
+    # A straight route 10 m south of the pond's lowest point: the pond's own polygon
+    # is 10 m away (plane geometry); its 2 m buffer would be 8 m.
+    route = np.array([[x0 - 20.0, y0 - 10.0], [x1 + 20.0, y0 - 10.0]])
+    assert_allclose(clearance_m(route, site.hazards)["Pond"], 10.0, atol=1e-6)
+    assert_allclose(clearance_m(route, {"Pond buffered": pond.buffered})["Pond buffered"], 8.0, atol=0.05)
+    # One point inside the pond: touching means 0.
+    assert clearance_m([[(x0 + x1) / 2, (y0 + y1) / 2]], site.hazards) == {"Pond": 0.0}
+    with pytest.raises(SettingsError):
+        clearance_m(np.zeros((0, 2)), site.hazards)
+
+
+# ----------------------------------------------------------------------------- formatting
+
+
+@pytest.mark.parametrize("p, text", [
+    (0.0, "0"), (1.0, "1"), (1.2e-4, "1.2e-4"), (0.0001, "1.0e-4"), (9.96e-3, "1.0e-2"), (0.01, "0.0100"),
+    (0.5, "0.5000"), (0.9999, "0.9999"), (0.999997, "1-3.0e-6"), (1 - 1e-12, "1-1.0e-12"), (3e-300, "3.0e-300"),
+    (None, "-"), (float("nan"), "-"),
+])
+def test_format_prob(p, text):
+    assert format_prob(p) == text
+
+
+def hand_row(**changes):
+    base = dict(policy="cautious", noise=0.1, drift_scale=1.5, p_goal=0.97, p_incident=0.0299, p_never=1e-4,
+                p_by_event={"boundary": 1.2e-4, "Pond": 0.02978}, expected_moves=41.25, expected_m=48.0,
+                residual=1e-14, budget=100, p_goal_within_budget=0.95, p_incident_within_budget=0.0299,
+                p_timeout=0.0201, p_entry={"Gravel": 0.33}, n_rollouts=1000,
+                mc={"goal": McEstimate(980, 1000, 0.98, *wilson_interval(980, 1000)),
+                    "incident": McEstimate(20, 1000, 0.02, *wilson_interval(20, 1000))},
+                mc_disagrees=("goal",))
+    base.update(changes)
+    return RiskRow(**base)
+
+
+def test_format_table_text_csv_json_markdown():
+    rows = [hand_row(), hand_row(policy="shortest", expected_moves=math.nan, expected_m=math.nan, mc={},
+                                 mc_disagrees=(), n_rollouts=0)]
+    text = format_table(rows, "text")
+    assert max(len(line) for line in text.splitlines()) <= 80
+    assert "0.9700!" in text and "! exact figure outside" in text
+    assert "1.2e-4" in text
+    parsed = json.loads(format_table(rows, "json"))
+    assert parsed[1]["expected_moves"] is None
+    assert parsed[0]["mc"]["goal"]["count"] == 980
+    assert parsed[0]["mc_disagrees"] == ["goal"]
+    assert list(parsed[0]) == sorted(parsed[0])
+    assert format_table(rows, "json") == format_table(rows, "json")
+    table = list(csv.DictReader(io.StringIO(format_table(rows, "csv"))))
+    assert float(table[0]["p_event:Pond"]) == 0.02978
+    assert table[1]["expected_moves"] == "" and table[0]["mc_disagrees"] == "goal"
+    md = format_table(rows, "markdown").splitlines()
+    assert md[0].startswith("| policy |") and "0.9700!" in md[2] and md[-1].startswith("! exact figure")
+    with pytest.raises(SettingsError):
+        format_table(rows, "xml")
+
+
+def test_flag_level_can_be_widened():
+    # Wilson's formula (JASA 22(158), 1927) worked by hand for 980 of 1000: [0.9693, 0.9870]
+    # at z = 1.96, and a lower bound of 0.9533 at z = 4.
+    est = mc_estimate(980, 1000)
+    assert_allclose((est.lo, est.hi), (0.9693, 0.9870), atol=5e-5)
+    assert_allclose(wilson_interval(980, 1000, 4.0)[0], 0.9533, atol=5e-5)
+    assert not est.contains(0.965)
+    assert est.contains(0.965, z=4.0)
+    text = format_table([hand_row(mc_flag_z=4.0)], "text")
+    assert "Wilson interval at z = 4.00" in " ".join(text.split())
