@@ -182,3 +182,162 @@ def plot_grid(site, grid: Grid, path) -> Path:
     fig, ax = _new_axes(grid, title)
     draw_site(ax, grid, site)
     return _finish(fig, ax, path, site_legend_handles(grid, site), grid)
+
+
+def _moving_average(values: np.ndarray, window: int) -> np.ndarray:
+    """Trailing moving average along the last axis (the first points average fewer)."""
+    csum = np.cumsum(values, axis=-1)
+    out = np.empty_like(csum, dtype=float)
+    n = values.shape[-1]
+    idx = np.arange(n)
+    lo = np.maximum(idx - window, -1)
+    upper = csum[..., idx]
+    lower = np.where(lo >= 0, csum[..., np.maximum(lo, 0)], 0.0)
+    out[...] = (upper - lower) / (idx - lo)
+    return out
+
+
+def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Path:
+    """Return per episode (moving average; mean and min-max band over seeds) for both
+    learners, and hazard incidents per episode during training."""
+    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(7.5, 6.2), dpi=style.FIGURE_DPI, sharex=True,
+                                   gridspec_kw={"height_ratios": [2.2, 1.0]})
+    plt.rcParams.update({"font.size": style.FONT_SIZE})
+    for name, result in learned.items():
+        look = style.POLICY[name]
+        n_ep = result.returns.shape[1]
+        window = max(1, n_ep // 50)
+        x = np.arange(1, n_ep + 1)
+        smooth = _moving_average(result.returns, window)
+        ax1.fill_between(x, smooth.min(axis=0), smooth.max(axis=0), color=look["color"], alpha=0.18, lw=0)
+        ax1.plot(x, smooth.mean(axis=0), color=look["color"], ls=look["linestyle"], lw=1.6,
+                 label=f"{look['label']}: mean of {result.returns.shape[0]} seeds")
+        incidents = (result.ends >= 2).astype(float)  # boundary or an ending hazard
+        ax2.plot(x, _moving_average(incidents, window).mean(axis=0), color=look["color"], ls=look["linestyle"],
+                 lw=1.4, label=look["label"])
+    ax1.set_ylabel(f"return per episode (m-equiv.)\nmoving average over {window} episodes")
+    ax1.set_title(title, loc="left", fontsize=style.FONT_SIZE + 2)
+    ax1.legend(fontsize=style.FONT_SIZE - 1, loc="lower right")
+    ax1.grid(alpha=0.3)
+    ax2.set_ylabel("episodes ending\nin an incident")
+    ax2.set_xlabel("episode")
+    ax2.set_ylim(bottom=0)
+    ax2.grid(alpha=0.3)
+    ax2.legend(fontsize=style.FONT_SIZE - 1, loc="upper right")
+    fig.text(0.01, 0.005, style.FIGURE_NOTICE + "; band = range over seeds", fontsize=style.FONT_SIZE - 2,
+             color="#666666")
+    fig.tight_layout()
+    path = Path(path)
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    plt.close(fig)
+    return path
+
+
+def _route_xy(grid: Grid, route) -> np.ndarray:
+    return np.asarray(route.path_m, dtype=float)
+
+
+def draw_routes(ax, grid: Grid, routes: dict, *, waypoints: bool = True):
+    for name, route in routes.items():
+        look = style.POLICY[name]
+        xy = _route_xy(grid, route)
+        ax.plot(xy[:, 0], xy[:, 1], color=look["color"], ls=look["linestyle"], lw=2.2, zorder=7,
+                label=f"{look['label']}: {route.length_m:.0f} m")
+        if waypoints and route.waypoints:
+            wx = [w.east_m for w in route.waypoints]
+            wy = [w.north_m for w in route.waypoints]
+            ax.plot(wx, wy, "o", color=look["color"], ms=3.5, mec="white", mew=0.6, zorder=7)
+
+
+def plot_routes(site, grid: Grid, routes: dict, greedy: dict, path, *, title: str | None = None) -> Path:
+    """The site with both nominal routes and the cells where the two policies differ."""
+    fig, ax = _new_axes(grid, title or f"{site.name} - nominal routes")
+    draw_site(ax, grid, site, alpha=0.75)
+    names = list(greedy)
+    handles = []
+    if len(names) == 2:
+        active = grid.passable() & ~grid.goal
+        differ = (greedy[names[0]].reshape(grid.shape) != greedy[names[1]].reshape(grid.shape)) & active
+        xs, ys = grid.centres()
+        ax.scatter(xs[differ], ys[differ], s=max(1.0, 900.0 / max(grid.shape)), marker="s", color=style.DISAGREE,
+                   alpha=0.22, lw=0, zorder=3)
+        handles.append(Patch(fc=style.DISAGREE, alpha=0.35,
+                             label=f"policies choose differently ({int(differ.sum()):,} cells)"))
+    draw_routes(ax, grid, routes)
+    route_handles = [Line2D([], [], color=style.POLICY[n]["color"], ls=style.POLICY[n]["linestyle"], lw=2.2,
+                            label=f"{style.POLICY[n]['label']}: {routes[n].length_m:.0f} m") for n in routes]
+    return _finish(fig, ax, path, route_handles + handles + site_legend_handles(grid, site), grid)
+
+
+def plot_risk_maps(site, grid: Grid, maps: dict, routes: dict, path, *, noise: float) -> Path:
+    """Per-cell incident probability for each policy on a log colour scale, with routes."""
+    from matplotlib.colors import LogNorm
+
+    names = list(maps)
+    n_rows, n_cols = grid.shape
+    width = 7.5
+    panel_h = width / len(names) * n_rows / max(n_cols, 1) + 0.9
+    fig, axes = plt.subplots(1, len(names), figsize=(width + 1.2, max(3.2, panel_h + 0.6)), dpi=style.FIGURE_DPI,
+                             squeeze=False)
+    plt.rcParams.update({"font.size": style.FONT_SIZE})
+    floor = 1e-6
+    norm = LogNorm(vmin=floor, vmax=1.0)
+    image = None
+    for ax, name in zip(axes[0], names, strict=True):
+        draw_site(ax, grid, site, drift_arrows=False, labels=False, alpha=0.5)
+        values = np.asarray(maps[name], dtype=float).reshape(grid.shape)
+        shown = np.ma.masked_invalid(np.where(values > 0, np.maximum(values, floor), np.nan))
+        image = ax.imshow(shown, origin="lower", extent=_extent(grid), cmap=style.RISK_CMAP, norm=norm,
+                          interpolation="nearest", alpha=0.85, zorder=2)
+        if name in routes:
+            draw_routes(ax, grid, {name: routes[name]}, waypoints=False)
+        ax.set_title(f"{style.POLICY.get(name, {'label': name})['label']}", loc="left",
+                     fontsize=style.FONT_SIZE + 1)
+        ax.set_aspect("equal")
+        ax.set_xlabel("east (m)")
+    axes[0][0].set_ylabel("north (m)")
+    add_scale_bar(axes[0][0], grid)
+    add_north_arrow(axes[0][-1], grid)
+    bar = fig.colorbar(image, ax=axes[0].tolist(), shrink=0.85, pad=0.02)
+    bar.set_label(f"P(incident before goal) from each cell, noise {noise:g} (log scale)")
+    fig.suptitle(f"{site.name} - risk maps", x=0.01, ha="left", fontsize=style.FONT_SIZE + 2)
+    fig.text(0.01, 0.005, style.FIGURE_NOTICE + "; blank cells: below 1e-6 or not usable",
+             fontsize=style.FONT_SIZE - 2, color="#666666")
+    path = Path(path)
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    plt.close(fig)
+    return path
+
+
+def plot_sensitivity(rows, path, *, title: str = "Sensitivity of the incident probability") -> Path:
+    """P(incident) against execution noise, one line per policy and drift scale."""
+    fig, ax = plt.subplots(figsize=(7.5, 4.2), dpi=style.FIGURE_DPI)
+    plt.rcParams.update({"font.size": style.FONT_SIZE})
+    looks = {"cautious": style.POLICY["cautious"], "shortest": style.POLICY["shortest"],
+             "exact on-policy": style.REFERENCE["cautious"], "exact optimal": style.REFERENCE["shortest"]}
+    scales = sorted({r.drift_scale for r in rows})
+    widths = {m: 1.0 + 0.9 * i for i, m in enumerate(scales)}
+    markers = {m: mk for m, mk in zip(scales, ["o", "s", "^", "v", "D"] * 4, strict=False)}
+    floor = 1e-7
+    for name in [n for n in looks if any(r.policy == n for r in rows)]:
+        for m in scales:
+            sel = sorted((r for r in rows if r.policy == name and r.drift_scale == m), key=lambda r: r.noise)
+            if not sel:
+                continue
+            look = looks[name]
+            ax.plot([r.noise for r in sel], [max(r.p_incident, floor) for r in sel], color=look["color"],
+                    ls=look["linestyle"], lw=widths[m], marker=markers[m], ms=4,
+                    label=f"{look['label']}, drift x{m:g}")
+    ax.set_yscale("log")
+    ax.set_xlabel("execution noise epsilon (share of moves made at random)")
+    ax.set_ylabel("P(incident before goal)")
+    ax.set_title(title, loc="left", fontsize=style.FONT_SIZE + 2)
+    ax.grid(alpha=0.3, which="both")
+    ax.legend(fontsize=style.FONT_SIZE - 2, ncol=2, loc="lower right")
+    fig.text(0.01, 0.005, style.FIGURE_NOTICE + f"; values below {floor:g} drawn at {floor:g}",
+             fontsize=style.FONT_SIZE - 2, color="#666666")
+    fig.tight_layout()
+    path = Path(path)
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    plt.close(fig)
+    return path

@@ -1,17 +1,43 @@
 """The run folder: written whole or not at all, and checked before it is read.
 
-This stage owns atomic writes (a temporary sibling renamed when complete), the
-manifest (inputs with hashes, settings, seeds, versions) and loading a run back.
+This stage owns the ``plan`` pipeline end to end (site -> grid -> model -> learners
+and exact references -> risk -> routes -> files), atomic writes (everything goes to a
+temporary sibling folder that is renamed into place only when complete), the manifest
+(inputs with hashes, every setting, seeds, versions, and the hash of every file
+written) and loading a run back with those checks.
 """
 
 from __future__ import annotations
 
 import contextlib
+import dataclasses
+import hashlib
+import json
 import os
+import platform
+import shutil
+import signal
 import tempfile
+import time
+from dataclasses import dataclass, field
 from pathlib import Path
 
-from planner.errors import RunFolderError
+import numpy as np
+
+from planner import __version__
+from planner.errors import Interrupted, RunFolderError, SettingsError
+
+#: What the manifest says it is; a run folder without it is refused.
+RUN_FORMAT = "yardplan-run"
+#: Version of the run-folder layout; newer folders are refused by older code.
+RUN_FORMAT_VERSION = 1
+#: Arrays stored in ``policies.npz`` and their dtypes (checked on load).
+POLICY_ARRAYS = {
+    "greedy_cautious": "int64", "greedy_shortest": "int64",
+    "q_cautious": "float64", "q_shortest": "float64",
+    "q_exact_on_policy": "float64", "q_exact_optimal": "float64",
+}
+POLICIES = ("cautious", "shortest")
 
 
 @contextlib.contextmanager
@@ -29,3 +55,477 @@ def atomic_output(path):
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
+
+
+@contextlib.contextmanager
+def atomic_folder(path, *, force: bool = False):
+    """Yield a temporary sibling folder; it replaces ``path`` only when the block ends well.
+
+    An existing ``path`` is never touched unless ``force``; then it is swapped out
+    only after the new folder is complete. SIGTERM is turned into the same clean stop
+    as Ctrl-C for the duration.
+    """
+    path = Path(path)
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise RunFolderError(f"--out {path}: parent folder {parent} does not exist")
+    if path.exists() and not force:
+        raise RunFolderError(f"--out {path}: already exists; choose another folder or pass --force to replace it")
+    if path.exists() and not path.is_dir():
+        raise RunFolderError(f"--out {path}: exists and is not a folder")
+    tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.partial-", dir=parent))
+
+    def _on_term(signum, frame):
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, _on_term) if _main_thread() else None
+    try:
+        yield tmp
+        if path.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{path.name}.old-", dir=parent))
+            os.replace(path, old / path.name)
+            os.replace(tmp, path)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, path)
+    except KeyboardInterrupt as err:
+        raise Interrupted(f"stopped while writing {path}; nothing was written"
+                          + (" and the existing folder is untouched" if path.exists() else "")) from err
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _main_thread() -> bool:
+    import threading
+
+    return threading.current_thread() is threading.main_thread()
+
+
+# ----------------------------------------------------------------------------- settings
+
+
+@dataclass(frozen=True)
+class PlanSettings:
+    """Everything ``plan`` needs besides the site file (recorded in the manifest)."""
+
+    grid: object
+    dynamics: object
+    learn: object
+    episodes_shortest: int | None = None
+    noises: tuple[float, ...] = (0.0, 0.05, 0.1, 0.2)
+    drift_scales: tuple[float, ...] = (1.0, 1.5, 2.0)
+    budget: int | None = None
+    rollouts: int = 20000
+    seed: int | None = None
+    crs: str | None = None
+    fix: bool = False
+    max_bytes: int = 50_000_000
+    alt_m: float | None = None
+    convergence_threshold: float = 0.95
+
+    def __post_init__(self):
+        for n in self.noises:
+            if not (0.0 <= n < 1.0):
+                raise SettingsError(f"--noise values must be in [0, 1), got {n}")
+        for m in self.drift_scales:
+            if not (np.isfinite(m) and m >= 0.0):
+                raise SettingsError(f"--drift-scale values must be finite and >= 0, got {m}")
+        if self.budget is not None and self.budget < 1:
+            raise SettingsError(f"--budget must be a whole number of moves >= 1, got {self.budget}")
+        if self.rollouts < 0:
+            raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
+        if self.seed is not None and not (0 <= self.seed < 2**63):
+            raise SettingsError(f"--seed must be a whole number in [0, 2**63), got {self.seed}")
+
+
+def settings_record(settings: PlanSettings) -> dict:
+    """Plain-data view of the settings for the manifest."""
+    out = {}
+    for f in dataclasses.fields(settings):
+        value = getattr(settings, f.name)
+        out[f.name] = dataclasses.asdict(value) if dataclasses.is_dataclass(value) else value
+    out["noises"] = list(settings.noises)
+    out["drift_scales"] = list(settings.drift_scales)
+    return out
+
+
+def settings_from_record(record: dict) -> PlanSettings:
+    """Rebuild :class:`PlanSettings` from a manifest's ``settings``."""
+    from planner.grid import GridSpec
+    from planner.learn import LearnSettings
+    from planner.model import Dynamics
+
+    try:
+        rec = dict(record)
+        rec["grid"] = GridSpec(**rec["grid"])
+        rec["dynamics"] = Dynamics(**rec["dynamics"])
+        rec["learn"] = LearnSettings(**rec["learn"])
+        rec["noises"] = tuple(rec["noises"])
+        rec["drift_scales"] = tuple(rec["drift_scales"])
+        return PlanSettings(**rec)
+    except (KeyError, TypeError) as err:
+        raise RunFolderError(f"manifest settings are incomplete or unknown ({err})") from err
+
+
+def versions() -> dict:
+    """Versions of Python, yardplan and every library a result depends on."""
+    import click
+    import matplotlib
+    import numba
+    import pyproj
+    import scipy
+    import shapely
+
+    return {
+        "yardplan": __version__, "python": platform.python_version(), "numpy": np.__version__,
+        "scipy": scipy.__version__, "shapely": shapely.__version__, "pyproj": pyproj.__version__,
+        "proj": pyproj.proj_version_str, "numba": numba.__version__, "matplotlib": matplotlib.__version__,
+        "click": click.__version__, "platform": platform.platform(),
+    }
+
+
+def sha256_file(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+# ----------------------------------------------------------------------------- the pipeline
+
+
+@dataclass
+class Progress:
+    """Where ``plan`` reports what it is doing (the CLI passes a printer)."""
+
+    say: object = None
+    started: float = field(default_factory=time.perf_counter)
+
+    def __call__(self, message: str) -> None:
+        if self.say is not None:
+            self.say(f"[{time.perf_counter() - self.started:6.1f} s] {message}")
+
+
+@dataclass(frozen=True)
+class PlanResult:
+    """What ``plan`` computed, kept for the summary and the files."""
+
+    site: object
+    grid: object
+    model: object
+    learned: dict
+    exact: dict
+    greedy: dict
+    convergence: dict
+    paths: dict
+    routes: dict
+    risk_rows: list
+    root_seed: object
+    timings: dict
+
+
+def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None) -> PlanResult:
+    """Run every stage of ``plan`` in memory (no files written)."""
+    from planner.exact import convergence_report, on_policy_q, optimal_q
+    from planner.grid import cost_to_goal, rasterise
+    from planner.learn import greedy_actions, train
+    from planner.model import build_model
+    from planner.route import nominal_path
+    from planner.site import load_site
+
+    progress = progress or Progress()
+    timings = {}
+    t = time.perf_counter()
+    site = load_site(site_path, crs=settings.crs, fix=settings.fix, max_bytes=settings.max_bytes)
+    grid = rasterise(site, settings.grid)
+    progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
+    model = build_model(grid, settings.dynamics)
+    timings["model_s"] = time.perf_counter() - t
+    progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
+
+    root = np.random.SeedSequence(settings.seed)
+    seed_cautious, seed_shortest, seed_risk = root.spawn(3)
+    to_go = cost_to_goal(grid, settings.dynamics.n_actions,
+                         hazard_penalty_m=model.penalty_m, unit_cost=settings.dynamics.step_cost == "move")
+    learn_cautious = settings.learn
+    learn_shortest = settings.learn if settings.episodes_shortest is None else dataclasses.replace(
+        settings.learn, episodes=settings.episodes_shortest)
+    t = time.perf_counter()
+    progress(f"training SARSA (cautious): {learn_cautious.n_seeds} seeds x {learn_cautious.episodes:,} episodes")
+    cautious = train(model, "sarsa", learn_cautious, seed=seed_cautious, cost_to_go=to_go)
+    progress(f"training Q-learning (shortest): {learn_shortest.n_seeds} seeds x {learn_shortest.episodes:,} episodes")
+    shortest = train(model, "qlearning", learn_shortest, seed=seed_shortest, cost_to_go=to_go)
+    timings["learn_s"] = time.perf_counter() - t
+
+    t = time.perf_counter()
+    progress("solving the exact references (value iteration)")
+    eps = settings.learn.epsilon
+    exact = {"cautious": on_policy_q(model, eps), "shortest": optimal_q(model)}
+    timings["exact_s"] = time.perf_counter() - t
+    learned = {"cautious": cautious, "shortest": shortest}
+    greedy = {name: greedy_actions(learned[name].q_mean) for name in POLICIES}
+    convergence = {
+        "cautious": convergence_report(model, cautious, exact["cautious"], eps,
+                                       threshold=settings.convergence_threshold),
+        "shortest": convergence_report(model, shortest, exact["shortest"], 0.0,
+                                       threshold=settings.convergence_threshold),
+    }
+    paths = {name: nominal_path(model, greedy[name]) for name in POLICIES}
+    routes = _routes(site, grid, model, paths)
+    t = time.perf_counter()
+    risk_rows = _risk(site, grid, settings, model, greedy, exact, seed_risk, progress)
+    timings["risk_s"] = time.perf_counter() - t
+    return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
+                      convergence=convergence, paths=paths, routes=routes, risk_rows=risk_rows, root_seed=root,
+                      timings=timings)
+
+
+def _routes(site, grid, model, paths) -> dict:
+    from planner.route import build_route
+
+    return {name: build_route(name, paths[name], grid, site, model) for name in POLICIES}
+
+
+def _risk(site, grid, settings, model, greedy, exact, seed, progress) -> list:
+    from planner.learn import greedy_actions
+    from planner.risk import sensitivity
+
+    policies = {
+        "cautious": greedy["cautious"], "shortest": greedy["shortest"],
+        "exact on-policy": greedy_actions(exact["cautious"].q),
+        "exact optimal": greedy_actions(exact["shortest"].q),
+    }
+    progress(f"risk table: {len(policies)} policies x {len(settings.noises)} noise levels x "
+             f"{len(settings.drift_scales)} drift scales, {settings.rollouts:,} rollouts per row")
+    return sensitivity(grid, settings.dynamics, policies, noises=settings.noises,
+                       drift_scales=settings.drift_scales, budget=settings.budget, rollouts=settings.rollouts,
+                       seed=seed)
+
+
+# ----------------------------------------------------------------------------- writing
+
+
+def write_run(result: PlanResult, settings: PlanSettings, site_path, out, *, force: bool = False,
+              progress: Progress | None = None) -> Path:
+    """Write the run folder of ``result`` to ``out``, whole or not at all."""
+    progress = progress or Progress()
+    out = Path(out)
+    with atomic_folder(out, force=force) as tmp:
+        _write_contents(result, settings, site_path, tmp, progress)
+    return out
+
+
+def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folder: Path, progress) -> None:
+    from planner import plots
+    from planner.export import write_csv, write_geojson
+    from planner.risk import format_table, risk_map
+
+    shutil.copyfile(site_path, folder / "site.geojson")
+    arrays = {
+        "greedy_cautious": result.greedy["cautious"].astype(np.int64),
+        "greedy_shortest": result.greedy["shortest"].astype(np.int64),
+        "q_cautious": result.learned["cautious"].q_mean, "q_shortest": result.learned["shortest"].q_mean,
+        "q_exact_on_policy": result.exact["cautious"].q, "q_exact_optimal": result.exact["shortest"].q,
+    }
+    _save_npz(folder / "policies.npz", arrays)
+    _save_npz(folder / "training.npz", {
+        f"{name}_{key}": getattr(result.learned[name], key)
+        for name in POLICIES for key in ("returns", "moves", "ends")
+    })
+    progress("writing waypoint files")
+    for name in POLICIES:
+        write_geojson(result.routes[name], folder / f"routes-{name}.geojson", site=result.site, alt_m=settings.alt_m)
+        write_csv(result.routes[name], folder / f"waypoints-{name}.csv", alt_m=settings.alt_m)
+    (folder / "risk.csv").write_text(format_table(result.risk_rows, "csv"))
+    (folder / "risk.json").write_text(format_table(result.risk_rows, "json"))
+    progress("drawing figures")
+    plots.plot_learning(result.learned, folder / "learning.png",
+                        title=f"{result.site.name} - learning curves")
+    plots.plot_routes(result.site, result.grid, result.routes, result.greedy, folder / "routes.png")
+    noise = settings.learn.epsilon
+    maps = {}
+    from planner.model import epsilon_greedy
+
+    for name in POLICIES:
+        probs = epsilon_greedy(result.greedy[name], result.model.n_actions, noise)
+        maps[name] = risk_map(result.model, probs)
+    plots.plot_risk_maps(result.site, result.grid, maps, result.routes, folder / "riskmap.png", noise=noise)
+    plots.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
+                           title=f"{result.site.name} - incident probability under worse execution and wind")
+    manifest = build_manifest(result, settings, site_path, folder)
+    try:
+        from planner.brief import write_brief
+    except ImportError:
+        write_brief = None
+    if write_brief is not None:
+        progress("writing the briefing")
+        write_brief(folder, result=result, settings=settings, manifest=manifest)
+    manifest["files"] = {p.name: sha256_file(p) for p in sorted(folder.iterdir())
+                         if p.is_file() and p.name != "manifest.json"}
+    (folder / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+
+
+def _save_npz(path: Path, arrays: dict) -> None:
+    """Deterministic .npz: fixed member order and time stamps, so equal arrays give equal bytes."""
+    import io
+    import zipfile
+
+    with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        for name in sorted(arrays):
+            buf = io.BytesIO()
+            np.lib.format.write_array(buf, np.ascontiguousarray(arrays[name]), allow_pickle=False)
+            info = zipfile.ZipInfo(f"{name}.npy", date_time=(1980, 1, 1, 0, 0, 0))
+            info.compress_type = zipfile.ZIP_DEFLATED
+            zf.writestr(info, buf.getvalue())
+
+
+def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder: Path) -> dict:
+    """The manifest: inputs with hashes, settings, seeds, versions, results in brief."""
+    root = result.root_seed
+    summary = {}
+    for name in POLICIES:
+        route, conv = result.routes[name], result.convergence[name]
+        learned = result.learned[name]
+        summary[name] = {
+            "method": learned.method, "reached_goal": route.reached_goal, "moves": route.n_moves,
+            "length_m": round(route.length_m, 3), "waypoints": len(route.waypoints),
+            "converged": conv.converged, "agreement": round(conv.agreement, 6),
+            "value_gap_m": None if not np.isfinite(conv.value_gap_m) else round(conv.value_gap_m, 6),
+            "seed_routes_matching": conv.seed_routes_matching, "n_seeds": conv.n_seeds, "message": conv.message,
+            "episodes": learned.settings.episodes, "max_steps": learned.max_steps,
+        }
+    exact = {name: {"iterations": sol.iterations, "residual": sol.residual, "epsilon": sol.epsilon}
+             for name, sol in result.exact.items()}
+    return {
+        "format": RUN_FORMAT,
+        "format_version": RUN_FORMAT_VERSION,
+        "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "notice": "For simulation and review only; not approved for field operation. Follow the site's safety "
+                  "rules, certified operators and local regulations.",
+        "input": {"site": str(site_path), "site_copy": "site.geojson", "sha256": result.site.sha256,
+                  "name": result.site.name},
+        "settings": settings_record(settings),
+        "seeds": {"entropy": str(root.entropy), "spawn": {"cautious": 0, "shortest": 1, "risk": 2},
+                  "given": settings.seed},
+        "versions": versions(),
+        "grid": {"rows": result.grid.shape[0], "cols": result.grid.shape[1], "cell_m": result.grid.cell_m,
+                 "x0": result.grid.x0, "y0": result.grid.y0},
+        "model": {"outcomes": result.model.n_outcomes, "bytes": result.model.nbytes,
+                  "hazard_penalty_m": [float(p) for p in result.model.penalty_m],
+                  "boundary_penalty_m": result.model.boundary_penalty_m, "warnings": list(result.model.warnings)},
+        "warnings": list(result.site.warnings) + list(result.grid.warnings) + list(result.model.warnings),
+        "results": summary,
+        "exact": exact,
+        "timings_s": {k: round(v, 3) for k, v in result.timings.items()},
+    }
+
+
+# ----------------------------------------------------------------------------- reading back
+
+
+MANIFEST_KEYS = {"format": str, "format_version": int, "input": dict, "settings": dict, "seeds": dict,
+                 "versions": dict, "files": dict, "results": dict}
+
+
+@dataclass(frozen=True)
+class Run:
+    """A run folder read back and checked: its manifest, settings and policies."""
+
+    folder: Path
+    manifest: dict
+    settings: PlanSettings
+    arrays: dict
+
+    @property
+    def site_path(self) -> Path:
+        return self.folder / "site.geojson"
+
+
+def load_run(folder) -> Run:
+    """Read a run folder, checking its manifest schema, version and file hashes.
+
+    Raises
+    ------
+    RunFolderError
+        Missing folder or manifest, another format, a newer version, a file whose
+        hash differs from the manifest (tampered or damaged), or bad policy arrays.
+    """
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise RunFolderError(f"{folder}: no such run folder")
+    path = folder / "manifest.json"
+    if not path.is_file():
+        raise RunFolderError(f"{folder}: has no manifest.json; not a complete yardplan run folder")
+    try:
+        manifest = json.loads(path.read_text())
+    except (UnicodeDecodeError, json.JSONDecodeError) as err:
+        raise RunFolderError(f"{path}: manifest is not valid JSON ({err})") from err
+    if not isinstance(manifest, dict):
+        raise RunFolderError(f"{path}: manifest is not a JSON object")
+    for key, kind in MANIFEST_KEYS.items():
+        if not isinstance(manifest.get(key), kind):
+            raise RunFolderError(f"{path}: manifest key {key!r} is missing or not a {kind.__name__}")
+    if manifest["format"] != RUN_FORMAT:
+        raise RunFolderError(f"{path}: format {manifest['format']!r} is not a yardplan run")
+    if manifest["format_version"] > RUN_FORMAT_VERSION:
+        raise RunFolderError(
+            f"{path}: run folder format {manifest['format_version']} is newer than this yardplan understands "
+            f"({RUN_FORMAT_VERSION}); upgrade yardplan"
+        )
+    for name, digest in manifest["files"].items():
+        if Path(name).name != name or name.startswith("."):
+            raise RunFolderError(f"{path}: file entry {name!r} is not a plain file name")
+        member = folder / name
+        if not member.is_file():
+            raise RunFolderError(f"{folder}: {name} is listed in the manifest but missing")
+        if sha256_file(member) != digest:
+            raise RunFolderError(f"{folder}: {name} does not match its hash in the manifest (changed or damaged)")
+    for required in ("policies.npz", "site.geojson"):
+        if required not in manifest["files"]:
+            raise RunFolderError(f"{path}: manifest does not list {required}")
+    settings = settings_from_record(manifest["settings"])
+    arrays = _load_policies(folder / "policies.npz")
+    return Run(folder=folder, manifest=manifest, settings=settings, arrays=arrays)
+
+
+def _load_policies(path: Path) -> dict:
+    import zipfile
+
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            arrays = {k: data[k] for k in data.files}
+    except (ValueError, OSError, zipfile.BadZipFile, EOFError) as err:
+        raise RunFolderError(f"{path}: cannot read policies ({err})") from err
+    for key, dtype in POLICY_ARRAYS.items():
+        if key not in arrays:
+            raise RunFolderError(f"{path}: missing array {key!r}")
+        if arrays[key].dtype != np.dtype(dtype):
+            raise RunFolderError(f"{path}: array {key!r} has dtype {arrays[key].dtype}, expected {dtype}")
+    return arrays
+
+
+def rebuild(run: Run, *, drift_scale: float | None = None):
+    """Site, grid and model of a run, rebuilt from its site copy and recorded settings."""
+    from planner.grid import rasterise
+    from planner.model import build_model
+    from planner.site import load_site
+
+    s = run.settings
+    site = load_site(run.site_path, crs=s.crs, fix=s.fix, max_bytes=s.max_bytes)
+    grid = rasterise(site, s.grid)
+    dynamics = s.dynamics if drift_scale is None else dataclasses.replace(s.dynamics, drift_scale=drift_scale)
+    model = build_model(grid, dynamics)
+    for key in POLICY_ARRAYS:
+        arr = run.arrays[key]
+        expected = (model.n_states,) if key.startswith("greedy") else (model.n_states, model.n_actions)
+        if arr.shape != expected:
+            raise RunFolderError(f"{run.folder}: policy array {key!r} has shape {arr.shape}, expected {expected}")
+    for key in ("greedy_cautious", "greedy_shortest"):
+        arr = run.arrays[key]
+        if arr.size and (arr.min() < 0 or arr.max() >= model.n_actions):
+            raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{model.n_actions - 1}")
+    return site, grid, model

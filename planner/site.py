@@ -32,9 +32,7 @@ MAX_VERTICES_PER_FEATURE = 200_000
 #: Outcome names of the risk table; a hazard may not take one.
 RESERVED_NAMES = ("none", "goal", "boundary", "incident", "never")
 ROLES = ("boundary", "hazard", "rough", "drift", "start", "goal")
-ZONE_#: Outcome names of the risk table; a hazard may not take one.
-RESERVED_NAMES = ("none", "goal", "boundary", "incident", "never")
-ROLES = ("hazard", "rough", "drift")
+ZONE_ROLES = ("hazard", "rough", "drift")
 
 _POLYGONAL = ("Polygon", "MultiPolygon")
 _GEOMETRY_TYPES = {
