@@ -321,11 +321,20 @@ def epsilon_greedy(greedy_action: np.ndarray, n_actions: int, epsilon: float) ->
     return probs
 
 
+#: A run that needs more moves than this on average to end, from some cell, is
+#: treated as looping for ever there: no vehicle runs that long, and a linear solve
+#: cannot resolve escape probabilities that small (they sit below round-off).
+PRACTICALLY_FOREVER_MOVES = 1e9
+
+
 def reaches_absorption(chain: Chain, active: np.ndarray) -> np.ndarray:
-    """Which active states end the run with positive probability (bool ``(n_states,)``).
+    """Which active states end the run, in practice, under the chain (bool ``(n_states,)``).
 
     An active state that cannot reach any absorbing outcome is trapped: the policy
     loops forever from it. Found by reachability on the reversed transient graph.
+    States that can reach an ending but would need more than
+    ``PRACTICALLY_FOREVER_MOVES`` moves on average (near-closed loops whose escape
+    needs a long run of unlikely slips) count as trapped too.
     """
     from scipy.sparse.csgraph import breadth_first_order
 
@@ -344,11 +353,14 @@ def reaches_absorption(chain: Chain, active: np.ndarray) -> np.ndarray:
     graph = bmat([[csr_matrix((1, 1), dtype=np.int8), link], [None, reverse]], format="csr")
     order = breadth_first_order(graph, 0, directed=True, return_predecessors=False)
     reached[order[order > 0] - 1] = True
-    return reached & active
+    reached &= active
+    moves, _ = solve_transient(chain, reached.astype(float), reached, check=False)
+    slow = reached & ~(moves < PRACTICALLY_FOREVER_MOVES)
+    return reached & ~slow
 
 
 def solve_transient(chain: Chain, rhs: np.ndarray, mask: np.ndarray, *, transpose: bool = False,
-                    tol: float = 1e-8) -> tuple[np.ndarray, float]:
+                    tol: float = 1e-8, check: bool = True) -> tuple[np.ndarray, float]:
     """Solve ``(I - T) x = rhs`` (or with ``T`` transposed) on the states in ``mask``.
 
     ``T`` is ``chain.transient``; states outside ``mask`` are held at zero. ``mask``
@@ -363,6 +375,9 @@ def solve_transient(chain: Chain, rhs: np.ndarray, mask: np.ndarray, *, transpos
     latest system is kept (until its chain is garbage-collected), so further solves
     on the same chain and mask, transposed or not, cost only triangular solves; the
     chain's matrices must not be changed in place.
+
+    ``check=False`` skips the residual test (used only to detect near-closed loops,
+    whose huge expected durations are the point).
 
     Raises
     ------
@@ -384,7 +399,7 @@ def solve_transient(chain: Chain, rhs: np.ndarray, mask: np.ndarray, *, transpos
         applied = x_sub
     x_sub = np.asarray(x_sub, dtype=float).reshape(b.shape)
     residual = float(np.max(np.abs(applied - b), initial=0.0) / max(1.0, float(np.max(np.abs(b), initial=0.0))))
-    if not np.all(np.isfinite(x_sub)) or not residual <= tol:
+    if check and (not np.all(np.isfinite(x_sub)) or not residual <= tol):
         raise SolverError(f"absorbing-chain solve did not converge (relative residual {residual:.2e} > {tol:.0e})")
     x = np.zeros((rhs.shape[0],) + rhs.shape[1:])
     x[idx] = x_sub

@@ -1,0 +1,299 @@
+"""Learners: SARSA and Q-learning against exact references and a textbook example."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from planner.errors import SettingsError
+from planner.exact import convergence_report, on_policy_q, optimal_q, policy_value
+from planner.grid import FREE, DriftInfo, HazardInfo, cost_to_goal, grid_from_arrays
+from planner.learn import (
+    END_STEP_CAP,
+    LearnSettings,
+    _greedy,
+    _run_seed,
+    _sample,
+    corridor_states,
+    fewest_moves,
+    greedy_actions,
+    heuristic_q,
+    model_cost_to_go,
+    sampling_table,
+    train,
+)
+from planner.model import Dynamics, build_model
+from planner.route import nominal_path
+
+
+def cliff_grid():
+    """Example 6.6 (cliff walking), Sutton & Barto, Reinforcement Learning: An
+    Introduction, 2nd ed. (2018): 4 x 12, start bottom-left, goal bottom-right, the
+    cliff along the bottom row between them (here a hazard strip ending the run)."""
+    label = np.full((4, 12), FREE)
+    label[0, 1:11] = 0
+    goal = np.zeros((4, 12), dtype=bool)
+    goal[0, 11] = True
+    return grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("cliff"),))
+
+
+def cliff_model():
+    return build_model(cliff_grid(), Dynamics(n_actions=4, slip=0.0, edge="wall", step_cost="move",
+                                              hazard_penalty_m=100.0))
+
+
+def cells(model, states):
+    return [tuple(int(v) for v in np.unravel_index(s, model.shape)) for s in states]
+
+
+@pytest.fixture(scope="module")
+def cliff():
+    return cliff_model()
+
+
+@pytest.fixture(scope="module")
+def cliff_runs(cliff):
+    """Both learners as in the book's comparison: epsilon 0.1, step 0.5, Q from zeros."""
+    settings = LearnSettings(epsilon=0.1, step_size=0.5, episodes=500, n_seeds=8, q_init="zeros")
+    root = np.random.SeedSequence(20180601)
+    sarsa_seed, q_seed = root.spawn(2)
+    return {"sarsa": train(cliff, "sarsa", settings, seed=sarsa_seed),
+            "qlearning": train(cliff, "qlearning", settings, seed=q_seed)}
+
+
+# ----------------------------------------------------------------------------- cliff walking
+
+
+def test_cliff_qlearning_consensus_is_the_13_move_route(cliff, cliff_runs):
+    path = nominal_path(cliff, greedy_actions(cliff_runs["qlearning"].q_mean))
+    # Example 6.6, Sutton & Barto 2nd ed. (2018): Q-learning learns the optimal path along
+    # the edge of the cliff: up one, east eleven along row 1, down one = 13 moves.
+    assert path.reached_goal and path.n_moves == 13
+    assert cells(cliff, path.states) == [(0, 0)] + [(1, c) for c in range(12)]
+
+
+def test_cliff_sarsa_consensus_keeps_off_the_edge_row(cliff, cliff_runs):
+    path = nominal_path(cliff, greedy_actions(cliff_runs["sarsa"].q_mean))
+    assert path.reached_goal
+    # Example 6.6, Sutton & Barto 2nd ed. (2018): SARSA learns the longer, safer path.
+    # Precisely: row 1 (next to the strip) is entered only in columns 0 and 11.
+    assert {c for r, c in cells(cliff, path.states) if r == 1} <= {0, 11}
+    assert path.n_moves > 13
+
+
+def test_cliff_sarsa_online_return_beats_qlearning(cliff, cliff_runs):
+    later = slice(100, 500)  # episodes 101-500, after the early learning
+    sarsa = cliff_runs["sarsa"].returns[:, later].mean()
+    qlearning = cliff_runs["qlearning"].returns[:, later].mean()
+    # Sutton & Barto 2nd ed. (2018), Example 6.6 and its figure (from memory): with
+    # epsilon-greedy exploration, SARSA's online return per episode is higher than
+    # Q-learning's, which keeps falling off while walking the edge.
+    assert sarsa > qlearning + 5.0
+    # Cross-check with the exact value: walking the optimal route with noise 0.1 is
+    # worth the exact policy value below; Q-learning's online mean should sit near it.
+    exact, _, _ = policy_value(cliff, greedy_actions(optimal_q(cliff).q), 0.1)
+    assert_allclose(qlearning, exact, atol=3.0)  # about 4 standard errors over 3200 episodes
+
+
+def test_cliff_episode_records(cliff, cliff_runs):
+    run = cliff_runs["qlearning"]
+    assert run.returns.shape == run.moves.shape == run.ends.shape == (8, 500)
+    assert run.returns.dtype == np.float64 and run.moves.dtype == np.int32 and run.ends.dtype == np.int16
+    assert set(np.unique(run.ends)) <= {1, 3, END_STEP_CAP}
+    # A finished episode's return is minus its moves, minus 100 when it fell off.
+    assert_allclose(run.returns, -run.moves - 100.0 * (run.ends == 3), atol=1e-9)
+    assert run.steps_total == int(run.moves.sum())
+    # Fewest moves 13 (the book's optimal path), so the derived cap is 10 x 13.
+    assert fewest_moves(cliff) == 13 and run.max_steps == 130
+
+
+# ----------------------------------------------------------------------------- convergence
+
+
+def small_yard():
+    """A 3 x 4 grid with a pit between start and goal, king moves, slip 0.2, walls.
+
+    Every visited state's best action beats the next-best by at least 0.28 in both
+    references (near-ties would need far more episodes to resolve).
+    """
+    label = np.full((3, 4), FREE)
+    label[1, 1] = 0
+    goal = np.zeros((3, 4), dtype=bool)
+    goal[1, 3] = True
+    grid = grid_from_arrays(label, goal=goal, start=(1, 0), hazards=(HazardInfo("pit", penalty_m=20.0),))
+    return build_model(grid, Dynamics(n_actions=8, slip=0.2, edge="wall"))
+
+
+@pytest.mark.parametrize("method", ["sarsa", "qlearning"])
+def test_learners_converge_to_exact_references(method):
+    model = small_yard()
+    settings = LearnSettings(epsilon=0.1, step_decay=0.8, episodes=20_000, start_mode="explore")
+    learned = train(model, method, settings, seed=7)
+    reference = on_policy_q(model, 0.1) if method == "sarsa" else optimal_q(model)
+    report = convergence_report(model, learned, reference, 0.1)
+    assert_allclose(report.agreement, 1.0, atol=1e-12)
+    assert report.converged and report.seeds_agreeing == 8
+    assert_allclose(report.value_gap_m, 0.0, atol=1e-6)
+
+
+# ----------------------------------------------------------------------------- determinism
+
+
+def test_same_seed_same_arrays_whatever_the_thread_count():
+    model = small_yard()
+    for method in ("sarsa", "qlearning"):
+        for settings in (LearnSettings(episodes=300, n_seeds=5),
+                         LearnSettings(episodes=300, n_seeds=5, step_decay=0.7, start_mode="explore", q_init="zeros")):
+            runs = [train(model, method, settings, seed=np.random.SeedSequence(99), n_jobs=jobs) for jobs in (1, 2, 3)]
+            runs.append(train(model, method, settings, seed=99, n_jobs=2))
+            for other in runs[1:]:
+                for name in ("q", "returns", "moves", "ends"):
+                    np.testing.assert_array_equal(getattr(runs[0], name), getattr(other, name))
+            assert runs[0].seed_entropy == 99
+            different = train(model, method, settings, seed=100)
+            assert not np.array_equal(different.returns, runs[0].returns)
+
+
+def test_progress_reports_and_chunking_does_not_change_results(monkeypatch):
+    model = small_yard()
+    settings = LearnSettings(episodes=200, n_seeds=3, step_decay=0.9, start_mode="explore")
+    calls = []
+    chunked = train(model, "sarsa", settings, seed=5, progress=lambda done, total: calls.append((done, total)))
+    assert calls[-1] == (600, 600)
+    assert all(a[0] <= b[0] for a, b in zip(calls, calls[1:], strict=False))
+    monkeypatch.setattr("planner.learn.PROGRESS_CHUNKS", 1)
+    whole = train(model, "sarsa", settings, seed=5)
+    for name in ("q", "returns", "moves", "ends"):
+        np.testing.assert_array_equal(getattr(chunked, name), getattr(whole, name))
+
+
+# ----------------------------------------------------------------------------- pieces
+
+
+def test_sampled_outcomes_follow_the_model():
+    # From the start, north leads into the goal; slip 0.2 turns it east or west (0.1
+    # each, four moves) into two different hazards. Q is held fixed (step size 0) with
+    # north greedy, so every episode is one move and its end is one draw of the sampler.
+    label = np.array([[0, FREE, 1], [FREE, FREE, FREE]])
+    goal = np.array([[False, False, False], [False, True, False]])
+    grid = grid_from_arrays(label, goal=goal, start=(0, 1), hazards=(HazardInfo("west"), HazardInfo("east")))
+    model = build_model(grid, Dynamics(n_actions=4, slip=0.2, edge="wall", hazard_penalty_m=50.0))
+    n = 40_000
+    q = np.full(model.n_states * 4, -1.0)
+    q[model.start * 4 + 0] = 0.0
+    returns, moves, ends = np.zeros(n), np.zeros(n, np.int32), np.zeros(n, np.int16)
+    _run_seed(model.offsets, sampling_table(model), 4, q, np.zeros(0, np.int64), 1, 0.0, 0.0, 0.0, 1.0, n, 10,
+              model.start, np.zeros(0, np.int64), 0.5, np.uint64(3), returns, moves, ends)
+    share = np.array([(ends == code).mean() for code in (1, 3, 4)])
+    # Binomial: 40,000 draws; 5 standard errors of a share of 0.1 is 0.0075.
+    assert_allclose(share, [0.8, 0.1, 0.1], atol=0.0075)
+    assert np.all(moves == 1)
+    assert_allclose(returns, np.where(ends == 1, -1.0, -51.0))
+
+
+def test_sampler_walk_matches_block_probabilities():
+    # A block with many outcomes: king moves, slip, and a spread drift.
+    label = np.full((9, 9), FREE)
+    goal = np.zeros((9, 9), dtype=bool)
+    goal[8, 8] = True
+    drift = DriftInfo("gust", east_m=0.6, north_m=-0.4, spread_m=0.7, chance=0.8)
+    grid = grid_from_arrays(label, goal=goal, start=(4, 4), drifts=(drift,), drift_class=np.ones((9, 9), np.int32),
+                            drift_members=((), (0,)))
+    model = build_model(grid, Dynamics(n_actions=8, slip=0.2, edge="wall"))
+    table = sampling_table(model)
+    k = model.start * 8 + 1
+    lo, hi = int(model.offsets[k]), int(model.offsets[k + 1])
+    assert hi - lo >= 10
+    # Evenly spaced 32-bit draws: each outcome's share is its probability within 2 / n.
+    n = 2**16
+    picks = np.array([_sample(table, lo, hi - 1, np.uint32(d)) for d in range(0, 2**32, 2**32 // n)])
+    share = np.bincount(picks - lo, minlength=hi - lo) / n
+    assert_allclose(share, model.prob[lo:hi], atol=2.0 / n)
+    assert picks.min() >= lo and picks.max() <= hi - 1
+    # The largest draw still lands in the block, on its last outcome.
+    assert _sample(table, lo, hi - 1, np.uint32(2**32 - 1)) == hi - 1
+
+
+def test_kernel_breaks_ties_uniformly():
+    q = np.array([0.0, 2.0, 1.0, 2.0, -1.0, 0.5, 2.0, 1.9])
+    state = np.uint64(12345)
+    picks = np.zeros(8, dtype=np.int64)
+    for _ in range(30_000):
+        state, a, best = _greedy(q, 0, 8, np.uint64(state))
+        picks[a] += 1
+    assert best == 2.0
+    assert picks[[0, 2, 4, 5, 7]].sum() == 0
+    # Each of the three tied actions: share 1/3, standard error 0.0027 over 30,000 draws.
+    assert_allclose(picks[[1, 3, 6]] / 30_000, 1 / 3, atol=0.012)
+
+
+def test_greedy_actions_ties():
+    q = np.array([[1.0, 3.0, 3.0, 0.0], [2.0, 2.0, 2.0, 2.0]])
+    np.testing.assert_array_equal(greedy_actions(q), [1, 0])
+    rng = np.random.default_rng(5)
+    draws = np.array([greedy_actions(q, rng) for _ in range(4000)])
+    assert set(np.unique(draws[:, 0])) == {1, 2}
+    assert_allclose(np.bincount(draws[:, 1], minlength=4) / 4000, 0.25, atol=0.03)
+
+
+def test_heuristic_is_exact_on_a_deterministic_grid(cliff):
+    # With no slip or drift, one exact step plus the exact cost to go is Q* itself.
+    grid_cost = cost_to_goal(cliff_grid(), 4, unit_cost=True)
+    assert_allclose(model_cost_to_go(cliff), grid_cost.ravel(), atol=0)
+    assert_allclose(heuristic_q(cliff, grid_cost), optimal_q(cliff).q, atol=1e-9)
+
+
+def test_heuristic_values_unreachable_cells_at_the_boundary_penalty():
+    label = np.array([[FREE, FREE, 0, FREE, FREE]])
+    goal = np.array([[False, False, False, False, True]])
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("ditch", penalty_m=30.0),))
+    model = build_model(grid, Dynamics(n_actions=4, slip=0.0, edge="wall", step_cost="move", hazard_penalty_m=75.0))
+    q = heuristic_q(model, model_cost_to_go(model))
+    east = 1
+    assert model.boundary_penalty_m == 75.0
+    assert_allclose(q[0, east], -1.0 - 75.0)                         # into cell 1, cut off from the goal
+    assert_allclose(q[1, east], -1.0 - 30.0)                         # into the ditch: reward only
+    assert_allclose(q[3, east], -1.0)                                # into the goal
+    assert_allclose(q[2], 0.0)                                       # the ditch is inactive
+
+
+def test_corridor_of_exploring_starts(cliff):
+    # Cliff grid, cost 1 per move: a cell (r, c) above the strip is r + c from the start
+    # and r + 11 - c from the goal, 2r + 11 in all, against 13 from the start. A margin
+    # of 0.2 allows 15.6: rows 1 and 2 qualify, row 3 (2 * 3 + 11 = 17) does not.
+    states = corridor_states(cliff, margin=0.2)
+    expected = sorted([0] + [r * 12 + c for r in (1, 2) for c in range(12)])
+    np.testing.assert_array_equal(states, expected)
+
+
+def test_step_cap_ends_episodes(cliff):
+    learned = train(cliff, "sarsa", LearnSettings(episodes=20, n_seeds=2, max_steps=1, q_init="zeros"), seed=1)
+    assert np.all(learned.moves == 1)
+    assert set(np.unique(learned.ends)) <= {END_STEP_CAP, 3}
+
+
+# ----------------------------------------------------------------------------- validation
+
+
+@pytest.mark.parametrize("field, value, option", [
+    ("epsilon", -0.1, "--epsilon"), ("epsilon", 1.5, "--epsilon"), ("epsilon", float("nan"), "--epsilon"),
+    ("step_size", 0.0, "--step-size"), ("step_size", 1.2, "--step-size"),
+    ("step_decay", 0.5, "--step-decay"), ("step_decay", 1.1, "--step-decay"),
+    ("gamma", 0.0, "--gamma"), ("gamma", 1.01, "--gamma"),
+    ("episodes", 0, "--episodes"), ("episodes", 10.0, "--episodes"), ("episodes", True, "--episodes"),
+    ("max_steps", 0, "--max-steps"), ("n_seeds", 0, "--seeds"),
+    ("start_mode", "random", "--start-mode"), ("q_init", "ones", "--q-init"),
+])
+def test_settings_name_the_option(field, value, option):
+    with pytest.raises(SettingsError, match=option):
+        LearnSettings(**{field: value})
+
+
+def test_train_refuses_unknown_method_and_jobs(cliff):
+    with pytest.raises(SettingsError, match="method"):
+        train(cliff, "montecarlo", LearnSettings(episodes=1, n_seeds=1))
+    with pytest.raises(SettingsError, match="--jobs"):
+        train(cliff, "sarsa", LearnSettings(episodes=1, n_seeds=1), n_jobs=0)
+    with pytest.raises(SettingsError, match="--seed"):
+        train(cliff, "sarsa", LearnSettings(episodes=1, n_seeds=1), seed=-3)
