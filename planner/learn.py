@@ -80,7 +80,7 @@ class LearnSettings:
     """
 
     epsilon: float = 0.1
-    step_size: float = 0.5
+    step_size: float = 0.1
     step_decay: float | None = None
     gamma: float = 1.0
     episodes: int = 20_000

@@ -38,6 +38,12 @@ POLICY_ARRAYS = {
     "q_exact_on_policy": "float64", "q_exact_optimal": "float64",
 }
 POLICIES = ("cautious", "shortest")
+#: Actions within this many cells (metres-equivalent / cell size) of the exact best
+#: count as agreeing: a detour below the grid's resolution is no disagreement.
+TIE_CELLS = 0.25
+#: A learned policy within this share of the exact value at the start (or one cell)
+#: counts as converged on value.
+GAP_SHARE = 0.01
 
 
 @contextlib.contextmanager
@@ -268,11 +274,12 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     timings["exact_s"] = time.perf_counter() - t
     learned = {"cautious": cautious, "shortest": shortest}
     greedy = {name: greedy_actions(learned[name].q_mean) for name in POLICIES}
+    tie_m = TIE_CELLS * grid.cell_m
     convergence = {
-        "cautious": convergence_report(model, cautious, exact["cautious"], eps,
-                                       threshold=settings.convergence_threshold),
-        "shortest": convergence_report(model, shortest, exact["shortest"], 0.0,
-                                       threshold=settings.convergence_threshold),
+        name: convergence_report(model, learned[name], exact[name], eps if name == "cautious" else 0.0,
+                                 threshold=settings.convergence_threshold, tie_m=tie_m,
+                                 gap_limit_m=max(grid.cell_m, GAP_SHARE * abs(float(exact[name].v[model.start]))))
+        for name in POLICIES
     }
     paths = {name: nominal_path(model, greedy[name]) for name in POLICIES}
     routes = _routes(site, grid, model, paths)

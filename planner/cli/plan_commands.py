@@ -26,7 +26,7 @@ def learn_options(f):
     """Options of the two learners."""
     f = click.option("--epsilon", type=float, default=0.1, show_default=True,
                      help="Execution noise the cautious policy is trained for (share of random moves).")(f)
-    f = click.option("--step-size", type=float, default=0.5, show_default=True, help="Constant step size.")(f)
+    f = click.option("--step-size", type=float, default=0.1, show_default=True, help="Constant step size.")(f)
     f = click.option("--step-decay", type=float, default=None, metavar="W",
                      help="Use step size 1/n(s,a)^W instead of a constant (0.5 < W <= 1).")(f)
     f = click.option("--gamma", type=float, default=1.0, show_default=True, help="Discount (1 = none).")(f)
@@ -58,8 +58,12 @@ def risk_options(f):
 
 
 def default_episodes(n_active: int) -> int:
-    """Episodes per seed sized from the grid: enough for the demo sites to converge."""
-    return int(min(20000, max(3000, 2 * n_active)))
+    """Episodes per seed sized from the grid: 50 per usable cell, 20,000 to 500,000.
+
+    Measured on the demo sites (about 5,000-6,000 usable cells): SARSA reaches 98%
+    agreement with its exact reference at 200,000-250,000 episodes with step 0.1.
+    """
+    return int(min(500_000, max(20_000, 50 * n_active)))
 
 
 @cli.command()
