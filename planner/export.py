@@ -9,6 +9,7 @@ nothing time-dependent is written unless the caller passes it in.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import io
 import json
@@ -311,31 +312,37 @@ def write_gpx(routes, path, *, alt_m: float | None = None, time=None, name: str 
 # ----------------------------------------------------------------------------- files
 
 
-def _write_atomic(path, text: str) -> Path:
-    """Write UTF-8 ``text`` to a temporary file beside ``path``, then rename it into place.
+@contextlib.contextmanager
+def atomic_output(path):
+    """Yield a temporary path beside ``path``; rename it into place only on success.
 
     A reader never sees a half-written file: it finds the old file or the new one.
+    The file gets the usual permissions (0666 less the umask).
     """
     path = Path(path)
-    folder = path.parent
+    folder = path.parent if str(path.parent) else Path(".")
     if not folder.is_dir():
         raise RunFolderError(f"{path}: folder {folder} does not exist")
-    data = text.encode("utf-8")
-    tmp = None
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+    os.close(fd)
+    mask = os.umask(0o022)
+    os.umask(mask)
+    os.chmod(tmp, 0o666 & ~mask)
     try:
-        with tempfile.NamedTemporaryFile(dir=folder, prefix=f".{path.name}.", suffix=".tmp", delete=False) as fh:
-            tmp = fh.name
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
+        yield Path(tmp)
         os.replace(tmp, path)
-        tmp = None
     except OSError as err:
         raise RunFolderError(f"{path}: cannot write ({err.strerror or err})") from err
     finally:
-        if tmp is not None:
-            Path(tmp).unlink(missing_ok=True)
-    return path
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _write_atomic(path, text: str) -> Path:
+    """Write UTF-8 ``text`` to ``path`` atomically (see :func:`atomic_output`)."""
+    with atomic_output(path) as tmp:
+        tmp.write_bytes(text.encode("utf-8"))
+    return Path(path)
 
 
 def export_routes(routes: Iterable[Route], folder, *, site, formats=("geojson", "csv"), alt_m=None) -> list[Path]:

@@ -732,3 +732,28 @@ __all__ = [
     "TABLE_DTYPE", "fewest_moves", "greedy_actions", "heuristic_q", "model_cost_to_go",
     "sampling_table", "seed_states", "train",
 ]
+
+
+def learning_curves(learned: Learned, n_bins: int = 1000) -> dict[str, np.ndarray]:
+    """Per-seed learning curves averaged over consecutive blocks of episodes.
+
+    Returns ``episode_end`` (int64 ``(n_bins,)``, last episode of each block, 1-based)
+    and float64 ``(n_seeds, n_bins)`` arrays ``return_mean``, ``moves_mean``,
+    ``goal_share`` and ``incident_share`` (boundary or an ending hazard). Small enough
+    to keep in a run folder whatever the number of episodes.
+    """
+    n_ep = learned.returns.shape[1]
+    n_bins = max(1, min(int(n_bins), n_ep))
+    edges = np.linspace(0, n_ep, n_bins + 1).round().astype(np.int64)
+    starts, sizes = edges[:-1], np.diff(edges)
+
+    def block_mean(values):
+        return np.add.reduceat(np.asarray(values, dtype=np.float64), starts, axis=1) / sizes
+
+    return {
+        "episode_end": edges[1:],
+        "return_mean": block_mean(learned.returns),
+        "moves_mean": block_mean(learned.moves),
+        "goal_share": block_mean(learned.ends == EVENT_GOAL),
+        "incident_share": block_mean(learned.ends >= 2),
+    }

@@ -249,8 +249,13 @@ def draw_routes(ax, grid: Grid, routes: dict, *, waypoints: bool = True):
             ax.plot(wx, wy, "o", color=look["color"], ms=3.5, mec="white", mew=0.6, zorder=7)
 
 
-def plot_routes(site, grid: Grid, routes: dict, greedy: dict, path, *, title: str | None = None) -> Path:
-    """The site with both nominal routes and the cells where the two policies differ."""
+def plot_routes(site, grid: Grid, routes: dict, greedy: dict, path, *, title: str | None = None,
+                where: np.ndarray | None = None) -> Path:
+    """The site with both nominal routes and the cells where the two policies differ.
+
+    ``where`` (bool, one per cell) limits the differences shown to cells the policies
+    actually visit; elsewhere a difference changes nothing a run would do.
+    """
     fig, ax = _new_axes(grid, title or f"{site.name} - nominal routes")
     draw_site(ax, grid, site, alpha=0.75)
     names = list(greedy)
@@ -258,11 +263,13 @@ def plot_routes(site, grid: Grid, routes: dict, greedy: dict, path, *, title: st
     if len(names) == 2:
         active = grid.passable() & ~grid.goal
         differ = (greedy[names[0]].reshape(grid.shape) != greedy[names[1]].reshape(grid.shape)) & active
+        if where is not None:
+            differ &= np.asarray(where, dtype=bool).reshape(grid.shape)
         xs, ys = grid.centres()
         ax.scatter(xs[differ], ys[differ], s=max(1.0, 900.0 / max(grid.shape)), marker="s", color=style.DISAGREE,
                    alpha=0.22, lw=0, zorder=3)
         handles.append(Patch(fc=style.DISAGREE, alpha=0.35,
-                             label=f"policies choose differently ({int(differ.sum()):,} cells)"))
+                             label=f"policies choose differently ({int(differ.sum()):,} visited cells)"))
     draw_routes(ax, grid, routes)
     route_handles = [Line2D([], [], color=style.POLICY[n]["color"], ls=style.POLICY[n]["linestyle"], lw=2.2,
                             label=f"{style.POLICY[n]['label']}: {routes[n].length_m:.0f} m") for n in routes]

@@ -44,23 +44,9 @@ TIE_CELLS = 0.25
 #: A learned policy within this share of the exact value at the start (or one cell)
 #: counts as converged on value.
 GAP_SHARE = 0.01
-
-
-@contextlib.contextmanager
-def atomic_output(path):
-    """Yield a temporary path beside ``path``; rename it into place only on success."""
-    path = Path(path)
-    parent = path.parent if str(path.parent) else Path(".")
-    if not parent.is_dir():
-        raise RunFolderError(f"{path}: folder {parent} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix, dir=parent)
-    os.close(fd)
-    try:
-        yield Path(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+#: Cells a policy visits at least this often (expected visits per run, under its
+#: execution noise) are where the routes figure shows the policies' differences.
+VISITED_FLOOR = 0.01
 
 
 @contextlib.contextmanager
@@ -80,6 +66,7 @@ def atomic_folder(path, *, force: bool = False):
     if path.exists() and not path.is_dir():
         raise RunFolderError(f"--out {path}: exists and is not a folder")
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.partial-", dir=parent))
+    os.chmod(tmp, 0o777 & ~_umask())
 
     def _on_term(signum, frame):
         raise KeyboardInterrupt
@@ -102,6 +89,13 @@ def atomic_folder(path, *, force: bool = False):
             signal.signal(signal.SIGTERM, previous)
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _umask() -> int:
+    """The process umask (read by setting and restoring it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _main_thread() -> bool:
@@ -232,11 +226,12 @@ class PlanResult:
     risk_rows: list
     root_seed: object
     timings: dict
+    visited: np.ndarray
 
 
 def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None) -> PlanResult:
     """Run every stage of ``plan`` in memory (no files written)."""
-    from planner.exact import convergence_report, on_policy_q, optimal_q
+    from planner.exact import convergence_report, occupancy, on_policy_q, optimal_q, policy_value
     from planner.grid import cost_to_goal, rasterise
     from planner.learn import greedy_actions, train
     from planner.model import build_model
@@ -282,13 +277,17 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         for name in POLICIES
     }
     paths = {name: nominal_path(model, greedy[name]) for name in POLICIES}
+    visited = np.zeros(model.n_states, dtype=bool)
+    for name in POLICIES:
+        _, chain, finite = policy_value(model, greedy[name], eps)
+        visited |= occupancy(model, chain, finite) >= VISITED_FLOOR
     routes = _routes(site, grid, model, paths)
     t = time.perf_counter()
     risk_rows = _risk(site, grid, settings, model, greedy, exact, seed_risk, progress)
     timings["risk_s"] = time.perf_counter() - t
     return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
                       convergence=convergence, paths=paths, routes=routes, risk_rows=risk_rows, root_seed=root,
-                      timings=timings)
+                      timings=timings, visited=visited)
 
 
 def _routes(site, grid, model, paths) -> dict:
@@ -339,9 +338,10 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
         "q_exact_on_policy": result.exact["cautious"].q, "q_exact_optimal": result.exact["shortest"].q,
     }
     _save_npz(folder / "policies.npz", arrays)
+    from planner.learn import learning_curves
+
     _save_npz(folder / "training.npz", {
-        f"{name}_{key}": getattr(result.learned[name], key)
-        for name in POLICIES for key in ("returns", "moves", "ends")
+        f"{name}_{key}": value for name in POLICIES for key, value in learning_curves(result.learned[name]).items()
     })
     progress("writing waypoint files")
     for name in POLICIES:
@@ -352,7 +352,8 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     progress("drawing figures")
     plots.plot_learning(result.learned, folder / "learning.png",
                         title=f"{result.site.name} - learning curves")
-    plots.plot_routes(result.site, result.grid, result.routes, result.greedy, folder / "routes.png")
+    plots.plot_routes(result.site, result.grid, result.routes, result.greedy, folder / "routes.png",
+                      where=result.visited)
     noise = settings.learn.epsilon
     maps = {}
     from planner.model import epsilon_greedy

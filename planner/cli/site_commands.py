@@ -115,9 +115,9 @@ def grid(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_
     Shows hazards (with buffers), rough ground, drift arrows, start, goal, a legend, a
     metre scale bar and a north arrow. Nothing is written when the site is invalid.
     """
+    from planner.export import atomic_output
     from planner.grid import rasterise
     from planner.plots import plot_grid
-    from planner.runfolder import atomic_output
 
     if not output.lower().endswith(".png"):
         raise click.BadParameter(f"{output!r} must end in .png", param_hint="-o/--output")
