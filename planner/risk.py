@@ -160,6 +160,34 @@ class RiskRow:
             out["timeout"] = self.p_timeout
         return out
 
+    @classmethod
+    def from_dict(cls, data: dict) -> RiskRow:
+        """Inverse of :meth:`as_dict` (``null`` back to NaN), for rows read from ``risk.json``."""
+
+        def num(x):
+            return math.nan if x is None else float(x)
+
+        def opt(x):
+            return None if x is None else float(x)
+
+        try:
+            return cls(
+                policy=str(data["policy"]), noise=num(data["noise"]), drift_scale=num(data["drift_scale"]),
+                p_goal=num(data["p_goal"]), p_incident=num(data["p_incident"]),
+                p_by_event={k: num(v) for k, v in data["p_by_event"].items()}, p_never=num(data["p_never"]),
+                expected_moves=num(data["expected_moves"]), expected_m=num(data["expected_m"]),
+                residual=num(data["residual"]), n_trapped_states=int(data["n_trapped_states"]),
+                budget=data["budget"], p_goal_within_budget=opt(data["p_goal_within_budget"]),
+                p_incident_within_budget=opt(data["p_incident_within_budget"]), p_timeout=opt(data["p_timeout"]),
+                p_entry={k: num(v) for k, v in data["p_entry"].items()}, n_rollouts=int(data["n_rollouts"]),
+                n_truncated=int(data["n_truncated"]),
+                mc={k: McEstimate(int(m["count"]), int(m["n"]), num(m["estimate"]), num(m["lo"]), num(m["hi"]))
+                    for k, m in data["mc"].items()},
+                mc_disagrees=tuple(data["mc_disagrees"]), mc_flag_z=num(data["mc_flag_z"]),
+            )
+        except (KeyError, TypeError, ValueError, AttributeError) as err:
+            raise SettingsError(f"a risk table row is malformed ({err!r})") from err
+
     def as_dict(self) -> dict:
         """Plain data (floats, ints, strings, None for NaN), for JSON."""
         return {
@@ -534,6 +562,19 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
 # ----------------------------------------------------------------------------- Monte Carlo
 
 
+def table_flag_z(n_checks: int, level: float = 0.95) -> float:
+    """Normal quantile that keeps a whole table's checks at ``level`` together (Bonferroni).
+
+    With ``n_checks`` independent 95% intervals, about one in twenty misses by chance;
+    flagging at ``z = Phi^-1(1 - (1 - level) / (2 n_checks))`` keeps the chance of any
+    false flag in the table below ``1 - level``.
+    """
+    from scipy.stats import norm
+
+    n = max(1, int(n_checks))
+    return float(norm.ppf(1.0 - (1.0 - level) / (2.0 * n)))
+
+
 def wilson_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
     """Wilson score interval for a binomial proportion.
 
@@ -866,7 +907,8 @@ def _footnote(rows: list[RiskRow], width: int | None) -> list[str]:
                 "by chance: one mark is weak evidence, many marks are strong.")
     else:
         z = ", ".join(f"{v:.2f}" for v in levels)
-        text = f"! exact figure outside its Monte Carlo Wilson interval at z = {z} (wider than the 95% shown)."
+        text = (f"! exact figure outside its Monte Carlo Wilson interval at z = {z}: the level that keeps the "
+                "whole table's checks at 95% together (the intervals shown are 95% each).")
     return [text] if width is None else textwrap.wrap(text, width, subsequent_indent="  ")
 
 

@@ -309,7 +309,16 @@ def _risk(site, grid, settings, model, greedy, exact, seed, progress) -> list:
              f"{len(settings.drift_scales)} drift scales, {settings.rollouts:,} rollouts per row")
     return sensitivity(grid, settings.dynamics, policies, noises=settings.noises,
                        drift_scales=settings.drift_scales, budget=settings.budget, rollouts=settings.rollouts,
-                       seed=seed)
+                       seed=seed, flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales,
+                                                 settings.budget))
+
+
+def table_z(grid, n_policies: int, noises, drift_scales, budget) -> float:
+    """Flag level of a risk table: its Monte Carlo checks kept at 95% together."""
+    from planner.risk import table_flag_z
+
+    per_row = 3 + 1 + len(grid.hazards) + (3 if budget is not None else 0)
+    return table_flag_z(n_policies * len(noises) * len(drift_scales) * per_row)
 
 
 # ----------------------------------------------------------------------------- writing
@@ -321,12 +330,14 @@ def write_run(result: PlanResult, settings: PlanSettings, site_path, out, *, for
     progress = progress or Progress()
     out = Path(out)
     with atomic_folder(out, force=force) as tmp:
-        _write_contents(result, settings, site_path, tmp, progress)
+        _write_contents(result, settings, site_path, tmp, progress, out.name)
     return out
 
 
-def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folder: Path, progress) -> None:
+def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folder: Path, progress,
+                    run_name: str) -> None:
     from planner import plots
+    from planner.brief import BriefInputs, write_brief
     from planner.export import write_csv, write_geojson
     from planner.risk import format_table, risk_map
 
@@ -365,16 +376,21 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     plots.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
                            title=f"{result.site.name} - incident probability under worse execution and wind")
     manifest = build_manifest(result, settings, site_path, folder)
-    try:
-        from planner.brief import write_brief
-    except ImportError:
-        write_brief = None
-    if write_brief is not None:
-        progress("writing the briefing")
-        write_brief(folder, result=result, settings=settings, manifest=manifest)
+    progress("writing the briefing")
+    write_brief(BriefInputs(folder=folder, site=result.site, grid=result.grid, routes=result.routes,
+                            risk_rows=result.risk_rows, settings=settings, manifest=manifest, run_name=run_name),
+                folder / "brief.html", folder / "brief.pdf")
+    write_manifest(folder, manifest)
+
+
+def write_manifest(folder: Path, manifest: dict) -> None:
+    """Record the hash of every file in the folder, then write ``manifest.json`` atomically."""
+    from planner.export import atomic_output
+
     manifest["files"] = {p.name: sha256_file(p) for p in sorted(folder.iterdir())
-                         if p.is_file() and p.name != "manifest.json"}
-    (folder / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
+                         if p.is_file() and p.name != "manifest.json" and not p.name.startswith(".")}
+    with atomic_output(folder / "manifest.json") as tmp:
+        tmp.write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
 
 
 def _save_npz(path: Path, arrays: dict) -> None:
@@ -537,3 +553,54 @@ def rebuild(run: Run, *, drift_scale: float | None = None):
         if arr.size and (arr.min() < 0 or arr.max() >= model.n_actions):
             raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{model.n_actions - 1}")
     return site, grid, model
+
+
+def run_routes(run: Run, site, grid, model) -> dict:
+    """The nominal routes of a run's two policies, rebuilt on its model."""
+    from planner.route import build_route, nominal_path
+
+    return {name: build_route(name, nominal_path(model, run.arrays[f"greedy_{name}"]), grid, site, model)
+            for name in POLICIES}
+
+
+#: Policies ``yardplan risk`` can tabulate, and the arrays they come from.
+RISK_POLICIES = {
+    "cautious": "greedy_cautious", "shortest": "greedy_shortest",
+    "exact on-policy": "q_exact_on_policy", "exact optimal": "q_exact_optimal",
+}
+
+
+def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, seed=None,
+             policies=("cautious", "shortest")) -> list:
+    """The risk table of a run's policies at the given settings (model rebuilt per drift scale)."""
+    from planner.risk import sensitivity
+
+    chosen = {}
+    for name in policies:
+        if name not in RISK_POLICIES:
+            raise SettingsError(f"--policy {name!r} is not one of {', '.join(RISK_POLICIES)}")
+        chosen[name] = run.arrays[RISK_POLICIES[name]]
+    root = np.random.SeedSequence(seed) if seed is not None else np.random.SeedSequence(
+        int(run.manifest["seeds"]["entropy"]), spawn_key=(2,))
+    return sensitivity(grid, run.settings.dynamics, chosen, noises=noises, drift_scales=drift_scales, budget=budget,
+                       rollouts=rollouts, seed=root,
+                       flag_z=table_z(grid, len(chosen), noises, drift_scales, budget))
+
+
+def rewrite_brief(run: Run) -> tuple[Path, Path]:
+    """Render ``brief.html``/``brief.pdf`` again from a run folder, and update its manifest."""
+    from planner.brief import BriefInputs, write_brief
+    from planner.risk import RiskRow
+
+    site, grid, model = rebuild(run)
+    routes = run_routes(run, site, grid, model)
+    try:
+        records = json.loads((run.folder / "risk.json").read_text())
+        rows = [RiskRow.from_dict(r) for r in records]
+    except (OSError, ValueError) as err:
+        raise RunFolderError(f"{run.folder}: cannot read risk.json ({err})") from err
+    inputs = BriefInputs(folder=run.folder, site=site, grid=grid, routes=routes, risk_rows=rows,
+                         settings=run.settings, manifest=run.manifest, run_name=run.folder.name)
+    paths = write_brief(inputs, run.folder / "brief.html", run.folder / "brief.pdf")
+    write_manifest(run.folder, dict(run.manifest))
+    return paths
