@@ -323,7 +323,7 @@ def atomic_output(path):
     folder = path.parent if str(path.parent) else Path(".")
     if not folder.is_dir():
         raise RunFolderError(f"{path}: folder {folder} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix or ".tmp", dir=folder)
     os.close(fd)
     mask = os.umask(0o022)
     os.umask(mask)
