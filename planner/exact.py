@@ -186,18 +186,24 @@ def _can_end(model: Model) -> np.ndarray:
     return out[:n_s] & model.active
 
 
+@numba.njit(cache=True, inline="always")
+def _action_value(offsets, next_state, prob, reward, event, gamma, v, k):
+    """One Bellman backup of the (state, action) block ``k``."""
+    qa = 0.0
+    for j in range(offsets[k], offsets[k + 1]):
+        if event[j] == 0:
+            qa += prob[j] * (reward[j] + gamma * v[next_state[j]])
+        else:
+            qa += prob[j] * reward[j]
+    return qa
+
+
 @numba.njit(cache=True)
 def _state_value(offsets, next_state, prob, reward, event, n_actions, gamma, epsilon, v, s):
     best = -np.inf
     total = 0.0
     for a in range(n_actions):
-        k = s * n_actions + a
-        qa = 0.0
-        for j in range(offsets[k], offsets[k + 1]):
-            if event[j] == 0:
-                qa += prob[j] * (reward[j] + gamma * v[next_state[j]])
-            else:
-                qa += prob[j] * reward[j]
+        qa = _action_value(offsets, next_state, prob, reward, event, gamma, v, s * n_actions + a)
         if qa > best:
             best = qa
         total += qa
@@ -252,13 +258,7 @@ def _q_from_v(offsets, next_state, prob, reward, event, n_actions, gamma, v, act
             continue
         for a in range(n_actions):
             k = s * n_actions + a
-            qa = 0.0
-            for j in range(offsets[k], offsets[k + 1]):
-                if event[j] == 0:
-                    qa += prob[j] * (reward[j] + gamma * v[next_state[j]])
-                else:
-                    qa += prob[j] * reward[j]
-            q[k] = qa
+            q[k] = _action_value(offsets, next_state, prob, reward, event, gamma, v, k)
     return q
 
 

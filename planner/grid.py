@@ -387,24 +387,22 @@ def _candidates(tree, geometry) -> np.ndarray:
     return tree.query(geometry, predicate="intersects")
 
 
-def _covered_fraction_at_least(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
-    out = np.zeros(len(boxes), dtype=bool)
+def _overlap_areas(tree, boxes, geometry) -> np.ndarray:
+    """Area of ``geometry`` inside every cell box (0 for boxes it does not reach)."""
+    area = np.zeros(len(boxes))
     idx = _candidates(tree, geometry)
-    if idx.size == 0:
-        return out
-    area = shapely.area(shapely.intersection(boxes[idx], geometry))
-    out[idx] = area >= threshold * cell_area - _sliver_area(cell_area)
-    return out
+    if idx.size:
+        area[idx] = shapely.area(shapely.intersection(boxes[idx], geometry))
+    return area
+
+
+def _covered_fraction_at_least(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
+    area = _overlap_areas(tree, boxes, geometry)
+    return (area > 0) & (area >= threshold * cell_area - _sliver_area(cell_area))
 
 
 def _overlap_fraction_above(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
-    out = np.zeros(len(boxes), dtype=bool)
-    idx = _candidates(tree, geometry)
-    if idx.size == 0:
-        return out
-    area = shapely.area(shapely.intersection(boxes[idx], geometry))
-    out[idx] = area > max(threshold * cell_area, _sliver_area(cell_area))
-    return out
+    return _overlap_areas(tree, boxes, geometry) > max(threshold * cell_area, _sliver_area(cell_area))
 
 
 def _sliver_area(cell_area: float) -> float:
@@ -488,27 +486,20 @@ def moves_for(n_actions: int) -> np.ndarray:
     raise SettingsError(f"--moves must be 4 or 8, got {n_actions}")
 
 
-def cost_to_goal(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_cost: bool = False) -> np.ndarray:
-    """Deterministic cheapest cost (metres-equivalent) from each cell to the goal.
+def _deterministic_moves(grid: Grid, n_actions: int, hazard_penalty_m, unit_cost: bool):
+    """For each action: where it is allowed, its target cell and its cost, all ``(n_rows, n_cols)``.
 
-    Moves go between passable cells; a diagonal move also needs both cells it cuts
-    past to be passable (the swept path counts corner-cutting). Each move costs its
-    length times the cost factor of the cell it starts from (``unit_cost``: one cell
-    per move), plus ``hazard_penalty_m[h]`` on entering a cell of a non-ending
-    hazard ``h``. Returns ``(n_cells,)`` with ``inf`` where the goal is unreachable.
+    Moves go between passable cells (never out of a goal cell); a diagonal move also
+    needs both cells it cuts past to be passable, as the swept path counts
+    corner-cutting.
     """
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import dijkstra
-
     n_rows, n_cols = grid.shape
     ok = grid.passable() | grid.goal
-    lab = grid.label
     extra = np.zeros(grid.shape)
     if hazard_penalty_m is not None:
         for h, pen in enumerate(hazard_penalty_m):
             if not grid.hazards[h].ends_run:
-                extra[lab == h] = pen
-    src_all, dst_all, w_all = [], [], []
+                extra[grid.label == h] = pen
     rows, cols = np.indices(grid.shape)
     for dr, dc in moves_for(n_actions):
         r1, c1 = rows + dr, cols + dc
@@ -518,13 +509,44 @@ def cost_to_goal(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_
         if dr and dc:
             valid &= ok[np.clip(rows + dr, 0, n_rows - 1), cols] & ok[rows, np.clip(cols + dc, 0, n_cols - 1)]
         length = 1.0 if unit_cost else math.hypot(dr, dc)
-        w = length * grid.cell_m * grid.cost_factor + extra[r1c, c1c]
-        src_all.append(np.ravel_multi_index((rows[valid], cols[valid]), grid.shape))
-        dst_all.append(np.ravel_multi_index((r1c[valid], c1c[valid]), grid.shape))
-        w_all.append(w[valid])
+        yield valid, np.ravel_multi_index((r1c, c1c), grid.shape), length * grid.cell_m * grid.cost_factor + \
+            extra[r1c, c1c]
+
+
+def cost_to_goal(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_cost: bool = False) -> np.ndarray:
+    """Deterministic cheapest cost (metres-equivalent) from each cell to the goal.
+
+    Moves go between passable cells; a diagonal move also needs both cells it cuts
+    past to be passable (the swept path counts corner-cutting). Each move costs its
+    length times the cost factor of the cell it starts from (``unit_cost``: one cell
+    per move), plus ``hazard_penalty_m[h]`` on entering a cell of a non-ending
+    hazard ``h``. Returns ``(n_cells,)`` with ``inf`` where the goal is unreachable.
+    """
+    from scipy.sparse import csr_matrix
+    from scipy.sparse.csgraph import dijkstra
+
+    src_all, dst_all, w_all = [], [], []
+    here = np.arange(grid.n_cells).reshape(grid.shape)
+    for valid, target, cost in _deterministic_moves(grid, n_actions, hazard_penalty_m, unit_cost):
+        src_all.append(here[valid])
+        dst_all.append(target[valid])
+        w_all.append(cost[valid])
     n = grid.n_cells
     src, dst, w = np.concatenate(src_all), np.concatenate(dst_all), np.concatenate(w_all)
-    # Reverse the edges so one multi-source run from the goal gives cost-to-goal.
-    graph = coo_matrix((np.maximum(w, 1e-12), (dst, src)), shape=(n, n)).tocsr()
+    # Reverse the edges so one multi-source run from the goal gives cost-to-goal. Each
+    # (cell, action) gives one edge and actions reach distinct cells: no duplicates.
+    graph = csr_matrix((np.maximum(w, 1e-12), (dst, src)), shape=(n, n))
     goals = np.flatnonzero(grid.goal.ravel())
     return dijkstra(graph, directed=True, indices=goals, min_only=True)
+
+
+def descend(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_cost: bool = False) -> np.ndarray:
+    """The deterministic cheapest-path policy: in each cell, the move that goes down
+    :func:`cost_to_goal` fastest (ties to the lowest action index; 0 where no move helps).
+
+    Returns int64 ``(n_cells,)`` actions, usable wherever a greedy policy is.
+    """
+    to_go = cost_to_goal(grid, n_actions, hazard_penalty_m=hazard_penalty_m, unit_cost=unit_cost)
+    values = [np.where(valid, cost + to_go[target], np.inf)
+              for valid, target, cost in _deterministic_moves(grid, n_actions, hazard_penalty_m, unit_cost)]
+    return np.argmin(np.stack(values, axis=-1), axis=-1).ravel().astype(np.int64)

@@ -31,6 +31,7 @@ import numba
 import numpy as np
 
 from planner.errors import SettingsError, SolverError
+from planner.learn import greedy_actions
 from planner.model import (
     EVENT_BOUNDARY,
     EVENT_GOAL,
@@ -322,18 +323,6 @@ def incident_probability(result: Absorption) -> np.ndarray:
     """P(incident) from every state of a solved chain (NaN on inactive states)."""
     # Summing events may overshoot 1 by round-off; NaN rows stay NaN.
     return np.clip(result.probs[:, EVENT_BOUNDARY:].sum(axis=1), 0.0, 1.0)
-
-
-def greedy_actions(q: np.ndarray) -> np.ndarray:
-    """Greedy action of every state of a Q table ``(n_states, n_actions)``.
-
-    Ties go to the lowest action index (``numpy.argmax``), so the result is
-    deterministic.
-    """
-    q = np.asarray(q, dtype=float)
-    if q.ndim != 2:
-        raise SettingsError(f"a Q table must be 2-D (n_states, n_actions), got shape {q.shape}")
-    return np.argmax(q, axis=1).astype(np.int64)
 
 
 def _policy_actions(model: Model, policy) -> np.ndarray:

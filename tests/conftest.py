@@ -61,3 +61,24 @@ def site_dict():
 def rng():
     """A seeded generator: tests never touch the global RNG."""
     return np.random.default_rng(20261202)
+
+
+def text_map_grid(lines, hazard_name="hole"):
+    """A map in the text convention (first line north; S start, G goal, H hazard, F free)
+    as a grid (row 0 south), e.g. gymnasium's FrozenLake maps."""
+    from planner.grid import FREE, HazardInfo, grid_from_arrays
+
+    n = len(lines)
+    label = np.full((n, len(lines[0])), FREE)
+    goal = np.zeros(label.shape, dtype=bool)
+    start = None
+    for i, line in enumerate(lines):
+        for c, ch in enumerate(line):
+            r = n - 1 - i
+            if ch == "H":
+                label[r, c] = 0
+            elif ch == "G":
+                goal[r, c] = True
+            elif ch == "S":
+                start = (r, c)
+    return grid_from_arrays(label, goal=goal, start=start, hazards=(HazardInfo(hazard_name),))

@@ -5,7 +5,6 @@ from __future__ import annotations
 import csv
 import io
 import json
-import math
 import re
 import xml.etree.ElementTree as ET
 from datetime import UTC, datetime
@@ -27,7 +26,7 @@ from planner.export import (
     write_geojson,
     write_gpx,
 )
-from planner.grid import GridSpec, cost_to_goal, moves_for, rasterise
+from planner.grid import GridSpec, descend, rasterise
 from planner.model import EVENT_HAZARD, Dynamics, build_model
 from planner.route import NominalPath, build_route, nominal_path
 from planner.site import site_from_geojson
@@ -46,22 +45,6 @@ GPX_ORDER = {
 }
 
 
-def greedy_from_cost(grid, n_actions=8, *, unit_cost=False):
-    """Deterministic greedy policy on ``planner.grid.cost_to_goal`` (its move rules)."""
-    cost = cost_to_goal(grid, n_actions, unit_cost=unit_cost).reshape(grid.shape)
-    n_rows, n_cols = grid.shape
-    ok = grid.passable() | grid.goal
-    rows, cols = np.indices(grid.shape)
-    values = []
-    for dr, dc in moves_for(n_actions):
-        r1, c1 = rows + dr, cols + dc
-        r1c, c1c = np.clip(r1, 0, n_rows - 1), np.clip(c1, 0, n_cols - 1)
-        valid = (r1 >= 0) & (r1 < n_rows) & (c1 >= 0) & (c1 < n_cols) & ok[r1c, c1c]
-        if dr and dc:
-            valid &= ok[np.clip(rows + dr, 0, n_rows - 1), cols] & ok[rows, np.clip(cols + dc, 0, n_cols - 1)]
-        step = (1.0 if unit_cost else math.hypot(dr, dc) * grid.cell_m) * grid.cost_factor
-        values.append(np.where(valid, step + cost[r1c, c1c], np.inf))
-    return np.argmin(np.stack(values, axis=-1), axis=-1).ravel()
 
 
 @pytest.fixture(scope="module")
@@ -70,8 +53,8 @@ def planned():
     site = site_from_geojson(small_site_dict())
     grid = rasterise(site, GridSpec(2.0))
     model = build_model(grid, Dynamics(drift_scale=0.0))
-    shortest = build_route("shortest", nominal_path(model, greedy_from_cost(grid)), grid, site, model)
-    fewest = build_route("fewest-moves", nominal_path(model, greedy_from_cost(grid, unit_cost=True)), grid, site,
+    shortest = build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)
+    fewest = build_route("fewest-moves", nominal_path(model, descend(grid, unit_cost=True)), grid, site,
                          model)
     return site, grid, model, [shortest, fewest]
 
@@ -167,7 +150,7 @@ def test_geojson_without_hazards_writes_null_clearance(tmp_path):
     site = site_from_geojson(data)
     grid = rasterise(site, GridSpec(5.0))
     model = build_model(grid, Dynamics(drift_scale=0.0))
-    route = build_route("shortest", nominal_path(model, greedy_from_cost(grid)), grid, site, model)
+    route = build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)
     text = write_geojson(route, tmp_path / "r.geojson", site=site).read_text()
     obj = json.loads(text, parse_constant=_refuse)  # no Infinity or NaN in the file
     for feature in obj["features"]:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from conftest import text_map_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
@@ -24,22 +25,9 @@ from planner.model import (
 FROZEN_LAKE_4X4 = ["SFFF", "FHFH", "FFFH", "HFFG"]
 
 
-def frozen_lake_grid(desc=FROZEN_LAKE_4X4):
-    """A map in the text convention (first line north) as a grid (row 0 south)."""
-    n = len(desc)
-    label = np.full((n, len(desc[0])), FREE)
-    goal = np.zeros(label.shape, dtype=bool)
-    start = None
-    for i, line in enumerate(desc):
-        r = n - 1 - i
-        for c, ch in enumerate(line):
-            if ch == "H":
-                label[r, c] = 0
-            elif ch == "G":
-                goal[r, c] = True
-            elif ch == "S":
-                start = (r, c)
-    return grid_from_arrays(label, goal=goal, start=start, hazards=(HazardInfo("hole", True, 10.0),))
+def frozen_lake_grid():
+    """gymnasium's 4x4 FrozenLake map as a grid (holes end the run)."""
+    return text_map_grid(FROZEN_LAKE_4X4)
 
 
 def test_frozen_lake_matches_gymnasium_table():

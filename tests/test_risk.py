@@ -9,6 +9,7 @@ import math
 
 import numpy as np
 import pytest
+from conftest import text_map_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
@@ -238,20 +239,8 @@ FROZEN_LAKE = ["SFFF", "FHFH", "FFFH", "HFFG"]
 
 
 def frozen_lake_grid():
-    """Gymnasium's 4x4 map (first text line north) as a grid (row 0 south)."""
-    label = np.full((4, 4), FREE)
-    goal = np.zeros((4, 4), dtype=bool)
-    start = None
-    for i, line in enumerate(FROZEN_LAKE):
-        for c, ch in enumerate(line):
-            r = 3 - i
-            if ch == "H":
-                label[r, c] = 0
-            elif ch == "G":
-                goal[r, c] = True
-            elif ch == "S":
-                start = (r, c)
-    return grid_from_arrays(label, goal=goal, start=start, hazards=(HazardInfo("hole"),))
+    """gymnasium's 4x4 FrozenLake map as a grid (holes end the run)."""
+    return text_map_grid(FROZEN_LAKE)
 
 
 def gymnasium_max_goal_probability():

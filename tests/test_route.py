@@ -15,7 +15,7 @@ from pyproj import Transformer
 from shapely.geometry import LineString, Polygon, box
 
 from planner.errors import SettingsError
-from planner.grid import DRAWING_TOLERANCE_M, GridSpec, cost_to_goal, moves_for, rasterise
+from planner.grid import DRAWING_TOLERANCE_M, GridSpec, descend, moves_for, rasterise
 from planner.model import EVENT_HAZARD, Dynamics, build_model
 from planner.route import (
     CLEARANCE_TOLERANCE_M,
@@ -26,30 +26,6 @@ from planner.route import (
     simplify_path,
 )
 from planner.site import site_from_geojson
-
-
-def greedy_from_cost(grid, n_actions=8):
-    """Deterministic greedy policy: the move minimising step cost plus cost-to-go.
-
-    Uses the same move rules as ``planner.grid.cost_to_goal`` (in the grid, passable
-    landing cell, both side cells passable for a diagonal), so following it on a model
-    without drift or slip is a cheapest deterministic route.
-    """
-    cost = cost_to_goal(grid, n_actions).reshape(grid.shape)
-    n_rows, n_cols = grid.shape
-    ok = grid.passable() | grid.goal
-    rows, cols = np.indices(grid.shape)
-    values = []
-    for dr, dc in moves_for(n_actions):
-        r1, c1 = rows + dr, cols + dc
-        r1c, c1c = np.clip(r1, 0, n_rows - 1), np.clip(c1, 0, n_cols - 1)
-        valid = (r1 >= 0) & (r1 < n_rows) & (c1 >= 0) & (c1 < n_cols) & ok[r1c, c1c]
-        if dr and dc:
-            valid &= ok[np.clip(rows + dr, 0, n_rows - 1), cols] & ok[rows, np.clip(cols + dc, 0, n_cols - 1)]
-        step = math.hypot(dr, dc) * grid.cell_m * grid.cost_factor
-        values.append(np.where(valid, step + cost[r1c, c1c], np.inf))
-    return np.argmin(np.stack(values, axis=-1), axis=-1).ravel()
-
 
 #: lon/lat to the conftest's own metres (the tmerc its test sites were drawn in).
 TEST_METRES = Transformer.from_crs(
@@ -62,7 +38,7 @@ def planned():
     site = site_from_geojson(small_site_dict())
     grid = rasterise(site, GridSpec(2.0))
     model = build_model(grid, Dynamics(drift_scale=0.0))
-    path = nominal_path(model, greedy_from_cost(grid, model.n_actions))
+    path = nominal_path(model, descend(grid, model.n_actions))
     return site, grid, model, path, build_route("shortest", path, grid, site, model)
 
 
@@ -275,7 +251,7 @@ def test_route_without_hazards_has_infinite_clearance():
     site = site_from_geojson(data)
     grid = rasterise(site, GridSpec(5.0))
     model = build_model(grid, Dynamics(drift_scale=0.0))
-    route = build_route("shortest", nominal_path(model, greedy_from_cost(grid)), grid, site, model)
+    route = build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)
     assert route.reached_goal
     assert math.isinf(route.min_clearance_m) and route.min_clearance_hazard is None
     assert all(math.isinf(w.clearance_m) and w.nearest_hazard is None for w in route.waypoints)
