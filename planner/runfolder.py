@@ -49,6 +49,19 @@ GAP_SHARE = 0.01
 VISITED_FLOOR = 0.01
 
 
+def check_out(path, *, force: bool = False) -> tuple[Path, Path]:
+    """Refuse an ``--out`` that cannot be written: called before any work and again at the end."""
+    path = Path(path)
+    parent = path.parent if str(path.parent) else Path(".")
+    if not parent.is_dir():
+        raise RunFolderError(f"--out {path}: parent folder {parent} does not exist")
+    if path.exists() and not path.is_dir():
+        raise RunFolderError(f"--out {path}: exists and is not a folder")
+    if path.exists() and not force:
+        raise RunFolderError(f"--out {path}: already exists; choose another folder or pass --force to replace it")
+    return path, parent
+
+
 @contextlib.contextmanager
 def atomic_folder(path, *, force: bool = False):
     """Yield a temporary sibling folder; it replaces ``path`` only when the block ends well.
@@ -57,21 +70,9 @@ def atomic_folder(path, *, force: bool = False):
     only after the new folder is complete. SIGTERM is turned into the same clean stop
     as Ctrl-C for the duration.
     """
-    path = Path(path)
-    parent = path.parent if str(path.parent) else Path(".")
-    if not parent.is_dir():
-        raise RunFolderError(f"--out {path}: parent folder {parent} does not exist")
-    if path.exists() and not force:
-        raise RunFolderError(f"--out {path}: already exists; choose another folder or pass --force to replace it")
-    if path.exists() and not path.is_dir():
-        raise RunFolderError(f"--out {path}: exists and is not a folder")
+    path, parent = check_out(path, force=force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.partial-", dir=parent))
     os.chmod(tmp, 0o777 & ~_umask())
-
-    def _on_term(signum, frame):
-        raise KeyboardInterrupt
-
-    previous = signal.signal(signal.SIGTERM, _on_term) if _main_thread() else None
     try:
         yield tmp
         if path.exists():
@@ -85,10 +86,23 @@ def atomic_folder(path, *, force: bool = False):
         raise Interrupted(f"stopped while writing {path}; nothing was written"
                           + (" and the existing folder is untouched" if path.exists() else "")) from err
     finally:
-        if previous is not None:
-            signal.signal(signal.SIGTERM, previous)
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def stop_on_sigterm():
+    """Within the block, SIGTERM stops the work as Ctrl-C does (so nothing is half-written)."""
+
+    def _on_term(signum, frame):
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, _on_term) if _main_thread() else None
+    try:
+        yield
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
 
 
 def _umask() -> int:
@@ -209,6 +223,20 @@ class Progress:
         if self.say is not None:
             self.say(f"[{time.perf_counter() - self.started:6.1f} s] {message}")
 
+    def fraction(self, what: str):
+        """A ``callable(done, total)`` that reports every further tenth of the work."""
+        if self.say is None:
+            return None
+        shown = [0]
+
+        def report(done, total):
+            tenth = int(10 * done / total) if total else 10
+            if tenth > shown[0]:
+                shown[0] = tenth
+                self(f"  {what}: {10 * tenth}%")
+
+        return report
+
 
 @dataclass(frozen=True)
 class PlanResult:
@@ -257,9 +285,11 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         settings.learn, episodes=settings.episodes_shortest)
     t = time.perf_counter()
     progress(f"training SARSA (cautious): {learn_cautious.n_seeds} seeds x {learn_cautious.episodes:,} episodes")
-    cautious = train(model, "sarsa", learn_cautious, seed=seed_cautious, cost_to_go=to_go)
+    cautious = train(model, "sarsa", learn_cautious, seed=seed_cautious, cost_to_go=to_go,
+                     progress=progress.fraction("SARSA"))
     progress(f"training Q-learning (shortest): {learn_shortest.n_seeds} seeds x {learn_shortest.episodes:,} episodes")
-    shortest = train(model, "qlearning", learn_shortest, seed=seed_shortest, cost_to_go=to_go)
+    shortest = train(model, "qlearning", learn_shortest, seed=seed_shortest, cost_to_go=to_go,
+                     progress=progress.fraction("Q-learning"))
     timings["learn_s"] = time.perf_counter() - t
 
     t = time.perf_counter()

@@ -94,8 +94,9 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     """
     from planner.grid import rasterise
     from planner.learn import LearnSettings
-    from planner.runfolder import PlanSettings, Progress, compute_plan, write_run
+    from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, stop_on_sigterm, write_run
 
+    check_out(out, force=force)
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
     dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m)
@@ -112,8 +113,9 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m)
     show = not quiet and sys.stderr.isatty()
     progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
-    result = compute_plan(site, settings, progress)
-    write_run(result, settings, site, out, force=force, progress=progress)
+    with stop_on_sigterm():
+        result = compute_plan(site, settings, progress)
+        write_run(result, settings, site, out, force=force, progress=progress)
     click.echo(format_plan_summary(result, settings, out))
 
 
