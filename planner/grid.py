@@ -157,6 +157,16 @@ def grid_shape(site, cell_m: float) -> tuple[int, int]:
     return (max(1, math.ceil(height / cell_m - slack)), max(1, math.ceil(width / cell_m - slack)))
 
 
+def default_cell_m(site) -> float:
+    """A cell size giving about 100 cells along the site's longer side, rounded to 0.5 m.
+
+    That keeps a 200-600 m yard at a few thousand cells: fine enough to resolve
+    lanes between hazards, small enough to train to convergence in seconds.
+    """
+    longest = max(site.extent_m)
+    return max(0.5, round(longest / 100.0 * 2.0) / 2.0)
+
+
 def check_budget(n_cells: int, max_cells: int, cell_m: float) -> None:
     """Refuse a grid over the cell budget, with the numbers to choose a better cell."""
     if n_cells > max_cells:

@@ -170,7 +170,7 @@ def _finish(fig, ax, path, handles, grid):
     fig.text(0.01, 0.005, style.FIGURE_NOTICE, fontsize=style.FONT_SIZE - 2, color="#666666")
     fig.tight_layout()
     path = Path(path)
-    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None}, bbox_inches="tight", pad_inches=0.12)
     plt.close(fig)
     return path
 
@@ -228,7 +228,7 @@ def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Pat
              color="#666666")
     fig.tight_layout()
     path = Path(path)
-    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None}, bbox_inches="tight", pad_inches=0.12)
     plt.close(fig)
     return path
 
@@ -311,7 +311,7 @@ def plot_risk_maps(site, grid: Grid, maps: dict, routes: dict, path, *, noise: f
     fig.text(0.01, 0.005, style.FIGURE_NOTICE + "; blank cells: below 1e-6 or not usable",
              fontsize=style.FONT_SIZE - 2, color="#666666")
     path = Path(path)
-    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None}, bbox_inches="tight", pad_inches=0.12)
     plt.close(fig)
     return path
 
@@ -345,6 +345,6 @@ def plot_sensitivity(rows, path, *, title: str = "Sensitivity of the incident pr
              fontsize=style.FONT_SIZE - 2, color="#666666")
     fig.tight_layout()
     path = Path(path)
-    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None})
+    fig.savefig(path, dpi=style.FIGURE_DPI, metadata={"Software": None}, bbox_inches="tight", pad_inches=0.12)
     plt.close(fig)
     return path

@@ -59,6 +59,8 @@ SOLVE_TOLERANCE = 1e-8
 SUM_TOLERANCE = 1e-8
 #: Slack when comparing an exact figure with its Monte Carlo interval (round-off only).
 INTERVAL_SLACK = 1e-12
+#: Probabilities below this print as "<1.0e-12": the solves are not that accurate.
+PRINT_FLOOR = 1e-12
 #: Output formats of :func:`format_table`.
 FORMATS = ("text", "csv", "json", "markdown")
 
@@ -85,8 +87,13 @@ class McEstimate:
     hi: float
 
     def contains(self, p: float, z: float = Z95) -> bool:
-        """Whether ``p`` lies in the interval (with round-off slack); another ``z`` widens it."""
-        lo, hi = (self.lo, self.hi) if z == Z95 else wilson_interval(self.count, self.n, z)
+        """Whether ``p`` is consistent with the count at the two-sided level of ``z``.
+
+        Decided with the Clopper-Pearson (exact binomial) interval, which never covers
+        less than its level; the Wilson interval shown beside the figures can, at counts
+        of a few events, exclude a true value far more often than its level says.
+        """
+        lo, hi = exact_interval(self.count, self.n, z)
         return lo - INTERVAL_SLACK <= p <= hi + INTERVAL_SLACK
 
 
@@ -564,6 +571,20 @@ def table_flag_z(n_checks: int, level: float = 0.95) -> float:
     return float(norm.ppf(1.0 - (1.0 - level) / (2.0 * n)))
 
 
+def exact_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
+    """Clopper-Pearson interval for ``count`` events in ``n`` trials at the two-sided
+    level of the normal quantile ``z`` (Clopper, C. J. and Pearson, E. S. (1934),
+    Biometrika 26(4), 404-413)."""
+    from scipy.stats import beta, norm
+
+    if n <= 0:
+        return 0.0, 1.0
+    alpha = 2.0 * float(norm.sf(z))
+    lo = 0.0 if count <= 0 else float(beta.ppf(alpha / 2.0, count, n - count + 1))
+    hi = 1.0 if count >= n else float(beta.isf(alpha / 2.0, count + 1, n - count))
+    return lo, hi
+
+
 def wilson_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
     """Wilson score interval for a binomial proportion.
 
@@ -734,7 +755,8 @@ def clearance_m(path_xy, hazards) -> dict[str, float]:
 def format_prob(p) -> str:
     """A probability in a form that keeps small values (and small complements) readable.
 
-    ``0`` and ``1`` print as such; values below 0.01 in two-digit scientific form
+    ``0`` and ``1`` print as such; values below ``PRINT_FLOOR`` (1e-12, under the
+    solves' accuracy) as ``<1.0e-12``; values below 0.01 in two-digit scientific form
     (``1.2e-4``); values above 0.9999 as one minus a small number (``1-3.0e-6``);
     the rest with four decimals. ``None`` and NaN print as ``-``.
 
@@ -748,6 +770,9 @@ def format_prob(p) -> str:
     p = float(p)
     if p == 0.0:
         return "0"
+    if 0.0 < p < PRINT_FLOOR:
+        # Below the solver's accuracy: digits there would be false precision.
+        return f"<{_short_exp(PRINT_FLOOR)}"
     if p == 1.0:
         return "1"
     if not 0.0 < p < 1.0:

@@ -186,19 +186,16 @@ def settings_from_record(record: dict) -> PlanSettings:
 
 def versions() -> dict:
     """Versions of Python, yardplan and every library a result depends on."""
-    import click
-    import matplotlib
-    import numba
-    import pyproj
-    import scipy
-    import shapely
+    from importlib.metadata import version
 
-    return {
-        "yardplan": __version__, "python": platform.python_version(), "numpy": np.__version__,
-        "scipy": scipy.__version__, "shapely": shapely.__version__, "pyproj": pyproj.__version__,
-        "proj": pyproj.proj_version_str, "numba": numba.__version__, "matplotlib": matplotlib.__version__,
-        "click": click.__version__, "platform": platform.platform(),
-    }
+    import pyproj
+
+    out = {"yardplan": __version__, "python": platform.python_version()}
+    for name in ("numpy", "scipy", "shapely", "pyproj", "numba", "matplotlib", "click"):
+        out[name] = version(name)
+    out["proj"] = pyproj.proj_version_str
+    out["platform"] = platform.platform()
+    return out
 
 
 def sha256_file(path) -> str:

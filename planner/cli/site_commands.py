@@ -12,7 +12,7 @@ from planner.cli.options import dynamics_options, grid_options, site_argument, s
 
 def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells):
     """Read the site and make the grid settings (the cell size defaults from the site)."""
-    from planner.grid import GridSpec, grid_shape
+    from planner.grid import GridSpec, default_cell_m, grid_shape
     from planner.site import load_site
 
     loaded = load_site(site, crs=crs, fix=fix, max_bytes=max_bytes)
@@ -22,16 +22,6 @@ def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, bounda
                     max_cells=max_cells)
     grid_shape(loaded, spec.cell_m)
     return loaded, spec
-
-
-def default_cell_m(site) -> float:
-    """A cell size giving about 100 cells along the longer side, rounded to 0.5 m.
-
-    That keeps a 200-600 m yard at a few thousand cells: fine enough to resolve
-    lanes between hazards, small enough to train to convergence in seconds.
-    """
-    longest = max(site.extent_m)
-    return max(0.5, round(longest / 100.0 * 2.0) / 2.0)
 
 
 def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):
