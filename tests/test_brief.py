@@ -1,0 +1,364 @@
+"""The briefing: its content, the self-contained HTML page, the matplotlib PDF, and the
+page as a real browser prints it (headless Chromium, read back with poppler)."""
+
+from __future__ import annotations
+
+import base64
+import dataclasses
+import html
+import json
+import os
+import re
+import shutil
+import signal
+import subprocess
+import warnings
+from html.parser import HTMLParser
+from pathlib import Path
+
+import matplotlib.image as mpimg
+import pytest
+from click.testing import CliRunner
+from conftest import small_site_dict
+from numpy.testing import assert_allclose
+
+from planner.brief import CAUTIONS, NOTICE, SIGNOFF_FIELDS, BriefInputs, brief_content, render_html
+from planner.cli import cli
+from planner.errors import RunFolderError
+from planner.risk import RiskRow, format_prob
+from planner.runfolder import load_run, rebuild, run_routes
+
+#: A plan small enough for a test (a few seconds) that still exercises every section.
+PLAN_ARGS = ("--cell", "2", "--episodes", "2000", "--seeds", "2", "--rollouts", "300", "--seed", "5")
+FIGURES = ("routes.png", "sensitivity.png", "riskmap.png", "learning.png")
+#: Chromium gets this long to print the page; a hung browser fails the test, never the run.
+CHROMIUM_TIMEOUT_S = 120
+CHROMIUM_NAMES = ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable")
+POPPLER = ("pdftotext", "pdfinfo", "pdfimages")
+#: A4 in PostScript points: 210 mm x 297 mm at 72 / 25.4 points per mm (ISO 216).
+A4_PT = (595.28, 841.89)
+#: Pages the small site's briefing may take: its content fits on 6-7 A4 pages; more
+#: means a table or figure breaks badly, fewer means content went missing.
+PAGES = range(5, 9)
+#: A page with less text than this and no figure is a layout accident (a stray line).
+MIN_PAGE_CHARS = 200
+
+
+# ----------------------------------------------------------------------------- fixtures
+
+
+@pytest.fixture(scope="module")
+def planned(tmp_path_factory):
+    """The small test site planned by ``yardplan plan``: (run folder, summary printed)."""
+    folder = tmp_path_factory.mktemp("brief")
+    site = folder / "yard.geojson"
+    site.write_text(json.dumps(small_site_dict()))
+    out = folder / "run"
+    result = CliRunner().invoke(cli, ["plan", str(site), "--out", str(out), *PLAN_ARGS])
+    assert result.exit_code == 0, result.output
+    return out, result.output
+
+
+@pytest.fixture(scope="module")
+def inputs(planned):
+    """The briefing's inputs read back from the run folder (as ``yardplan brief`` does)."""
+    run = load_run(planned[0])
+    site, grid, model = rebuild(run)
+    rows = [RiskRow.from_dict(r) for r in json.loads((run.folder / "risk.json").read_text())]
+    return BriefInputs(folder=run.folder, site=site, grid=grid, routes=run_routes(run, site, grid, model),
+                       risk_rows=rows, settings=run.settings, manifest=run.manifest, run_name=run.folder.name)
+
+
+@pytest.fixture(scope="module")
+def summary(planned):
+    """Route length and P(incident) of each policy as the ``plan`` summary printed them."""
+    found = dict((m[0], (m[1], m[2])) for m in re.findall(
+        r"^\s+(cautious|shortest)\s+([\d.]+) m, .*P\(incident\) (\S+) at noise", planned[1], re.M))
+    assert set(found) == {"cautious", "shortest"}, planned[1]
+    return found
+
+
+class _Page(HTMLParser):
+    """Tags with their attributes, and the visible text with block boundaries kept."""
+
+    INLINE = {"span", "b", "i", "em", "strong"}
+
+    def __init__(self, text: str):
+        super().__init__(convert_charrefs=True)
+        self.tags, self.parts, self._skip = [], [], 0
+        self.feed(text)
+        self.close()
+        self.text = " ".join("".join(self.parts).split())
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+        if tag in ("style", "script", "title"):
+            self._skip += 1
+        elif tag not in self.INLINE:
+            self.parts.append(" \n ")
+
+    def handle_endtag(self, tag):
+        if tag in ("style", "script", "title"):
+            self._skip -= 1
+        elif tag not in self.INLINE:
+            self.parts.append(" \n ")
+
+    def handle_data(self, data):
+        if not self._skip:
+            self.parts.append(data)
+
+
+def _has_number(text: str, figure: str) -> bool:
+    """Whether ``figure`` appears in ``text`` as a whole number (not inside a longer one)."""
+    return re.search(rf"(?<![\d.]){re.escape(figure)}(?![\d])", text) is not None
+
+
+def _png_size(data: bytes) -> tuple[int, int]:
+    # width and height are the first two fields of the IHDR chunk, right after the
+    # 8-byte signature and the chunk's length and type (W3C, "PNG Specification",
+    # 2nd ed., sections 5.2 and 11.2.2)
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    return int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
+
+
+def _page_html(inputs) -> str:
+    return render_html(brief_content(inputs), inputs)
+
+
+def _with_convergence(inputs, cautious: bool, shortest: bool):
+    manifest = json.loads(json.dumps(inputs.manifest))
+    manifest["results"]["cautious"]["converged"] = cautious
+    manifest["results"]["shortest"]["converged"] = shortest
+    return dataclasses.replace(inputs, manifest=manifest)
+
+
+# ----------------------------------------------------------------------------- content and HTML
+
+
+def test_rendered_again_from_the_run_folder_is_identical(planned, inputs):
+    # ``plan`` wrote the page from results in memory; this one comes from the files
+    assert _page_html(inputs) == (planned[0] / "brief.html").read_text(encoding="utf-8")
+
+
+def test_html_is_self_contained(inputs):
+    html_text = _page_html(inputs)
+    page = _Page(html_text)
+    names = [tag for tag, _ in page.tags]
+    for banned in ("script", "link", "iframe", "object", "embed", "base"):
+        assert banned not in names
+    assert "url(" not in html_text and "@import" not in html_text
+    for tag, attrs in page.tags:
+        for key in ("src", "href"):
+            value = (attrs.get(key) or "").strip().lower()
+            assert not value.startswith(("http://", "https://", "//", "file:")), (tag, key, value[:60])
+    images = [attrs["src"] for tag, attrs in page.tags if tag == "img"]
+    assert len(images) == len(FIGURES)
+    prefix = "data:image/png;base64,"
+    embedded = {base64.b64decode(src[len(prefix):], validate=True) for src in images if src.startswith(prefix)}
+    # every figure file is embedded byte for byte, and nothing else is
+    assert embedded == {(inputs.folder / name).read_bytes() for name in FIGURES}
+
+
+def test_key_figures_match_the_plan_summary(inputs, summary):
+    text = _Page(_page_html(inputs)).text
+    for name, (length, p_incident) in summary.items():
+        route = inputs.routes[name]
+        assert f"{route.length_m:.1f}" == length
+        assert _has_number(text, length), length
+        assert _has_number(text, p_incident), p_incident
+        assert _has_number(text, f"{route.waypoint_length_m:.1f}")
+        for w in route.waypoints:
+            assert _has_number(text, f"{w.lat:.7f}") and _has_number(text, f"{w.lon:.7f}")
+
+
+def test_notice_cautions_and_sections(inputs):
+    content = brief_content(inputs)
+    text = _Page(_page_html(inputs)).text
+    assert NOTICE in text
+    for caution in CAUTIONS:
+        assert caution in text
+    for section in content["sections"]:
+        assert section["title"] in text
+    for question, answer, _ in content["glance"]:
+        assert question in text and answer in text
+    for _, value in content["assumptions"]:
+        assert value in text
+    assert f"sha256 {inputs.site.sha256[:16]}" in text
+
+
+def test_signoff_block_is_left_blank(inputs):
+    html_text = _page_html(inputs)
+    for label, _ in SIGNOFF_FIELDS:
+        escaped = re.escape(html.escape(label))
+        assert re.search(rf"<th>{escaped}</th><td style='height:\d+mm'></td>", html_text), label
+
+
+@pytest.mark.parametrize("cautious, shortest", [(True, True), (False, True), (False, False)])
+def test_banner_exactly_when_not_converged(inputs, cautious, shortest):
+    changed = _with_convergence(inputs, cautious, shortest)
+    content = brief_content(changed)
+    text = _Page(render_html(content, changed)).text
+    trust = dict((q, a) for q, a, _ in content["glance"])["Is the answer trustworthy?"]
+    if cautious and shortest:
+        assert "NOT CONVERGED" not in text and "NOT converged" not in text
+        assert trust.startswith("Training converged for both policies")
+    else:
+        bad = " and ".join(n for n, ok in (("cautious", cautious), ("shortest", shortest)) if not ok)
+        assert f"TRAINING HAS NOT CONVERGED for the {bad} policy" in text
+        assert trust.startswith("NO. Training has NOT converged")
+        assert "Training has NOT converged: this briefing is not ready for review." in text
+
+
+def test_risk_is_shown_compactly(inputs):
+    """Headline rows at the planning drift; every row only as P(incident) by drift scale."""
+    records = json.loads((inputs.folder / "risk.json").read_text())
+    blocks = [b for s in brief_content(inputs)["sections"] for b in s["blocks"] if b["kind"] == "table"]
+    scales = sorted({r["drift_scale"] for r in records})
+    pivot = next(b for b in blocks if b["headers"][2:] == [f"drift x{m:g}" for m in scales])
+    policies = list(dict.fromkeys(r["policy"] for r in records))
+    noises = sorted({r["noise"] for r in records})
+    assert len(pivot["rows"]) == len(policies) * len(noises)
+    for r in records:
+        row = next(x for x in pivot["rows"] if x[0] == r["policy"] and x[1] == f"{r['noise']:g}")
+        cell = row[2 + scales.index(r["drift_scale"])]
+        assert cell == format_prob(r["p_incident"]) + (" !" if r["mc_disagrees"] else "")
+    headline = next(b for b in blocks if b["headers"][:4] == ["policy", "noise", "P(goal)", "P(incident)"])
+    expected = [r for r in records if r["policy"] in ("cautious", "shortest") and r["drift_scale"] == 1.0]
+    assert [(x[0], x[1], x[3]) for x in headline["rows"]] == [
+        (r["policy"], f"{r['noise']:g}", format_prob(r["p_incident"])) for r in expected]
+
+
+def test_text_cannot_break_out_of_the_page(inputs):
+    content = brief_content(inputs)
+    content["site"] = 'Yard </style><script>alert("x")</script> & "co"'
+    html_text = render_html(content, inputs)
+    assert "<script" not in html_text.lower()
+    assert html_text.lower().count("</style>") == 1
+    assert "&lt;script&gt;" in html_text
+
+
+def test_missing_figure_is_refused(inputs, tmp_path):
+    empty = dataclasses.replace(inputs, folder=tmp_path)
+    with pytest.raises(RunFolderError, match="routes.png"):
+        render_html(brief_content(empty), empty)
+
+
+# ----------------------------------------------------------------------------- PDFs, read back with poppler
+
+
+def _tool(names, what, purpose):
+    for name in names:
+        path = shutil.which(name)
+        if path:
+            return path
+    reason = (f"{what} not found on PATH ({', '.join(names)}); .ci/run installs it from Debian's packages. "
+              f"Skipped: {purpose}.")
+    warnings.warn(reason, stacklevel=2)
+    pytest.skip(reason)
+
+
+def _poppler(purpose: str) -> dict:
+    return {name: _tool((name,), f"{name} (poppler-utils)", purpose) for name in POPPLER}
+
+
+def _run(cmd) -> str:
+    return subprocess.run([str(c) for c in cmd], check=True, capture_output=True, text=True, timeout=60).stdout
+
+
+def _read_pdf(tools: dict, path: Path, scratch: Path) -> dict:
+    """Page count and size, images (listed and extracted as PNG, in document order) and text."""
+    info = _run([tools["pdfinfo"], path])
+    pages = int(re.search(r"^Pages:\s+(\d+)", info, re.M).group(1))
+    width, height = map(float, re.search(r"^Page size:\s+([\d.]+) x ([\d.]+) pts", info, re.M).groups())
+    listing = [line.split() for line in _run([tools["pdfimages"], "-list", path]).splitlines()[2:]]
+    images = [(int(f[0]), int(f[3]), int(f[4])) for f in listing if f[2] == "image"]
+    scratch.mkdir()
+    _run([tools["pdfimages"], "-png", path, scratch / "img"])
+    text = _run([tools["pdftotext"], path, "-"])
+    return {"pages": pages, "size": (width, height), "images": images, "kinds": [f[2] for f in listing],
+            "extracted": sorted(scratch.glob("img-*.png")), "text": text, "page_texts": text.split("\f")[:pages]}
+
+
+def _check_printed(pdf: dict, inputs, summary, footer: str) -> None:
+    """What every printed briefing must show, whoever laid it out."""
+    assert pdf["pages"] in PAGES, pdf["pages"]
+    assert pdf["size"] == pytest.approx(A4_PT, abs=0.5)
+    # every figure is there, in order, pixel for pixel: a figure that failed to load
+    # would be missing or a placeholder, and one that loaded only in part would differ
+    # (and bring a transparency mask)
+    assert set(pdf["kinds"]) == {"image"}
+    assert [(w, h) for _, w, h in pdf["images"]] == [_png_size((inputs.folder / n).read_bytes()) for n in FIGURES]
+    assert len(pdf["extracted"]) == len(FIGURES)
+    for name, printed in zip(FIGURES, pdf["extracted"], strict=True):
+        original = mpimg.imread(inputs.folder / name)
+        if original.shape[2] == 4:  # composite on white paper, as printed
+            original = original[..., :3] * original[..., 3:] + (1.0 - original[..., 3:])
+        # one 8-bit level: a colour-managed printer path may round differently
+        assert_allclose(mpimg.imread(printed)[..., :3], original[..., :3], rtol=0, atol=1.01 / 255, err_msg=name)
+    text = " ".join(pdf["text"].split())
+    for name, (length, p_incident) in summary.items():
+        assert _has_number(text, length) and _has_number(text, p_incident), (name, length, p_incident)
+    content = brief_content(inputs)
+    assert " ".join(NOTICE.split()[:8]) in text
+    for section in content["sections"]:
+        assert section["title"] in text
+    for question, _, _ in content["glance"]:
+        assert question in text
+    for label in ("Reviewed by (name, role)", "Date", "Signature"):
+        assert label in text
+    if not content["converged"]:
+        assert "TRAINING HAS NOT CONVERGED" in text
+    for name in ("cautious", "shortest"):
+        for w in inputs.routes[name].waypoints:
+            assert _has_number(text, f"{w.lat:.7f}")
+    with_image = {page for page, _, _ in pdf["images"]}
+    for k, page_text in enumerate(pdf["page_texts"], start=1):
+        body = page_text.replace(footer, "").replace(f"page {k} of {pdf['pages']}", "")
+        assert k in with_image or len(body.strip()) >= MIN_PAGE_CHARS, f"page {k} is nearly empty"
+
+
+def test_pdf_carries_the_briefing(planned, inputs, summary, tmp_path):
+    tools = _poppler("reading back brief.pdf")
+    pdf = _read_pdf(tools, planned[0] / "brief.pdf", tmp_path / "images")
+    _check_printed(pdf, inputs, summary, f"yardplan briefing - {inputs.site.name} - for simulation and review only")
+    assert f"page 1 of {pdf['pages']}" in pdf["text"]
+
+
+def _print_with_chromium(browser: str, html_path: Path, pdf_path: Path, profile: Path) -> None:
+    cmd = [browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+           "--disable-background-networking", "--disable-component-update", "--disable-sync",
+           f"--user-data-dir={profile}", "--no-pdf-header-footer", f"--print-to-pdf={pdf_path}", html_path.as_uri()]
+    # its own process group, so a hung browser and its helpers can all be stopped
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, start_new_session=True)
+    try:
+        _, err = proc.communicate(timeout=CHROMIUM_TIMEOUT_S)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        proc.communicate()
+        pytest.fail(f"chromium did not print {html_path.name} within {CHROMIUM_TIMEOUT_S} s")
+    finally:
+        try:
+            os.killpg(proc.pid, signal.SIGKILL)  # helpers left behind, if any
+        except ProcessLookupError:
+            pass
+    assert proc.returncode == 0 and pdf_path.is_file(), err.decode(errors="replace")[-2000:]
+
+
+def test_browser_prints_the_briefing(planned, inputs, summary, tmp_path):
+    """Headless Chromium loads brief.html from disk (no network) and prints it on A4.
+
+    Read back with poppler: the page count is in range, every <img> became one image in
+    the PDF (``pdfimages -list``), and each, extracted again (``pdfimages -png``), has
+    the pixels of its PNG - which shows the data URI decoded whole: a figure that failed
+    to load prints as nothing or a placeholder, one cut short prints partly blank. The
+    key figures (route lengths, incident probabilities) must be in ``pdftotext``'s text.
+    """
+    purpose = "printing brief.html in a real browser"
+    browser = _tool(CHROMIUM_NAMES, "Chromium", purpose)
+    tools = _poppler(purpose)
+    pdf_path = tmp_path / "printed.pdf"
+    _print_with_chromium(browser, planned[0] / "brief.html", pdf_path, tmp_path / "profile")
+    pdf = _read_pdf(tools, pdf_path, tmp_path / "images")
+    images_in_html = sum(1 for tag, _ in _Page(_page_html(inputs)).tags if tag == "img")
+    assert len(pdf["images"]) == images_in_html
+    _check_printed(pdf, inputs, summary, f"yardplan briefing - {inputs.site.name} - for simulation and review only")
