@@ -278,34 +278,166 @@ def policy_chain(model: Model, action_probs: np.ndarray, *, absorb_crossing: int
     absorb_crossing : index of a non-ending hazard to treat as absorbing (for the
         probability of at least one entry); such outcomes go to the extra last column
         of ``absorb``.
+
+    Notes
+    -----
+    Both matrices are built straight from the outcome table, one state at a time,
+    in canonical CSR form (sorted column indices, duplicates summed, 32-bit indices
+    while they fit): outcomes of different actions that land in the same cell or end
+    with the same event are merged per row. Actions the policy never takes (zero
+    probability) contribute no entries, not even explicit zeros. Working memory is
+    the size of the result, not of the outcome table, so a few-hundred-thousand-cell
+    model needs no outcome-sized temporaries.
     """
     from scipy.sparse import csr_matrix
 
     n_s, n_a = model.n_states, model.n_actions
-    action_probs = np.asarray(action_probs, dtype=float)
+    action_probs = np.ascontiguousarray(action_probs, dtype=np.float64)
     if action_probs.shape != (n_s, n_a):
         raise SettingsError(f"action_probs must have shape {(n_s, n_a)}, got {action_probs.shape}")
-    row_sums = action_probs[model.active].sum(axis=1)
+    taken = action_probs[model.active]
+    if taken.size and not (np.all(np.isfinite(taken)) and taken.min() >= 0.0):
+        raise SettingsError("policy action probabilities must be finite and non-negative on every active state")
+    row_sums = taken.sum(axis=1)
     if row_sums.size and np.max(np.abs(row_sums - 1.0)) > PROB_TOLERANCE:
         raise SettingsError("policy action probabilities do not sum to 1 on every active state")
-    counts = np.diff(model.offsets)
-    pair = np.repeat(np.arange(n_s * n_a), counts)
-    state = pair // n_a
-    weight = action_probs.ravel()[pair] * model.prob
     n_events = len(model.event_names)
-    event = model.event.astype(np.int64)
+    crossing = -1
     if absorb_crossing is not None:
-        hit = (event == EVENT_NONE) & ((model.crossed >> absorb_crossing) & 1).astype(bool)
-        event = np.where(hit, n_events, event)
-        n_events += 1
-    going = event == EVENT_NONE
-    transient = csr_matrix((weight[going], (state[going], model.next_state[going])), shape=(n_s, n_s))
-    absorb = csr_matrix((weight[~going], (state[~going], event[~going])), shape=(n_s, n_events))
-    reward = np.bincount(state, weights=weight * model.reward, minlength=n_s)
+        crossing = int(absorb_crossing)
+        if not 0 <= crossing < 63:
+            raise SettingsError(f"absorb_crossing must be a hazard index in [0, 63), got {absorb_crossing!r}")
+    n_cols = n_events + (crossing >= 0)
+    t_ptr, a_ptr = _chain_pattern(model.offsets, model.next_state, model.event, model.crossed, action_probs,
+                                  crossing, n_events, n_cols)
+    t_idx, t_val, a_idx, a_val, reward = _chain_fill(model.offsets, model.next_state, model.prob, model.reward,
+                                                     model.event, model.crossed, action_probs, crossing, n_events,
+                                                     n_cols, t_ptr, a_ptr)
+    transient = _csr(t_val, t_idx, t_ptr, (n_s, n_s), csr_matrix)
+    absorb = _csr(a_val, a_idx, a_ptr, (n_s, n_cols), csr_matrix)
     move_m = (action_probs * model.move_m[None, :]).sum(axis=1) * model.active
-    transient.sum_duplicates()
-    absorb.sum_duplicates()
     return Chain(transient=transient, absorb=absorb, reward=reward, move_m=move_m)
+
+
+def _csr(data, indices, indptr, shape, csr_matrix):
+    """A canonical CSR matrix over arrays that are already canonical (no copies, no checks)."""
+    if indptr[-1] <= np.iinfo(np.int32).max:
+        indptr = indptr.astype(np.int32)
+    else:
+        indices = indices.astype(np.int64)
+    matrix = csr_matrix((data, indices, indptr), shape=shape, copy=False)
+    # The rows were merged and sorted while building, so scipy need not check again.
+    matrix.has_canonical_format = True
+    return matrix
+
+
+@numba.njit(cache=True)
+def _chain_column(k, event, crossed, crossing, crossing_col):
+    """Column of outcome ``k``: 0 when the run goes on, else its absorbing column."""
+    ev = np.int64(event[k])
+    if ev == EVENT_NONE and crossing >= 0 and (crossed[k] >> crossing) & 1:
+        ev = crossing_col
+    return ev
+
+
+@numba.njit(cache=True)
+def _chain_pattern(offsets, next_state, event, crossed, action_probs, crossing, crossing_col, n_cols):
+    """Row pointers of the transient and absorbing matrices (distinct entries per state)."""
+    n_s, n_a = action_probs.shape
+    seen = np.full(n_s, -1, np.int64)
+    seen_col = np.full(n_cols, -1, np.int64)
+    t_ptr = np.zeros(n_s + 1, np.int64)
+    a_ptr = np.zeros(n_s + 1, np.int64)
+    for s in range(n_s):
+        n_t = 0
+        n_b = 0
+        for a in range(n_a):
+            if action_probs[s, a] == 0.0:
+                continue
+            for k in range(offsets[s * n_a + a], offsets[s * n_a + a + 1]):
+                col = _chain_column(k, event, crossed, crossing, crossing_col)
+                if col == EVENT_NONE:
+                    j = next_state[k]
+                    if seen[j] != s:
+                        seen[j] = s
+                        n_t += 1
+                elif seen_col[col] != s:
+                    seen_col[col] = s
+                    n_b += 1
+        t_ptr[s + 1] = t_ptr[s] + n_t
+        a_ptr[s + 1] = a_ptr[s] + n_b
+    return t_ptr, a_ptr
+
+
+@numba.njit(cache=True)
+def _sort_row(indices, values, lo, hi):
+    """Sort one CSR row by column (insertion sort: rows are short and nearly sorted)."""
+    for i in range(lo + 1, hi):
+        key = indices[i]
+        val = values[i]
+        j = i - 1
+        while j >= lo and indices[j] > key:
+            indices[j + 1] = indices[j]
+            values[j + 1] = values[j]
+            j -= 1
+        indices[j + 1] = key
+        values[j + 1] = val
+
+
+@numba.njit(cache=True)
+def _chain_fill(offsets, next_state, prob, reward, event, crossed, action_probs, crossing, crossing_col, n_cols,
+                t_ptr, a_ptr):
+    """Entries of the transient and absorbing matrices and the expected reward per state.
+
+    Duplicates (the same next state or event reached through several actions or
+    outcomes) are summed in outcome order; ``where`` remembers each column's slot in
+    the current row, and a slot before the row's start means "not in this row yet".
+    """
+    n_s, n_a = action_probs.shape
+    t_idx = np.empty(t_ptr[-1], np.int32)
+    t_val = np.zeros(t_ptr[-1], np.float64)
+    a_idx = np.empty(a_ptr[-1], np.int32)
+    a_val = np.zeros(a_ptr[-1], np.float64)
+    expected = np.zeros(n_s, np.float64)
+    where = np.full(n_s, -1, np.int64)
+    where_col = np.full(n_cols, -1, np.int64)
+    for s in range(n_s):
+        t_lo = t_ptr[s]
+        t_at = t_lo
+        a_lo = a_ptr[s]
+        a_at = a_lo
+        total = 0.0
+        for a in range(n_a):
+            w = action_probs[s, a]
+            if w == 0.0:
+                continue
+            for k in range(offsets[s * n_a + a], offsets[s * n_a + a + 1]):
+                wp = w * prob[k]
+                total += wp * reward[k]
+                col = _chain_column(k, event, crossed, crossing, crossing_col)
+                if col == EVENT_NONE:
+                    j = next_state[k]
+                    slot = where[j]
+                    if slot < t_lo:
+                        where[j] = t_at
+                        t_idx[t_at] = j
+                        t_val[t_at] = wp
+                        t_at += 1
+                    else:
+                        t_val[slot] += wp
+                else:
+                    slot = where_col[col]
+                    if slot < a_lo:
+                        where_col[col] = a_at
+                        a_idx[a_at] = col
+                        a_val[a_at] = wp
+                        a_at += 1
+                    else:
+                        a_val[slot] += wp
+        expected[s] = total
+        _sort_row(t_idx, t_val, t_lo, t_at)
+        _sort_row(a_idx, a_val, a_lo, a_at)
+    return t_idx, t_val, a_idx, a_val, expected
 
 
 def epsilon_greedy(greedy_action: np.ndarray, n_actions: int, epsilon: float) -> np.ndarray:
