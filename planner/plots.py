@@ -6,6 +6,7 @@ Colours and symbols come from ``planner.style``.
 
 from __future__ import annotations
 
+import functools
 import math
 from pathlib import Path
 
@@ -23,11 +24,22 @@ from planner import style  # noqa: E402
 from planner.grid import OUTSIDE, Grid  # noqa: E402
 
 
+def _styled(draw):
+    """Draw with our settings in a private matplotlib context (nothing global changes,
+    so a figure never depends on what the process drew before)."""
+
+    @functools.wraps(draw)
+    def wrapper(*args, **kwargs):
+        with plt.rc_context({"font.size": style.FONT_SIZE, "svg.hashsalt": "yardplan"}):
+            return draw(*args, **kwargs)
+
+    return wrapper
+
+
 def _new_axes(grid: Grid, title: str, width_in: float = 7.5):
     n_rows, n_cols = grid.shape
     aspect = n_rows / max(n_cols, 1)
     fig, ax = plt.subplots(figsize=(width_in, max(3.0, width_in * aspect * 0.92 + 0.8)), dpi=style.FIGURE_DPI)
-    plt.rcParams.update({"font.size": style.FONT_SIZE})
     ax.set_title(title, fontsize=style.FONT_SIZE + 2, loc="left", color=style.TEXT)
     ax.set_aspect("equal")
     ax.set_xlabel("east (m)")
@@ -175,6 +187,7 @@ def _finish(fig, ax, path, handles, grid):
     return path
 
 
+@_styled
 def plot_grid(site, grid: Grid, path) -> Path:
     """The labelled grid of a site: zones, buffers, drift arrows, start, goal, legend,
     scale bar and north arrow."""
@@ -197,12 +210,12 @@ def _moving_average(values: np.ndarray, window: int) -> np.ndarray:
     return out
 
 
+@_styled
 def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Path:
     """Return per episode (moving average; mean and min-max band over seeds) for both
     learners, and hazard incidents per episode during training."""
     fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(7.5, 6.2), dpi=style.FIGURE_DPI, sharex=True,
                                    gridspec_kw={"height_ratios": [2.2, 1.0]})
-    plt.rcParams.update({"font.size": style.FONT_SIZE})
     for name, result in learned.items():
         look = style.POLICY[name]
         n_ep = result.returns.shape[1]
@@ -249,6 +262,7 @@ def draw_routes(ax, grid: Grid, routes: dict, *, waypoints: bool = True):
             ax.plot(wx, wy, "o", color=look["color"], ms=3.5, mec="white", mew=0.6, zorder=7)
 
 
+@_styled
 def plot_routes(site, grid: Grid, routes: dict, greedy: dict, path, *, title: str | None = None,
                 where: np.ndarray | None = None) -> Path:
     """The site with both nominal routes and the cells where the two policies differ.
@@ -276,6 +290,7 @@ def plot_routes(site, grid: Grid, routes: dict, greedy: dict, path, *, title: st
     return _finish(fig, ax, path, route_handles + handles + site_legend_handles(grid, site), grid)
 
 
+@_styled
 def plot_risk_maps(site, grid: Grid, maps: dict, routes: dict, path, *, noise: float) -> Path:
     """Per-cell incident probability for each policy on a log colour scale, with routes."""
     from matplotlib.colors import LogNorm
@@ -286,7 +301,6 @@ def plot_risk_maps(site, grid: Grid, maps: dict, routes: dict, path, *, noise: f
     panel_h = width / len(names) * n_rows / max(n_cols, 1) + 0.9
     fig, axes = plt.subplots(1, len(names), figsize=(width + 1.2, max(3.2, panel_h + 0.6)), dpi=style.FIGURE_DPI,
                              squeeze=False)
-    plt.rcParams.update({"font.size": style.FONT_SIZE})
     floor = 1e-6
     norm = LogNorm(vmin=floor, vmax=1.0)
     image = None
@@ -316,10 +330,10 @@ def plot_risk_maps(site, grid: Grid, maps: dict, routes: dict, path, *, noise: f
     return path
 
 
+@_styled
 def plot_sensitivity(rows, path, *, title: str = "Sensitivity of the incident probability") -> Path:
     """P(incident) against execution noise, one line per policy and drift scale."""
     fig, ax = plt.subplots(figsize=(7.5, 4.2), dpi=style.FIGURE_DPI)
-    plt.rcParams.update({"font.size": style.FONT_SIZE})
     looks = {"cautious": style.POLICY["cautious"], "shortest": style.POLICY["shortest"],
              "exact on-policy": style.REFERENCE["cautious"], "exact optimal": style.REFERENCE["shortest"]}
     scales = sorted({r.drift_scale for r in rows})

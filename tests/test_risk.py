@@ -554,3 +554,31 @@ def test_flags_use_the_exact_binomial_interval_at_small_counts():
     z = table_flag_z(400)
     assert mc_estimate(1, 20000).contains(8.5e-7, z)
     assert wilson_interval(1, 20000, z)[0] > 8.5e-7
+
+
+@pytest.mark.parametrize("name", ["ground-yard", "drone-range"])
+def test_demo_site_default_table_exact_and_monte_carlo_agree(name):
+    """On each demo site, the default table (4 noise levels x 3 drift scales) of the two
+    exact policies: the cautious one is safer at noise 0.1, and every Monte Carlo figure
+    agrees with its exact value at the table-wide 95% level (seeded)."""
+    from pathlib import Path
+
+    from planner.exact import on_policy_q, optimal_q
+    from planner.grid import GridSpec, default_cell_m, rasterise
+    from planner.model import Dynamics
+    from planner.risk import sensitivity, table_flag_z
+    from planner.site import load_site
+
+    site = load_site(Path(__file__).resolve().parent.parent / "maps" / f"{name}.geojson")
+    grid = rasterise(site, GridSpec(default_cell_m(site)))
+    dynamics = Dynamics()
+    model = build_model(grid, dynamics)
+    policies = {"cautious": greedy_actions(on_policy_q(model, 0.1).q), "shortest": greedy_actions(optimal_q(model).q)}
+    checks = 2 * 4 * 3 * (4 + len(grid.hazards))
+    rows = sensitivity(grid, dynamics, policies, rollouts=20000, seed=20261202, flag_z=table_flag_z(checks))
+    assert len(rows) == 24
+    at = {(r.policy, r.noise, r.drift_scale): r for r in rows}
+    assert at["cautious", 0.1, 1.0].p_incident < at["shortest", 0.1, 1.0].p_incident / 10
+    assert [(r.policy, r.noise, r.drift_scale, r.mc_disagrees) for r in rows if r.mc_disagrees] == []
+    for r in rows:
+        assert abs(r.p_goal + r.p_incident + r.p_never - 1.0) < 1e-8
