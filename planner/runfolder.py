@@ -146,7 +146,7 @@ class PlanSettings:
                 raise SettingsError(f"--noise values must be in [0, 1), got {n}")
         for m in self.drift_scales:
             if not (np.isfinite(m) and m >= 0.0):
-                raise SettingsError(f"--drift-scale values must be finite and >= 0, got {m}")
+                raise SettingsError(f"--drift-scales values must be finite and >= 0, got {m}")
         if self.budget is not None and self.budget < 1:
             raise SettingsError(f"--budget must be a whole number of moves >= 1, got {self.budget}")
         if self.rollouts < 0:
@@ -166,6 +166,14 @@ def settings_record(settings: PlanSettings) -> dict:
     return out
 
 
+#: Types of the plain settings in a manifest (the nested ones are checked by their classes).
+SETTING_TYPES = {
+    "episodes_shortest": (int, type(None)), "budget": (int, type(None)), "rollouts": (int,),
+    "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
+    "alt_m": (int, float, type(None)), "convergence_threshold": (int, float),
+}
+
+
 def settings_from_record(record: dict) -> PlanSettings:
     """Rebuild :class:`PlanSettings` from a manifest's ``settings``."""
     from planner.grid import GridSpec
@@ -179,9 +187,15 @@ def settings_from_record(record: dict) -> PlanSettings:
         rec["learn"] = LearnSettings(**rec["learn"])
         rec["noises"] = tuple(rec["noises"])
         rec["drift_scales"] = tuple(rec["drift_scales"])
+        for key, kinds in SETTING_TYPES.items():
+            value = rec.get(key)
+            if not isinstance(value, kinds) or (isinstance(value, bool) and bool not in kinds):
+                raise RunFolderError(f"manifest settings: {key!r} is {value!r}, not of the type plan writes")
         return PlanSettings(**rec)
-    except (KeyError, TypeError) as err:
+    except (KeyError, TypeError, AttributeError) as err:
         raise RunFolderError(f"manifest settings are incomplete or unknown ({err})") from err
+    except SettingsError as err:
+        raise RunFolderError(f"manifest settings are out of range ({err}); the run folder was changed") from err
 
 
 def versions() -> dict:
@@ -518,8 +532,12 @@ def load_run(folder) -> Run:
     if not isinstance(manifest, dict):
         raise RunFolderError(f"{path}: manifest is not a JSON object")
     for key, kind in MANIFEST_KEYS.items():
-        if not isinstance(manifest.get(key), kind):
+        value = manifest.get(key)
+        if not isinstance(value, kind) or (kind is int and isinstance(value, bool)):
             raise RunFolderError(f"{path}: manifest key {key!r} is missing or not a {kind.__name__}")
+    entropy = manifest["seeds"].get("entropy")
+    if not (isinstance(entropy, str) and entropy.isdigit()):
+        raise RunFolderError(f"{path}: manifest seeds.entropy is missing or not a whole number")
     if manifest["format"] != RUN_FORMAT:
         raise RunFolderError(f"{path}: format {manifest['format']!r} is not a yardplan run")
     if manifest["format_version"] > RUN_FORMAT_VERSION:
@@ -623,6 +641,8 @@ def rewrite_brief(run: Run) -> tuple[Path, Path]:
     routes = run_routes(run, site, grid, model)
     try:
         records = json.loads((run.folder / "risk.json").read_text())
+        if not (isinstance(records, list) and records and all(isinstance(r, dict) for r in records)):
+            raise ValueError("expected a non-empty list of rows")
         rows = [RiskRow.from_dict(r) for r in records]
     except (OSError, ValueError) as err:
         raise RunFolderError(f"{run.folder}: cannot read risk.json ({err})") from err

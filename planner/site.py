@@ -317,15 +317,15 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
 
     boundary_item = by_role["boundary"][0]
     lon_b, lat_b = _all_lonlat(boundary_item["geometry"])
-    if lon_b.max() - lon_b.min() > 180.0:
-        raise SiteError(
-            f"{source}: {boundary_item['label']}: boundary spans more than 180 degrees of longitude "
-            "(it straddles the antimeridian); split the site or name a --crs that covers it"
-        )
     if np.any(np.abs(lat_b) >= 89.5):
         raise SiteError(
             f"{source}: {boundary_item['label']}: boundary reaches latitude 89.5 or beyond; "
             "sites at a pole are not supported"
+        )
+    if lon_b.max() - lon_b.min() > 180.0:
+        raise SiteError(
+            f"{source}: {boundary_item['label']}: boundary spans more than 180 degrees of longitude "
+            "(it straddles the antimeridian); split the site or name a --crs that covers it"
         )
     frame = _make_frame(crs, lon_b, lat_b)
 
@@ -442,6 +442,8 @@ def _parse_feature(index: int, feature: Any, source: str) -> dict:
 
 def _number(props: dict, key: str, where: str, *, default=None, low=None, high=None,
             low_open=False) -> float | None:
+    if key in props and props[key] is None:
+        raise SiteError(f"{where}: '{key}' is null; give a number or leave the property out")
     value = props.get(key, default)
     if value is None:
         return None
