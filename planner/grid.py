@@ -267,6 +267,14 @@ def drift_tables(grid: Grid, scale: float = 1.0):
     """
     if not (math.isfinite(scale) and scale >= 0):
         raise SettingsError(f"--drift-scale must be a finite number >= 0, got {scale}")
+    reach = max(grid.shape)
+    for d in grid.drifts:
+        span = (math.hypot(d.east_m, d.north_m) + 4.0 * d.spread_m) * scale / grid.cell_m
+        if span > reach:
+            raise SettingsError(
+                f"drift zone {d.name!r} at drift scale {scale:g} pushes up to {span * grid.cell_m:.0f} m per move, "
+                f"more than the whole grid ({reach * grid.cell_m:.0f} m)"
+            )
     per_zone = [zone_drift_distribution(d, grid.cell_m, scale) for d in grid.drifts]
     ptr, rows, cols, probs = [0], [], [], []
     for members in grid.drift_members:

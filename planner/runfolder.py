@@ -141,6 +141,9 @@ class PlanSettings:
     convergence_threshold: float = 0.95
 
     def __post_init__(self):
+        if not 0.0 <= self.learn.epsilon < 1.0:
+            raise SettingsError(f"--epsilon must be in [0, 1) for plan (1 would be a random walk), "
+                                f"got {self.learn.epsilon}")
         for n in self.noises:
             if not (0.0 <= n < 1.0):
                 raise SettingsError(f"--noise values must be in [0, 1), got {n}")
@@ -271,7 +274,7 @@ class PlanResult:
 def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None) -> PlanResult:
     """Run every stage of ``plan`` in memory (no files written)."""
     from planner.exact import convergence_report, occupancy, on_policy_q, optimal_q, policy_value
-    from planner.grid import cost_to_goal, rasterise
+    from planner.grid import cost_to_goal, drift_tables, rasterise
     from planner.learn import greedy_actions, train
     from planner.model import build_model
     from planner.route import nominal_path
@@ -283,6 +286,9 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     site = load_site(site_path, crs=settings.crs, fix=settings.fix, max_bytes=settings.max_bytes)
     grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
+    # Every drift scale of the risk table must make a model: find out before training.
+    for scale in set(settings.drift_scales) | {settings.dynamics.drift_scale}:
+        drift_tables(grid, scale)
     model = build_model(grid, settings.dynamics)
     timings["model_s"] = time.perf_counter() - t
     progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")

@@ -26,6 +26,12 @@ from planner.errors import SettingsError, SiteError, SiteWarning
 DEFAULT_MAX_BYTES = 50_000_000
 #: Polygons smaller than this (square metres) are degenerate: collinear or repeated points.
 MIN_AREA_M2 = 1e-4
+#: Upper bounds that keep every cost finite and every drift inside a yard-sized grid:
+#: a rough zone costing more than this should be a hazard; a penalty above this
+#: swamps every route; distances above this are larger than any test yard.
+MAX_COST_FACTOR = 1000.0
+MAX_PENALTY_M = 1e6
+MAX_DISTANCE_M = 10_000.0
 #: Largest number of vertices accepted in one feature.
 MAX_VERTICES_PER_FEATURE = 200_000
 
@@ -465,13 +471,13 @@ def _zone_properties(role: str, props: dict, where: str) -> dict:
             raise SiteError(f"{where}: 'ends_run' must be true or false, got {ends_run!r}")
         return {
             "ends_run": ends_run,
-            "penalty_m": _number(props, "penalty_m", where, low=0.0),
-            "buffer_m": _number(props, "buffer_m", where, default=0.0, low=0.0),
+            "penalty_m": _number(props, "penalty_m", where, low=0.0, high=MAX_PENALTY_M),
+            "buffer_m": _number(props, "buffer_m", where, default=0.0, low=0.0, high=MAX_DISTANCE_M),
         }
     if role == "rough":
         if "cost_factor" not in props:
             raise SiteError(f"{where}: rough zone needs 'cost_factor' (>= 1)")
-        return {"cost_factor": _number(props, "cost_factor", where, low=1.0)}
+        return {"cost_factor": _number(props, "cost_factor", where, low=1.0, high=MAX_COST_FACTOR)}
     if role == "drift":
         has_to, has_from = "toward_deg" in props, "from_deg" in props
         if has_to == has_from:
@@ -485,8 +491,8 @@ def _zone_properties(role: str, props: dict, where: str) -> dict:
             toward = (_number(props, "from_deg", where, low=0.0, high=360.0) + 180.0) % 360.0
         return {
             "toward_deg": toward % 360.0,
-            "push_m": _number(props, "push_m", where, low=0.0),
-            "spread_m": _number(props, "spread_m", where, default=0.0, low=0.0),
+            "push_m": _number(props, "push_m", where, low=0.0, high=MAX_DISTANCE_M),
+            "spread_m": _number(props, "spread_m", where, default=0.0, low=0.0, high=MAX_DISTANCE_M),
             "chance": _number(props, "chance", where, default=1.0, low=0.0, high=1.0),
         }
     return {}
@@ -609,7 +615,10 @@ def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_war
         reason = shapely.is_valid_reason(geom)
         if not fix:
             raise SiteError(f"{where}: invalid polygon ({reason}); fix the drawing or pass --fix to repair it")
-        repaired = shapely.make_valid(geom)
+        try:
+            repaired = shapely.make_valid(geom)
+        except shapely.errors.GEOSException as err:
+            raise SiteError(f"{where}: invalid polygon ({reason}) that --fix cannot repair ({err})") from err
         polys = [g for g in getattr(repaired, "geoms", [repaired]) if g.geom_type in _POLYGONAL]
         flat = []
         for g in polys:

@@ -9,6 +9,7 @@ import click
 from planner.cli import cli
 from planner.cli.options import dynamics_options, grid_options, site_argument, site_options
 from planner.cli.site_commands import load_site_and_spec, make_dynamics
+from planner.errors import SettingsError
 
 
 def float_list(text: str, option: str) -> tuple[float, ...]:
@@ -92,7 +93,7 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
 
     For simulation and review only: not approved for field operation.
     """
-    from planner.grid import rasterise
+    from planner.grid import drift_tables, rasterise
     from planner.learn import LearnSettings
     from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, stop_on_sigterm, write_run
 
@@ -100,8 +101,8 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
     dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m)
+    labelled = rasterise(loaded, spec)
     if episodes is None:
-        labelled = rasterise(loaded, spec)
         episodes = default_episodes(int((labelled.passable() & ~labelled.goal).sum()))
     if alt_m is not None and not (0.0 <= alt_m <= 10_000.0):
         raise click.BadParameter(f"{alt_m:g} is not an altitude in [0, 10000] m", param_hint="--alt-m")
@@ -111,6 +112,13 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn, noises=float_list(noises, "--noise"),
                             drift_scales=float_list(drift_scales, "--drift-scales"), budget=budget,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m)
+    # A drift larger than the grid is refused here, before any training.
+    for option, scales in (("--drift-scale", (dynamics.drift_scale,)), ("--drift-scales", settings.drift_scales)):
+        for scale in scales:
+            try:
+                drift_tables(labelled, scale)
+            except SettingsError as err:
+                raise SettingsError(f"{option} {scale:g}: {err}") from err
     show = not quiet and sys.stderr.isatty()
     progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
     with stop_on_sigterm():

@@ -8,6 +8,7 @@ import click
 
 from planner.cli import cli
 from planner.cli.plan_commands import float_list
+from planner.errors import SettingsError
 
 run_argument = click.argument("run", type=click.Path(path_type=str))
 
@@ -35,6 +36,7 @@ def risk(run, fmt, noises, drift_scales, budget, rollouts, policies, seed):
     drift scale, with Monte Carlo estimates and Wilson 95% intervals beside them; a '!'
     marks a figure outside its interval.
     """
+    from planner.grid import drift_tables
     from planner.risk import format_table
     from planner.runfolder import load_run, rebuild, run_risk
 
@@ -55,6 +57,11 @@ def risk(run, fmt, noises, drift_scales, budget, rollouts, policies, seed):
         raise click.BadParameter(f"{n_rollouts} is negative", param_hint="--rollouts")
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid, _ = rebuild(loaded)
+    for m in scales:
+        try:
+            drift_tables(grid, m)
+        except SettingsError as err:
+            raise SettingsError(f"--drift-scale {m:g}: {err}") from err
     rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget=budget, rollouts=n_rollouts,
                     seed=seed, policies=names)
     click.echo(format_table(rows, fmt), nl=False)
