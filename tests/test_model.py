@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from conftest import text_map_grid
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 
@@ -106,7 +106,12 @@ def small_grids(draw):
 @given(small_grids())
 def test_outcome_probabilities_sum_to_one_and_stay_on_grid(case):
     grid, dynamics = case
-    model = build_model(grid, dynamics)
+    try:
+        model = build_model(grid, dynamics)
+    except SettingsError as err:
+        # A drift wider than the whole grid is refused by design; nothing else may fail.
+        assert "more than the whole grid" in str(err)
+        assume(False)
     counts = np.diff(model.offsets).reshape(model.n_states, model.n_actions)
     assert np.all(counts[model.active] > 0)
     assert np.all(counts[~model.active] == 0)

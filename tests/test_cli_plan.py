@@ -1,0 +1,275 @@
+"""``yardplan plan`` as a user runs it, and the commands that read its run folder.
+
+One small plan on the in-memory test site (50 x 30 cells of 2 m, few episodes) is
+shared by the module; every test reads it, and tests that change a run folder work on
+a copy.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+import re
+import shutil
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from conftest import small_site_dict
+from numpy.testing import assert_allclose
+
+from planner.cli import cli
+from planner.risk import format_prob
+
+#: Small settings: a few seconds in all, not converged (the summary says so).
+SMALL = ["--cell", "2", "--episodes", "2000", "--seeds", "2", "--rollouts", "300", "--seed", "5"]
+#: Every file a run folder holds.
+RUN_FILES = {
+    "manifest.json", "policies.npz", "training.npz", "routes-cautious.geojson", "routes-shortest.geojson",
+    "waypoints-cautious.csv", "waypoints-shortest.csv", "risk.csv", "risk.json", "learning.png", "routes.png",
+    "riskmap.png", "sensitivity.png", "brief.html", "brief.pdf", "site.geojson",
+}
+NOTICE = "simulation only - not approved for field operation"
+GPX = "{http://www.topografix.com/GPX/1/1}"
+
+
+def run(*args):
+    return CliRunner().invoke(cli, [str(a) for a in args])
+
+
+def sha256(path) -> str:
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+@pytest.fixture(scope="module")
+def planned(tmp_path_factory):
+    """(site path, run folder, CliRunner result) of one small plan."""
+    root = tmp_path_factory.mktemp("plan")
+    site = root / "site.geojson"
+    site.write_text(json.dumps(small_site_dict()))
+    out = root / "run"
+    result = run("plan", site, "--out", out, *SMALL)
+    return site, out, result
+
+
+@pytest.fixture
+def run_copy(planned, tmp_path):
+    """A private copy of the run folder, for commands that rewrite files in it."""
+    copy = tmp_path / "run"
+    shutil.copytree(planned[1], copy)
+    return copy
+
+
+def manifest(folder) -> dict:
+    return json.loads((Path(folder) / "manifest.json").read_text())
+
+
+def risk_rows(folder) -> list[dict]:
+    return json.loads((Path(folder) / "risk.json").read_text())
+
+
+# ----------------------------------------------------------------------------- plan
+
+
+def test_plan_succeeds_and_summarises_both_policies(planned):
+    _, out, result = planned
+    assert result.exit_code == 0, result.output
+    lines = result.stdout.splitlines()
+    assert lines[0] == f"Test yard: run folder {out} (for simulation and review only)"
+    results = manifest(out)["results"]
+    rows = risk_rows(out)
+    for name in ("cautious", "shortest"):
+        i = next(k for k, line in enumerate(lines) if line.strip().startswith(name))
+        match = re.fullmatch(
+            rf"\s+{name}\s+(\d+\.\d) m,\s+(\d+) moves, (reaches the goal|ENDS AT [A-Z ]+)"
+            r"(?:, P\(incident\) (\S+) at noise 0\.1)?", lines[i])
+        assert match, lines[i]
+        # The summary's figures are the manifest's, rounded for display.
+        assert_allclose(float(match.group(1)), results[name]["length_m"], atol=0.05)
+        assert int(match.group(2)) == results[name]["moves"]
+        assert (match.group(3) == "reaches the goal") == results[name]["reached_goal"]
+        # The convergence line follows, and says what the manifest says.
+        assert lines[i + 1].strip() == results[name]["message"]
+        assert re.match(r"(not )?converged: ", results[name]["message"])
+        # With 2,000 episodes neither learner matches its exact reference.
+        assert results[name]["converged"] is False
+        row = next(r for r in rows if r["policy"] == name and r["noise"] == 0.1 and r["drift_scale"] == 1.0)
+        # The summary's risk figure is the risk table's, in the table's own number format.
+        assert match.group(4) == format_prob(row["p_incident"])
+
+
+def test_run_folder_holds_every_file_and_nothing_else(planned):
+    site, out, _ = planned
+    assert {p.name for p in out.iterdir()} == RUN_FILES
+    # No temporary sibling was left beside it.
+    assert sorted(p.name for p in out.parent.iterdir()) == ["run", "site.geojson"]
+    assert (out / "site.geojson").read_bytes() == site.read_bytes()
+
+
+def test_manifest_records_inputs_settings_seeds_versions_and_hashes(planned):
+    site, out, _ = planned
+    m = manifest(out)
+    assert m["format"] == "yardplan-run" and m["format_version"] == 1
+    assert m["input"]["sha256"] == sha256(site)
+    assert m["input"]["site_copy"] == "site.geojson"
+    assert m["seeds"]["given"] == 5
+    assert int(m["seeds"]["entropy"]) == 5
+    s = m["settings"]
+    assert s["grid"]["cell_m"] == 2.0
+    assert s["learn"]["episodes"] == 2000 and s["learn"]["n_seeds"] == 2
+    assert s["rollouts"] == 300 and s["seed"] == 5
+    assert s["noises"] == [0.0, 0.05, 0.1, 0.2] and s["drift_scales"] == [1.0, 1.5, 2.0]
+    import numba
+    import shapely
+
+    assert m["versions"]["numpy"] == np.__version__
+    assert m["versions"]["shapely"] == shapely.__version__
+    assert m["versions"]["numba"] == numba.__version__
+    assert {"python", "yardplan", "scipy", "pyproj", "proj", "matplotlib", "click"} <= set(m["versions"])
+    # A hash for every other file, each matching the file's bytes.
+    assert set(m["files"]) == RUN_FILES - {"manifest.json"}
+    for name, digest in m["files"].items():
+        assert sha256(out / name) == digest, name
+    assert m["grid"]["rows"] == 30 and m["grid"]["cols"] == 50
+
+
+def test_policies_are_plain_arrays_of_the_grid_shape(planned):
+    _, out, _ = planned
+    with np.load(out / "policies.npz", allow_pickle=False) as data:
+        arrays = {k: data[k] for k in data.files}
+    assert set(arrays) == {"greedy_cautious", "greedy_shortest", "q_cautious", "q_shortest",
+                           "q_exact_on_policy", "q_exact_optimal"}
+    for name, arr in arrays.items():
+        if name.startswith("greedy"):
+            assert arr.dtype == np.int64 and arr.shape == (1500,)
+            assert arr.min() >= 0 and arr.max() < 8
+        else:
+            assert arr.dtype == np.float64 and arr.shape == (1500, 8)
+    with np.load(out / "training.npz", allow_pickle=False) as data:
+        assert data.files and all(data[k].dtype != object for k in data.files)
+
+
+def test_waypoint_files_carry_the_simulation_notice(planned):
+    _, out, _ = planned
+    for name in ("cautious", "shortest"):
+        text = (out / f"waypoints-{name}.csv").read_text()
+        assert text.splitlines()[0].startswith(f"# {NOTICE}")
+        geo = json.loads((out / f"routes-{name}.geojson").read_text())
+        assert geo["type"] == "FeatureCollection"
+        assert geo["use"].startswith(NOTICE)
+        assert geo["site"]["sha256"] == manifest(out)["input"]["sha256"]
+
+
+# ----------------------------------------------------------------------------- risk
+
+
+def test_risk_reproduces_the_plans_exact_figures(planned):
+    _, out, _ = planned
+    result = run("risk", out, "--format", "json", "--rollouts", "0")
+    assert result.exit_code == 0, result.output
+    again = json.loads(result.stdout)
+    # Default noise levels and drift scales are the run's: the same 2 x 4 x 3 rows.
+    planned_rows = {(r["policy"], r["noise"], r["drift_scale"]): r for r in risk_rows(out)}
+    assert len(again) == 24
+    for row in again:
+        ref = planned_rows[(row["policy"], row["noise"], row["drift_scale"])]
+        # Exact absorbing-chain figures, rebuilt from the run folder: the same solve.
+        assert_allclose(row["p_incident"], ref["p_incident"], rtol=1e-9, atol=1e-15)
+        assert_allclose(row["p_goal"], ref["p_goal"], rtol=1e-9, atol=1e-15)
+
+
+@pytest.mark.parametrize("fmt", ["text", "csv", "markdown"])
+def test_risk_table_formats(planned, fmt):
+    _, out, _ = planned
+    result = run("risk", out, "--format", fmt, "--rollouts", "0", "--noise", "0.1", "--drift-scale", "1,2",
+                 "--policy", "cautious")
+    assert result.exit_code == 0, result.output
+    assert "cautious" in result.stdout and "shortest" not in result.stdout
+    if fmt == "csv":
+        rows = list(csv.DictReader(result.stdout.splitlines()))
+        assert len(rows) == 2
+
+
+# ----------------------------------------------------------------------------- export
+
+
+def test_export_csv_and_geojson_match_the_run_folder(planned, tmp_path):
+    _, out, _ = planned
+    for name in ("cautious", "shortest"):
+        target = tmp_path / f"{name}.csv"
+        result = run("export", out, "--format", "csv", "--policy", name, "-o", target)
+        assert result.exit_code == 0, result.output
+        assert "simulation only" in result.stdout
+        # Rebuilt from the run folder, the route is the one plan wrote.
+        assert target.read_bytes() == (out / f"waypoints-{name}.csv").read_bytes()
+        target = tmp_path / f"{name}.geojson"
+        assert run("export", out, "--policy", name, "-o", target).exit_code == 0
+        assert target.read_bytes() == (out / f"routes-{name}.geojson").read_bytes()
+
+
+def test_export_csv_both_policies_writes_two_files_with_altitude(planned, tmp_path):
+    _, out, _ = planned
+    result = run("export", out, "--format", "csv", "--alt-m", "25", "-o", tmp_path / "wp.csv")
+    assert result.exit_code == 0, result.output
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["wp-cautious.csv", "wp-shortest.csv"]
+    for name in ("cautious", "shortest"):
+        lines = (tmp_path / f"wp-{name}.csv").read_text().splitlines()
+        assert lines[0].startswith(f"# {NOTICE}") and "25.000 m above ground level" in lines[0]
+        rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
+        assert rows and all(r["alt_m"] == "25.000" and r["policy"] == name for r in rows)
+
+
+def test_export_gpx_has_both_routes_with_the_notice(planned, tmp_path):
+    _, out, _ = planned
+    target = tmp_path / "routes.gpx"
+    result = run("export", out, "--format", "gpx", "--alt-m", "12.5", "-o", target)
+    assert result.exit_code == 0, result.output
+    root = ET.parse(target).getroot()
+    assert NOTICE in root.find(f"{GPX}metadata/{GPX}desc").text
+    routes = root.findall(f"{GPX}rte")
+    assert [r.find(f"{GPX}name").text for r in routes] == ["cautious", "shortest"]
+    for r in routes:
+        name = r.find(f"{GPX}name").text
+        points = r.findall(f"{GPX}rtept")
+        with open(out / f"waypoints-{name}.csv") as f:
+            waypoints = list(csv.DictReader(line for line in f if not line.startswith("#")))
+        assert len(points) == len(waypoints)
+        for p, w in zip(points, waypoints, strict=True):
+            assert_allclose([float(p.get("lon")), float(p.get("lat"))], [float(w["lon"]), float(w["lat"])],
+                            atol=1e-9)
+            assert p.find(f"{GPX}ele").text == "12.500"
+
+
+def test_export_single_policy_geojson(planned, tmp_path):
+    _, out, _ = planned
+    target = tmp_path / "shortest.geojson"
+    assert run("export", out, "--policy", "shortest", "--alt-m", "0", "-o", target).exit_code == 0
+    geo = json.loads(target.read_text())
+    routes = [f for f in geo["features"] if f["properties"].get("kind") == "route"]
+    assert [f["properties"]["policy"] for f in routes] == ["shortest"]
+    # With an altitude every position has a third coordinate (RFC 7946 allows it).
+    assert all(len(p) == 3 and p[2] == 0.0 for p in routes[0]["geometry"]["coordinates"])
+
+
+# ----------------------------------------------------------------------------- brief
+
+
+def test_brief_rewrites_the_briefing_and_keeps_the_folder_loadable(run_copy):
+    before = manifest(run_copy)
+    result = run("brief", run_copy)
+    assert result.exit_code == 0, result.output
+    assert "brief.html" in result.stdout and "brief.pdf" in result.stdout
+    html = (run_copy / "brief.html").read_text()
+    assert "Test yard" in html and "simulation" in html
+    assert (run_copy / "brief.pdf").read_bytes()[:5] == b"%PDF-"
+    after = manifest(run_copy)
+    # Only the briefing's hashes change; the new ones match the new files.
+    assert {k: v for k, v in after["files"].items() if not k.startswith("brief.")} == \
+        {k: v for k, v in before["files"].items() if not k.startswith("brief.")}
+    for name in ("brief.html", "brief.pdf"):
+        assert after["files"][name] == sha256(run_copy / name)
+    # The folder still passes its own checks.
+    assert run("risk", run_copy, "--rollouts", "0", "--noise", "0.1", "--drift-scale", "1").exit_code == 0
