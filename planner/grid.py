@@ -178,6 +178,8 @@ def check_budget(n_cells: int, max_cells: int, cell_m: float) -> None:
 
 def format_bytes(n: int) -> str:
     """1.5 GiB, 340 MiB, 12 KiB: the unit that keeps the figure readable."""
+    if n >= 2**40:
+        return f"{n / 2**40:.3g} TiB"
     for unit, size in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
         if n >= size:
             return f"{n / size:.1f} {unit}"

@@ -84,7 +84,7 @@ def test_plan_succeeds_and_summarises_both_policies(planned):
     for name in ("cautious", "shortest"):
         i = next(k for k, line in enumerate(lines) if line.strip().startswith(name))
         match = re.fullmatch(
-            rf"\s+{name}\s+(\d+\.\d) m,\s+(\d+) moves, (reaches the goal|ENDS AT [A-Z ]+)"
+            rf"\s+{name}\s+(\d+\.\d) m \(\d+\.\d m by waypoints\),\s+(\d+) moves, (reaches the goal|ENDS AT [A-Z ]+)"
             r"(?:, P\(incident\) (\S+) at noise 0\.1)?", lines[i])
         assert match, lines[i]
         # The summary's figures are the manifest's, rounded for display.

@@ -9,7 +9,7 @@ import click
 from planner.cli import cli
 from planner.cli.options import dynamics_options, grid_options, site_argument, site_options
 from planner.cli.site_commands import load_site_and_spec, make_dynamics
-from planner.errors import SettingsError
+from planner.errors import Interrupted, SettingsError
 
 
 def float_list(text: str, option: str) -> tuple[float, ...]:
@@ -122,7 +122,10 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     show = not quiet and sys.stderr.isatty()
     progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
     with stop_on_sigterm():
-        result = compute_plan(site, settings, progress)
+        try:
+            result = compute_plan(site, settings, progress)
+        except KeyboardInterrupt as err:
+            raise Interrupted(f"stopped while planning (before writing); nothing was written to {out}") from err
         write_run(result, settings, site, out, force=force, progress=progress)
     click.echo(format_plan_summary(result, settings, out))
 
@@ -136,7 +139,8 @@ def format_plan_summary(result, settings, out) -> str:
                    None)
         risk = f", P(incident) {row_prob(row)} at noise {eps:g}" if row is not None else ""
         end = "reaches the goal" if route.reached_goal else f"ENDS AT {route.end_event.upper()}"
-        lines.append(f"  {name:9s} {route.length_m:7.1f} m, {route.n_moves:3d} moves, {end}{risk}")
+        lines.append(f"  {name:9s} {route.length_m:7.1f} m ({route.waypoint_length_m:.1f} m by waypoints), "
+                     f"{route.n_moves:3d} moves, {end}{risk}")
         lines.append(f"            {conv.message}")
     return "\n".join(lines)
 
