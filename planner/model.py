@@ -369,6 +369,23 @@ def _chain_pattern(offsets, next_state, event, crossed, action_probs, crossing, 
     return t_ptr, a_ptr
 
 
+@numba.njit(cache=True, inline="always")
+def _accumulate(where, idx, val, lo, at, key, weight):
+    """Add ``weight`` to entry ``key`` of the row being built (``lo:at``); returns the new end.
+
+    ``where[key]`` remembers the slot of ``key``; a slot before ``lo`` belongs to an
+    earlier row, so the key is new to this one.
+    """
+    slot = where[key]
+    if slot < lo:
+        where[key] = at
+        idx[at] = key
+        val[at] = weight
+        return at + 1
+    val[slot] += weight
+    return at
+
+
 @numba.njit(cache=True)
 def _sort_row(indices, values, lo, hi):
     """Sort one CSR row by column (insertion sort: rows are short and nearly sorted)."""
@@ -416,24 +433,9 @@ def _chain_fill(offsets, next_state, prob, reward, event, crossed, action_probs,
                 total += wp * reward[k]
                 col = _chain_column(k, event, crossed, crossing, crossing_col)
                 if col == EVENT_NONE:
-                    j = next_state[k]
-                    slot = where[j]
-                    if slot < t_lo:
-                        where[j] = t_at
-                        t_idx[t_at] = j
-                        t_val[t_at] = wp
-                        t_at += 1
-                    else:
-                        t_val[slot] += wp
+                    t_at = _accumulate(where, t_idx, t_val, t_lo, t_at, next_state[k], wp)
                 else:
-                    slot = where_col[col]
-                    if slot < a_lo:
-                        where_col[col] = a_at
-                        a_idx[a_at] = col
-                        a_val[a_at] = wp
-                        a_at += 1
-                    else:
-                        a_val[slot] += wp
+                    a_at = _accumulate(where_col, a_idx, a_val, a_lo, a_at, col, wp)
         expected[s] = total
         _sort_row(t_idx, t_val, t_lo, t_at)
         _sort_row(a_idx, a_val, a_lo, a_at)

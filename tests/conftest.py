@@ -82,3 +82,21 @@ def text_map_grid(lines, hazard_name="hole"):
             elif ch == "S":
                 start = (r, c)
     return grid_from_arrays(label, goal=goal, start=start, hazards=(HazardInfo(hazard_name),))
+
+
+def plan_small_site(root, *args):
+    """Run ``yardplan plan`` on the small test site written into ``root``.
+
+    Returns (site path, run folder, CliRunner result).
+    """
+    import json
+
+    from click.testing import CliRunner
+
+    from planner.cli import cli
+
+    site = root / "site.geojson"
+    site.write_text(json.dumps(small_site_dict()))
+    out = root / "run"
+    result = CliRunner().invoke(cli, ["plan", str(site), "--out", str(out), *[str(a) for a in args]])
+    return site, out, result

@@ -18,12 +18,10 @@ from pathlib import Path
 
 import matplotlib.image as mpimg
 import pytest
-from click.testing import CliRunner
-from conftest import small_site_dict
+from conftest import plan_small_site
 from numpy.testing import assert_allclose
 
 from planner.brief import CAUTIONS, NOTICE, SIGNOFF_FIELDS, BriefInputs, brief_content, render_html
-from planner.cli import cli
 from planner.errors import RunFolderError
 from planner.risk import RiskRow, format_prob
 from planner.runfolder import load_run, rebuild, run_routes
@@ -50,11 +48,7 @@ MIN_PAGE_CHARS = 200
 @pytest.fixture(scope="module")
 def planned(tmp_path_factory):
     """The small test site planned by ``yardplan plan``: (run folder, summary printed)."""
-    folder = tmp_path_factory.mktemp("brief")
-    site = folder / "yard.geojson"
-    site.write_text(json.dumps(small_site_dict()))
-    out = folder / "run"
-    result = CliRunner().invoke(cli, ["plan", str(site), "--out", str(out), *PLAN_ARGS])
+    _, out, result = plan_small_site(tmp_path_factory.mktemp("brief"), *PLAN_ARGS)
     assert result.exit_code == 0, result.output
     return out, result.output
 
@@ -73,7 +67,7 @@ def inputs(planned):
 def summary(planned):
     """Route length and P(incident) of each policy as the ``plan`` summary printed them."""
     found = dict((m[0], (m[1], m[2])) for m in re.findall(
-        r"^\s+(cautious|shortest)\s+([\d.]+) m, .*P\(incident\) (\S+) at noise", planned[1], re.M))
+        r"^\s+(cautious|shortest)\s+([\d.]+) m \(.*P\(incident\) (\S+) at noise", planned[1], re.M))
     assert set(found) == {"cautious", "shortest"}, planned[1]
     return found
 

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from conftest import small_site_dict
+from conftest import plan_small_site
 from numpy.testing import assert_allclose
 
 from planner.cli import cli
@@ -47,12 +47,7 @@ def sha256(path) -> str:
 @pytest.fixture(scope="module")
 def planned(tmp_path_factory):
     """(site path, run folder, CliRunner result) of one small plan."""
-    root = tmp_path_factory.mktemp("plan")
-    site = root / "site.geojson"
-    site.write_text(json.dumps(small_site_dict()))
-    out = root / "run"
-    result = run("plan", site, "--out", out, *SMALL)
-    return site, out, result
+    return plan_small_site(tmp_path_factory.mktemp("plan"), *SMALL)
 
 
 @pytest.fixture
