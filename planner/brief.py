@@ -23,6 +23,7 @@ from pathlib import Path
 
 from planner import style
 from planner.errors import RunFolderError
+from planner.risk import find_row, format_prob
 
 #: The two policies, in the order the briefing shows them.
 POLICIES = tuple(style.POLICY)
@@ -170,13 +171,6 @@ def _ends(route) -> str:
     return f"IN HAZARD {route.end_event}"
 
 
-def _row(rows, policy, noise, drift_scale):
-    for row in rows:
-        if row.policy == policy and math.isclose(row.noise, noise) and math.isclose(row.drift_scale, drift_scale):
-            return row
-    return None
-
-
 def _main_event(row):
     """The incident that contributes most to a row, as ``(name, probability)``, or None."""
     if row is None or not row.p_by_event:
@@ -252,8 +246,6 @@ def brief_content(inputs: BriefInputs) -> dict:
         triples; ``sections``: each a ``title`` and a list of ``blocks`` (dicts with a
         ``kind`` of ``para``, ``subhead``, ``table``, ``figure``, ``list`` or ``signoff``).
     """
-    from planner.risk import format_prob
-
     settings, manifest = inputs.settings, inputs.manifest
     site = inputs.site
     dyn, learn = settings.dynamics, settings.learn
@@ -266,9 +258,9 @@ def brief_content(inputs: BriefInputs) -> dict:
     policies = []
     for name in POLICIES:
         route, conv = inputs.routes[name], manifest["results"][name]
-        row = _row(rows, name, eps, base)
-        row_strong = _row(rows, name, eps, strong) if strong is not None else None
-        ref = _row(rows, REFERENCE_OF[name], eps, base)
+        row = find_row(rows, name, eps, base)
+        row_strong = find_row(rows, name, eps, strong) if strong is not None else None
+        ref = find_row(rows, REFERENCE_OF[name], eps, base)
         main = _main_event(row)
         policies.append({
             "name": name, "method": METHOD[name],
@@ -329,8 +321,6 @@ def _banners(policies) -> list[str]:
 
 def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str, str, bool]]:
     """Short answers to the four questions a reviewer asks, each with an alert flag."""
-    from planner.risk import format_prob
-
     site, grid, settings = inputs.site, inputs.grid, inputs.settings
     dyn = settings.dynamics
     eps, base, strong = content["noise"], content["drift_scale"], content["strong_drift"]
@@ -466,16 +456,12 @@ def _check_label(key: str) -> str:
 
 def _disagreements(row) -> str:
     """What a row's Monte Carlo check flags: each quantity with its exact and simulated figure."""
-    from planner.risk import format_prob
-
     exact = row.exact()
     return "; ".join(f"{_check_label(k)}: exact {format_prob(exact.get(k))}, simulated {row.mc[k].count:,} of "
                      f"{row.mc[k].n:,}" for k in row.mc_disagrees if k in row.mc)
 
 
 def _section_risk(content: dict, rows) -> list:
-    from planner.risk import format_prob
-
     base = content["drift_scale"]
     blocks = [_para(
         "P(incident): probability, in the model, that one run ends in a hazard that ends the run or by leaving "
@@ -510,7 +496,7 @@ def _section_risk(content: dict, rows) -> list:
         for n in noises:
             cells = []
             for m in scales:
-                r = _row(rows, name, n, m)
+                r = find_row(rows, name, n, m)
                 cells.append(format_prob(r.p_incident) + mark(r) if r else "-")
             if any(v != "-" for v in cells):
                 pivot.append([name, f"{n:g}", *cells])

@@ -27,6 +27,7 @@ from planner.model import (
     epsilon_greedy,
     policy_chain,
     reaches_absorption,
+    reaching,
     solve_transient,
 )
 from planner.route import nominal_path
@@ -323,24 +324,6 @@ class Convergence:
     message: str
 
 
-def _reaches(transient, targets: np.ndarray) -> np.ndarray:
-    """States from which some state in ``targets`` is reachable through ``transient``."""
-    from scipy.sparse import bmat, csr_matrix
-    from scipy.sparse.csgraph import breadth_first_order
-
-    n = transient.shape[0]
-    out = np.zeros(n, dtype=bool)
-    idx = np.flatnonzero(targets)
-    if idx.size == 0:
-        return out
-    reverse = (transient.T > 0).astype(np.int8).tocsr()
-    link = csr_matrix((np.ones(idx.size, np.int8), (np.zeros(idx.size, np.int64), idx)), shape=(1, n))
-    graph = bmat([[csr_matrix((1, 1), dtype=np.int8), link], [None, reverse]], format="csr")
-    order = breadth_first_order(graph, 0, directed=True, return_predecessors=False)
-    out[order[order > 0] - 1] = True
-    return out
-
-
 def policy_value(model: Model, greedy: np.ndarray, epsilon: float) -> tuple[float, Chain, np.ndarray]:
     """Exact value at the start of ``greedy`` executed with noise ``epsilon``.
 
@@ -359,7 +342,7 @@ def policy_value(model: Model, greedy: np.ndarray, epsilon: float) -> tuple[floa
     chain = policy_chain(model, epsilon_greedy(greedy, model.n_actions, epsilon))
     ends = reaches_absorption(chain, model.active)
     trapped = model.active & ~ends
-    finite = ends & ~_reaches(chain.transient, trapped)
+    finite = ends & ~reaching(chain.transient, trapped)
     if not finite[model.start]:
         return -math.inf, chain, finite
     v, _ = solve_transient(chain, chain.reward, finite)

@@ -312,6 +312,13 @@ def write_gpx(routes, path, *, alt_m: float | None = None, time=None, name: str 
 # ----------------------------------------------------------------------------- files
 
 
+def process_umask() -> int:
+    """The process umask (read by setting it and putting it back)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_output(path):
     """Yield a temporary path beside ``path``; rename it into place only on success.
@@ -325,9 +332,7 @@ def atomic_output(path):
         raise RunFolderError(f"{path}: folder {folder} does not exist")
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix or ".tmp", dir=folder)
     os.close(fd)
-    mask = os.umask(0o022)
-    os.umask(mask)
-    os.chmod(tmp, 0o666 & ~mask)
+    os.chmod(tmp, 0o666 & ~process_umask())
     try:
         yield Path(tmp)
         os.replace(tmp, path)

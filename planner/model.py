@@ -182,13 +182,6 @@ def resolve_penalties(grid: Grid, dynamics: Dynamics) -> tuple[np.ndarray, float
     return penalties, float(base), notes
 
 
-def max_outcomes_per_action(grid: Grid, dynamics: Dynamics) -> int:
-    """Upper bound on distinct outcomes of one (state, action) before merging."""
-    ptr = drift_tables(grid, dynamics.drift_scale)[0]
-    support = int(np.diff(ptr).max())
-    return (3 + (1 if dynamics.stall > 0 else 0)) * support
-
-
 def estimate_bytes(grid: Grid, dynamics: Dynamics) -> int:
     """Upper estimate of the model's memory, computed before building it."""
     ptr = drift_tables(grid, dynamics.drift_scale)[0]
@@ -461,6 +454,25 @@ def epsilon_greedy(greedy_action: np.ndarray, n_actions: int, epsilon: float) ->
 PRACTICALLY_FOREVER_MOVES = 1e9
 
 
+def reaching(transient, targets: np.ndarray) -> np.ndarray:
+    """States from which some state in ``targets`` can be reached through ``transient``
+    (the targets included): one walk of the reversed graph from a super-source."""
+    from scipy.sparse import bmat, csr_matrix
+    from scipy.sparse.csgraph import breadth_first_order
+
+    n = transient.shape[0]
+    out = np.zeros(n, dtype=bool)
+    idx = np.flatnonzero(targets)
+    if idx.size == 0:
+        return out
+    reverse = (transient.T > 0).astype(np.int8).tocsr()
+    link = csr_matrix((np.ones(idx.size, np.int8), (np.zeros(idx.size, np.int64), idx)), shape=(1, n))
+    graph = bmat([[csr_matrix((1, 1), dtype=np.int8), link], [None, reverse]], format="csr")
+    order = breadth_first_order(graph, 0, directed=True, return_predecessors=False)
+    out[order[order > 0] - 1] = True
+    return out
+
+
 def reaches_absorption(chain: Chain, active: np.ndarray) -> np.ndarray:
     """Which active states end the run, in practice, under the chain (bool ``(n_states,)``).
 
@@ -470,23 +482,8 @@ def reaches_absorption(chain: Chain, active: np.ndarray) -> np.ndarray:
     ``PRACTICALLY_FOREVER_MOVES`` moves on average (near-closed loops whose escape
     needs a long run of unlikely slips) count as trapped too.
     """
-    from scipy.sparse.csgraph import breadth_first_order
-
-    n = chain.transient.shape[0]
     exits = np.asarray(chain.absorb.sum(axis=1)).ravel() > 0
-    reached = np.zeros(n, dtype=bool)
-    sources = np.flatnonzero(exits & active)
-    if sources.size == 0:
-        return reached
-    # Add a super-source linked to every exit state, then walk the reversed graph.
-    from scipy.sparse import bmat, csr_matrix
-
-    reverse = (chain.transient.T > 0).astype(np.int8).tocsr()
-    link = csr_matrix((np.ones(sources.size, dtype=np.int8), (np.zeros(sources.size, dtype=np.int64), sources)),
-                      shape=(1, n))
-    graph = bmat([[csr_matrix((1, 1), dtype=np.int8), link], [None, reverse]], format="csr")
-    order = breadth_first_order(graph, 0, directed=True, return_predecessors=False)
-    reached[order[order > 0] - 1] = True
+    reached = reaching(chain.transient, exits & active)
     reached &= active
     moves, _ = solve_transient(chain, reached.astype(float), reached, check=False)
     slow = reached & ~(moves < PRACTICALLY_FOREVER_MOVES)

@@ -246,14 +246,10 @@ def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Pat
     return path
 
 
-def _route_xy(grid: Grid, route) -> np.ndarray:
-    return np.asarray(route.path_m, dtype=float)
-
-
 def draw_routes(ax, grid: Grid, routes: dict, *, waypoints: bool = True):
     for name, route in routes.items():
         look = style.POLICY[name]
-        xy = _route_xy(grid, route)
+        xy = np.asarray(route.path_m, dtype=float)
         ax.plot(xy[:, 0], xy[:, 1], color=look["color"], ls=look["linestyle"], lw=2.2, zorder=7,
                 label=f"{look['label']}: {route.length_m:.0f} m")
         if waypoints and route.waypoints:

@@ -509,7 +509,8 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
 def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: Sequence[float] = DEFAULT_NOISES,
                 drift_scales: Sequence[float] = DEFAULT_DRIFT_SCALES, budget: int | None = None,
                 rollouts: int = 0, seed: np.random.SeedSequence | int | None = None,
-                max_rollout_steps: int = DEFAULT_MAX_ROLLOUT_STEPS, flag_z: float = Z95) -> list[RiskRow]:
+                max_rollout_steps: int = DEFAULT_MAX_ROLLOUT_STEPS, flag_z: float = Z95,
+                model: Model | None = None) -> list[RiskRow]:
     """The risk table over drift scales, policies and noise levels.
 
     The model is rebuilt once per drift scale (``dataclasses.replace(dynamics,
@@ -527,6 +528,8 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
     noises, drift_scales : the levels to tabulate.
     budget, rollouts, max_rollout_steps, flag_z : as in :func:`evaluate`.
     seed : root of the rollouts' randomness; required when ``rollouts > 0``.
+    model : an already built model of ``grid``; reused for the drift scale whose
+        dynamics it was built with instead of being built again.
 
     Returns
     -------
@@ -540,7 +543,8 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
     rows = []
     k = 0
     for scale in drift_scales:
-        model = build_model(grid, replace(dynamics, drift_scale=float(scale)))
+        wanted = replace(dynamics, drift_scale=float(scale))
+        scaled = model if model is not None and model.dynamics == wanted else build_model(grid, wanted)
         for name, policy in policies.items():
             for eps in noises:
                 rng = None
@@ -548,7 +552,7 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
                     child = np.random.SeedSequence(root.entropy, spawn_key=tuple(root.spawn_key) + (k,),
                                                    pool_size=root.pool_size)
                     rng = np.random.default_rng(child)
-                rows.append(evaluate(model, policy, noise=float(eps), name=name, budget=budget, rollouts=rollouts,
+                rows.append(evaluate(scaled, policy, noise=float(eps), name=name, budget=budget, rollouts=rollouts,
                                      rng=rng, max_rollout_steps=max_rollout_steps, hazards=grid.hazards,
                                      flag_z=flag_z))
                 k += 1
@@ -556,6 +560,14 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
 
 
 # ----------------------------------------------------------------------------- Monte Carlo
+
+
+def find_row(rows: Iterable[RiskRow], policy: str, noise: float, drift_scale: float) -> RiskRow | None:
+    """The row of ``policy`` at ``noise`` and ``drift_scale`` (compared with round-off slack), if any."""
+    for row in rows:
+        if row.policy == policy and math.isclose(row.noise, noise) and math.isclose(row.drift_scale, drift_scale):
+            return row
+    return None
 
 
 def table_flag_z(n_checks: int, level: float = 0.95) -> float:

@@ -26,6 +26,7 @@ import numpy as np
 
 from planner import __version__
 from planner.errors import Interrupted, RunFolderError, SettingsError
+from planner.export import process_umask
 
 #: What the manifest says it is; a run folder without it is refused.
 RUN_FORMAT = "yardplan-run"
@@ -72,7 +73,7 @@ def atomic_folder(path, *, force: bool = False):
     """
     path, parent = check_out(path, force=force)
     tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.partial-", dir=parent))
-    os.chmod(tmp, 0o777 & ~_umask())
+    os.chmod(tmp, 0o777 & ~process_umask())
     try:
         yield tmp
         if path.exists():
@@ -103,13 +104,6 @@ def stop_on_sigterm():
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
-
-
-def _umask() -> int:
-    """The process umask (read by setting and restoring it)."""
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
 
 
 def _main_thread() -> bool:
@@ -271,10 +265,26 @@ class PlanResult:
     visited: np.ndarray
 
 
-def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None) -> PlanResult:
-    """Run every stage of ``plan`` in memory (no files written)."""
+def check_drift_scales(grid, option: str, scales) -> None:
+    """Refuse, naming ``option``, any drift scale that would push a vehicle across the whole grid."""
+    from planner.grid import drift_tables
+
+    for scale in scales:
+        try:
+            drift_tables(grid, scale)
+        except SettingsError as err:
+            raise SettingsError(f"{option} {scale:g}: {err}") from err
+
+
+def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None, *, site=None,
+                 grid=None) -> PlanResult:
+    """Run every stage of ``plan`` in memory (no files written).
+
+    ``site`` and ``grid``, when the caller has already loaded and rasterised
+    ``site_path`` with these settings, are used instead of doing it again.
+    """
     from planner.exact import convergence_report, occupancy, on_policy_q, optimal_q, policy_value
-    from planner.grid import cost_to_goal, drift_tables, rasterise
+    from planner.grid import cost_to_goal, rasterise
     from planner.learn import greedy_actions, train
     from planner.model import build_model
     from planner.route import nominal_path
@@ -283,12 +293,14 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     progress = progress or Progress()
     timings = {}
     t = time.perf_counter()
-    site = load_site(site_path, crs=settings.crs, fix=settings.fix, max_bytes=settings.max_bytes)
-    grid = rasterise(site, settings.grid)
+    if site is None:
+        site = load_site(site_path, crs=settings.crs, fix=settings.fix, max_bytes=settings.max_bytes)
+    if grid is None:
+        grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
     # Every drift scale of the risk table must make a model: find out before training.
-    for scale in set(settings.drift_scales) | {settings.dynamics.drift_scale}:
-        drift_tables(grid, scale)
+    check_drift_scales(grid, "--drift-scale", (settings.dynamics.drift_scale,))
+    check_drift_scales(grid, "--drift-scales", settings.drift_scales)
     model = build_model(grid, settings.dynamics)
     timings["model_s"] = time.perf_counter() - t
     progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
@@ -356,7 +368,7 @@ def _risk(site, grid, settings, model, greedy, exact, seed, progress) -> list:
              f"{len(settings.drift_scales)} drift scales, {settings.rollouts:,} rollouts per row")
     return sensitivity(grid, settings.dynamics, policies, noises=settings.noises,
                        drift_scales=settings.drift_scales, budget=settings.budget, rollouts=settings.rollouts,
-                       seed=seed, flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales,
+                       seed=seed, model=model, flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales,
                                                  settings.budget))
 
 
@@ -583,27 +595,34 @@ def _load_policies(path: Path) -> dict:
     return arrays
 
 
-def rebuild(run: Run, *, drift_scale: float | None = None):
-    """Site, grid and model of a run, rebuilt from its site copy and recorded settings."""
-    from planner.grid import rasterise
-    from planner.model import build_model
+def rebuild_grid(run: Run):
+    """Site and grid of a run, rebuilt from its site copy and recorded settings, with the
+    run's policy arrays checked against the grid (shape and action range)."""
+    from planner.grid import moves_for, rasterise
     from planner.site import load_site
 
     s = run.settings
     site = load_site(run.site_path, crs=s.crs, fix=s.fix, max_bytes=s.max_bytes)
     grid = rasterise(site, s.grid)
-    dynamics = s.dynamics if drift_scale is None else dataclasses.replace(s.dynamics, drift_scale=drift_scale)
-    model = build_model(grid, dynamics)
+    n_states, n_actions = grid.n_cells, len(moves_for(s.dynamics.n_actions))
     for key in POLICY_ARRAYS:
         arr = run.arrays[key]
-        expected = (model.n_states,) if key.startswith("greedy") else (model.n_states, model.n_actions)
+        expected = (n_states,) if key.startswith("greedy") else (n_states, n_actions)
         if arr.shape != expected:
             raise RunFolderError(f"{run.folder}: policy array {key!r} has shape {arr.shape}, expected {expected}")
     for key in ("greedy_cautious", "greedy_shortest"):
         arr = run.arrays[key]
-        if arr.size and (arr.min() < 0 or arr.max() >= model.n_actions):
-            raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{model.n_actions - 1}")
-    return site, grid, model
+        if arr.size and (arr.min() < 0 or arr.max() >= n_actions):
+            raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{n_actions - 1}")
+    return site, grid
+
+
+def rebuild(run: Run):
+    """Site, grid and model of a run (see :func:`rebuild_grid`)."""
+    from planner.model import build_model
+
+    site, grid = rebuild_grid(run)
+    return site, grid, build_model(grid, run.settings.dynamics)
 
 
 def run_routes(run: Run, site, grid, model) -> dict:
@@ -626,6 +645,7 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, s
     """The risk table of a run's policies at the given settings (model rebuilt per drift scale)."""
     from planner.risk import sensitivity
 
+    check_drift_scales(grid, "--drift-scale", drift_scales)
     chosen = {}
     for name in policies:
         if name not in RISK_POLICIES:

@@ -100,3 +100,19 @@ def plan_small_site(root, *args):
     out = root / "run"
     result = CliRunner().invoke(cli, ["plan", str(site), "--out", str(out), *[str(a) for a in args]])
     return site, out, result
+
+
+def hazard_free_route():
+    """The small test site with its hazards removed, and its cheapest route at 5 m cells
+    (drift off): (site, grid, model, route)."""
+    from planner.grid import GridSpec, descend, rasterise
+    from planner.model import Dynamics, build_model
+    from planner.route import build_route, nominal_path
+    from planner.site import site_from_geojson
+
+    data = small_site_dict()
+    data["features"] = [f for f in data["features"] if f["properties"]["role"] != "hazard"]
+    site = site_from_geojson(data)
+    grid = rasterise(site, GridSpec(5.0))
+    model = build_model(grid, Dynamics(drift_scale=0.0))
+    return site, grid, model, build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)

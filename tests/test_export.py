@@ -11,7 +11,7 @@ from datetime import UTC, datetime
 
 import numpy as np
 import pytest
-from conftest import small_site_dict
+from conftest import hazard_free_route, small_site_dict
 from numpy.testing import assert_allclose
 
 from planner.errors import RunFolderError, SettingsError
@@ -145,12 +145,7 @@ def test_geojson_altitude_is_a_third_coordinate(planned, tmp_path):
 
 
 def test_geojson_without_hazards_writes_null_clearance(tmp_path):
-    data = small_site_dict()
-    data["features"] = [f for f in data["features"] if f["properties"]["role"] != "hazard"]
-    site = site_from_geojson(data)
-    grid = rasterise(site, GridSpec(5.0))
-    model = build_model(grid, Dynamics(drift_scale=0.0))
-    route = build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)
+    site, grid, model, route = hazard_free_route()
     text = write_geojson(route, tmp_path / "r.geojson", site=site).read_text()
     obj = json.loads(text, parse_constant=_refuse)  # no Infinity or NaN in the file
     for feature in obj["features"]:

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 import shapely
-from conftest import ORIGIN_LAT, ORIGIN_LON, small_site_dict
+from conftest import ORIGIN_LAT, ORIGIN_LON, hazard_free_route, small_site_dict
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
@@ -246,12 +246,7 @@ def test_route_that_ends_in_a_hazard_stops_before_it(planned):
 
 
 def test_route_without_hazards_has_infinite_clearance():
-    data = small_site_dict()
-    data["features"] = [f for f in data["features"] if f["properties"]["role"] != "hazard"]
-    site = site_from_geojson(data)
-    grid = rasterise(site, GridSpec(5.0))
-    model = build_model(grid, Dynamics(drift_scale=0.0))
-    route = build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)
+    site, grid, model, route = hazard_free_route()
     assert route.reached_goal
     assert math.isinf(route.min_clearance_m) and route.min_clearance_hazard is None
     assert all(math.isinf(w.clearance_m) and w.nearest_hazard is None for w in route.waypoints)

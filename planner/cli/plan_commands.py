@@ -9,7 +9,7 @@ import click
 from planner.cli import cli
 from planner.cli.options import dynamics_options, grid_options, site_argument, site_options
 from planner.cli.site_commands import load_site_and_spec, make_dynamics
-from planner.errors import Interrupted, SettingsError
+from planner.errors import Interrupted
 
 
 def float_list(text: str, option: str) -> tuple[float, ...]:
@@ -93,7 +93,7 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
 
     For simulation and review only: not approved for field operation.
     """
-    from planner.grid import drift_tables, rasterise
+    from planner.grid import rasterise
     from planner.learn import LearnSettings
     from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, stop_on_sigterm, write_run
 
@@ -112,18 +112,11 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn, noises=float_list(noises, "--noise"),
                             drift_scales=float_list(drift_scales, "--drift-scales"), budget=budget,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m)
-    # A drift larger than the grid is refused here, before any training.
-    for option, scales in (("--drift-scale", (dynamics.drift_scale,)), ("--drift-scales", settings.drift_scales)):
-        for scale in scales:
-            try:
-                drift_tables(labelled, scale)
-            except SettingsError as err:
-                raise SettingsError(f"{option} {scale:g}: {err}") from err
     show = not quiet and sys.stderr.isatty()
     progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
     with stop_on_sigterm():
         try:
-            result = compute_plan(site, settings, progress)
+            result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
         except KeyboardInterrupt as err:
             raise Interrupted(f"stopped while planning (before writing); nothing was written to {out}") from err
         write_run(result, settings, site, out, force=force, progress=progress)
@@ -131,21 +124,16 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
 
 
 def format_plan_summary(result, settings, out) -> str:
+    from planner.risk import find_row, format_prob
+
     eps = settings.learn.epsilon
     lines = [f"{result.site.name}: run folder {out} (for simulation and review only)"]
     for name in ("cautious", "shortest"):
         route, conv = result.routes[name], result.convergence[name]
-        row = next((r for r in result.risk_rows if r.policy == name and r.noise == eps and r.drift_scale == 1.0),
-                   None)
-        risk = f", P(incident) {row_prob(row)} at noise {eps:g}" if row is not None else ""
+        row = find_row(result.risk_rows, name, eps, 1.0)
+        risk = f", P(incident) {format_prob(row.p_incident)} at noise {eps:g}" if row is not None else ""
         end = "reaches the goal" if route.reached_goal else f"ENDS AT {route.end_event.upper()}"
         lines.append(f"  {name:9s} {route.length_m:7.1f} m ({route.waypoint_length_m:.1f} m by waypoints), "
                      f"{route.n_moves:3d} moves, {end}{risk}")
         lines.append(f"            {conv.message}")
     return "\n".join(lines)
-
-
-def row_prob(row) -> str:
-    from planner.risk import format_prob
-
-    return format_prob(row.p_incident)

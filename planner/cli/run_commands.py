@@ -8,7 +8,6 @@ import click
 
 from planner.cli import cli
 from planner.cli.plan_commands import float_list
-from planner.errors import SettingsError
 
 run_argument = click.argument("run", type=click.Path(path_type=str))
 
@@ -36,9 +35,8 @@ def risk(run, fmt, noises, drift_scales, budget, rollouts, policies, seed):
     drift scale, with Monte Carlo estimates and Wilson 95% intervals beside them; a '!'
     marks a figure outside its interval.
     """
-    from planner.grid import drift_tables
     from planner.risk import format_table
-    from planner.runfolder import load_run, rebuild, run_risk
+    from planner.runfolder import load_run, rebuild_grid, run_risk
 
     loaded = load_run(run)
     s = loaded.settings
@@ -56,12 +54,7 @@ def risk(run, fmt, noises, drift_scales, budget, rollouts, policies, seed):
     if n_rollouts < 0:
         raise click.BadParameter(f"{n_rollouts} is negative", param_hint="--rollouts")
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
-    _, grid, _ = rebuild(loaded)
-    for m in scales:
-        try:
-            drift_tables(grid, m)
-        except SettingsError as err:
-            raise SettingsError(f"--drift-scale {m:g}: {err}") from err
+    _, grid = rebuild_grid(loaded)
     rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget=budget, rollouts=n_rollouts,
                     seed=seed, policies=names)
     click.echo(format_table(rows, fmt), nl=False)
