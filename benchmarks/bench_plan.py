@@ -1,4 +1,4 @@
-"""Benchmark: wall time of ``yardplan plan`` on each demo site, cold and warm.
+"""Benchmark: wall time of ``veerwise plan`` on each demo site, cold and warm.
 
 Run by hand (not part of the test suite)::
 
@@ -7,7 +7,7 @@ Run by hand (not part of the test suite)::
     python3 benchmarks/bench_plan.py maps/ground-yard.geojson
 
 Each run is the command line as a user types it, in a subprocess:
-``yardplan plan SITE --out RUN --seed 1 --quiet`` with every other setting at its
+``veerwise plan SITE --out RUN --seed 1 --quiet`` with every other setting at its
 default. The numba compilation cache is pointed at a benchmark-owned folder with
 ``NUMBA_CACHE_DIR`` (numba uses that folder instead of ``__pycache__`` beside the
 sources for every ``cache=True`` kernel), so that:
@@ -26,7 +26,7 @@ run recorded in ``manifest.json`` (``timings_s``: model, learn, exact, risk; "ot
 is the rest of the wall time: interpreter start and imports, routes, occupancy,
 figures, briefing, writing the folder), whether both policies converged, and the
 1-minute load average when the run started (other work on the machine slows it).
-After the warm runs, ``yardplan risk RUN`` is timed with all four policies of the
+After the warm runs, ``veerwise risk RUN`` is timed with all four policies of the
 default table (the two learned policies and the two exact references, 4 noise levels x
 3 drift scales, the run's 20,000 rollouts per row). Best and spread are over the
 repeats.
@@ -52,9 +52,9 @@ TARGET_RISK_S = 10.0
 ALL_POLICIES = "cautious,shortest,exact on-policy,exact optimal"
 
 
-def yardplan_command() -> list[str]:
-    """The installed ``yardplan`` script, or the same entry point through this interpreter."""
-    found = shutil.which("yardplan")
+def veerwise_command() -> list[str]:
+    """The installed ``veerwise`` script, or the same entry point through this interpreter."""
+    found = shutil.which("veerwise")
     if found:
         return [found]
     return [sys.executable, "-c", "import sys; from planner.cli import cli; sys.exit(cli())"]
@@ -85,7 +85,7 @@ def plan_once(site: str, cache: Path, work: Path, tag: str, seed: int) -> dict:
     run = work / f"run-{tag}"
     if run.exists():
         shutil.rmtree(run)
-    argv = yardplan_command() + ["plan", site, "--out", str(run), "--seed", str(seed), "--quiet"]
+    argv = veerwise_command() + ["plan", site, "--out", str(run), "--seed", str(seed), "--quiet"]
     result = timed(argv, env, work / f"{tag}.log")
     manifest = json.loads((run / "manifest.json").read_text())
     timings = manifest["timings_s"]
@@ -100,7 +100,7 @@ def plan_once(site: str, cache: Path, work: Path, tag: str, seed: int) -> dict:
 
 def risk_once(run: str, cache: Path, work: Path, tag: str) -> dict:
     env = dict(os.environ, NUMBA_CACHE_DIR=str(cache))
-    argv = yardplan_command() + ["risk", run, "--policy", ALL_POLICIES, "--format", "json"]
+    argv = veerwise_command() + ["risk", run, "--policy", ALL_POLICIES, "--format", "json"]
     return timed(argv, env, work / f"{tag}.log")
 
 
@@ -122,16 +122,16 @@ def main(argv=None) -> int:
     parser.add_argument("sites", nargs="*", default=list(DEMO_SITES), help="site files (default: the demo sites)")
     parser.add_argument("--warm", type=int, default=3, help="warm-cache runs per site")
     parser.add_argument("--no-cold", action="store_true", help="skip the cold-cache run")
-    parser.add_argument("--risk", type=int, default=3, help="timed 'yardplan risk' runs per site (0: none)")
+    parser.add_argument("--risk", type=int, default=3, help="timed 'veerwise risk' runs per site (0: none)")
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--json", type=Path, help="also write every measurement to this JSON file")
     args = parser.parse_args(argv)
 
-    print(f"{os.cpu_count()} cores; command: {' '.join(yardplan_command())} plan SITE --out RUN "
+    print(f"{os.cpu_count()} cores; command: {' '.join(veerwise_command())} plan SITE --out RUN "
           f"--seed {args.seed} --quiet")
     record = {}
     ok = True
-    with tempfile.TemporaryDirectory(prefix="yardplan-bench-") as tmp:
+    with tempfile.TemporaryDirectory(prefix="veerwise-bench-") as tmp:
         tmp = Path(tmp)
         for i, site in enumerate(args.sites):
             cache = tmp / f"numba-cache-{i}"
@@ -174,7 +174,7 @@ def main(argv=None) -> int:
                     walls = [r["wall_s"] for r in runs["risk"]]
                     met = min(walls) < TARGET_RISK_S
                     ok &= met
-                    print(f"  yardplan risk RUN --policy '{ALL_POLICIES}': wall {spread(walls)} s, peak "
+                    print(f"  veerwise risk RUN --policy '{ALL_POLICIES}': wall {spread(walls)} s, peak "
                           f"{max(r['peak_mib'] for r in runs['risk']):.0f} MiB; target (< {TARGET_RISK_S:.0f} s): "
                           f"{'met' if met else 'MISSED'}")
             record[site] = runs

@@ -4,7 +4,7 @@ No site file: the yard is a GeoJSON FeatureCollection built as a Python dict (fr
 metres around a reference point, turned into lon/lat), so a script can generate
 variants of a yard (move the pond, widen the gust lane) and plan each one. The
 script runs the stages one by one - site, grid, model, learners, exact references,
-risk, routes, files - which is what ``yardplan plan`` does for a file.
+risk, routes, files - which is what ``veerwise plan`` does for a file.
 
     python3 examples/site_in_code.py --out yard-routes
 

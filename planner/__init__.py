@@ -1,4 +1,4 @@
-"""yardplan: cautious and shortest routes across a test yard, with their hazard risk.
+"""veerwise: cautious and shortest routes across a test yard, with their hazard risk.
 
 Stages, in data-flow order: ``site`` -> ``grid`` -> ``model`` -> ``learn`` / ``exact``
 -> ``risk`` -> ``route`` -> ``export`` / ``plots`` / ``brief``. The command line lives

@@ -1,4 +1,4 @@
-"""The one exception hierarchy of yardplan.
+"""The one exception hierarchy of veerwise.
 
 Every error a user can cause is a ``PlannerError``; the command line turns it into
 one line on stderr and exit code 2. Each subclass also inherits the builtin that
@@ -9,7 +9,7 @@ from __future__ import annotations
 
 
 class PlannerError(Exception):
-    """Root of every error yardplan raises on purpose."""
+    """Root of every error veerwise raises on purpose."""
 
 
 class SiteError(PlannerError, ValueError):
@@ -37,7 +37,7 @@ class Interrupted(PlannerError):
 
 
 class PlannerWarning(UserWarning):
-    """Root of yardplan's warnings."""
+    """Root of veerwise's warnings."""
 
 
 class SiteWarning(PlannerWarning):

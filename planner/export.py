@@ -279,7 +279,7 @@ def gpx_text(routes, *, alt_m: float | None = None, time=None, name: str | None 
     lons = [_lon_normalised(w.lon) for r in routes for w in r.waypoints]
     lines = [
         '<?xml version="1.0" encoding="UTF-8"?>',
-        f'<gpx xmlns="{GPX_NAMESPACE}" version="1.1" creator="yardplan">',
+        f'<gpx xmlns="{GPX_NAMESPACE}" version="1.1" creator="veerwise">',
         " <metadata>",
     ]
     if name is not None:

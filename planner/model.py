@@ -774,7 +774,7 @@ __all__ = [
 
 
 def site_summary(site, spec, dynamics: Dynamics = Dynamics()) -> dict:
-    """Everything ``yardplan check`` reports, as plain data (JSON-ready).
+    """Everything ``veerwise check`` reports, as plain data (JSON-ready).
 
     Rasterises the site at ``spec`` (refusing grids over budget) and estimates the
     model's memory without building it.

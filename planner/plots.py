@@ -1,4 +1,4 @@
-"""Figures: every picture yardplan draws, with matplotlib's Agg backend.
+"""Figures: every picture veerwise draws, with matplotlib's Agg backend.
 
 Each function takes finished results and a path, draws one PNG, and returns the path.
 Colours and symbols come from ``planner.style``.
@@ -30,7 +30,7 @@ def _styled(draw):
 
     @functools.wraps(draw)
     def wrapper(*args, **kwargs):
-        with plt.rc_context({"font.size": style.FONT_SIZE, "svg.hashsalt": "yardplan"}):
+        with plt.rc_context({"font.size": style.FONT_SIZE, "svg.hashsalt": "veerwise"}):
             return draw(*args, **kwargs)
 
     return wrapper

@@ -29,7 +29,7 @@ from planner.errors import Interrupted, RunFolderError, SettingsError
 from planner.export import process_umask
 
 #: What the manifest says it is; a run folder without it is refused.
-RUN_FORMAT = "yardplan-run"
+RUN_FORMAT = "veerwise-run"
 #: Version of the run-folder layout; newer folders are refused by older code.
 RUN_FORMAT_VERSION = 1
 #: Arrays stored in ``policies.npz`` and their dtypes (checked on load).
@@ -196,12 +196,12 @@ def settings_from_record(record: dict) -> PlanSettings:
 
 
 def versions() -> dict:
-    """Versions of Python, yardplan and every library a result depends on."""
+    """Versions of Python, veerwise and every library a result depends on."""
     from importlib.metadata import version
 
     import pyproj
 
-    out = {"yardplan": __version__, "python": platform.python_version()}
+    out = {"veerwise": __version__, "python": platform.python_version()}
     for name in ("numpy", "scipy", "shapely", "pyproj", "numba", "matplotlib", "click"):
         out[name] = version(name)
     out["proj"] = pyproj.proj_version_str
@@ -542,7 +542,7 @@ def load_run(folder) -> Run:
         raise RunFolderError(f"{folder}: no such run folder")
     path = folder / "manifest.json"
     if not path.is_file():
-        raise RunFolderError(f"{folder}: has no manifest.json; not a complete yardplan run folder")
+        raise RunFolderError(f"{folder}: has no manifest.json; not a complete veerwise run folder")
     try:
         manifest = json.loads(path.read_text())
     except (UnicodeDecodeError, json.JSONDecodeError) as err:
@@ -557,11 +557,11 @@ def load_run(folder) -> Run:
     if not (isinstance(entropy, str) and entropy.isdigit()):
         raise RunFolderError(f"{path}: manifest seeds.entropy is missing or not a whole number")
     if manifest["format"] != RUN_FORMAT:
-        raise RunFolderError(f"{path}: format {manifest['format']!r} is not a yardplan run")
+        raise RunFolderError(f"{path}: format {manifest['format']!r} is not a veerwise run")
     if manifest["format_version"] > RUN_FORMAT_VERSION:
         raise RunFolderError(
-            f"{path}: run folder format {manifest['format_version']} is newer than this yardplan understands "
-            f"({RUN_FORMAT_VERSION}); upgrade yardplan"
+            f"{path}: run folder format {manifest['format_version']} is newer than this veerwise understands "
+            f"({RUN_FORMAT_VERSION}); upgrade veerwise"
         )
     for name, digest in manifest["files"].items():
         if Path(name).name != name or name.startswith("."):
@@ -633,7 +633,7 @@ def run_routes(run: Run, site, grid, model) -> dict:
             for name in POLICIES}
 
 
-#: Policies ``yardplan risk`` can tabulate, and the arrays they come from.
+#: Policies ``veerwise risk`` can tabulate, and the arrays they come from.
 RISK_POLICIES = {
     "cautious": "greedy_cautious", "shortest": "greedy_shortest",
     "exact on-policy": "q_exact_on_policy", "exact optimal": "q_exact_optimal",

@@ -1,4 +1,4 @@
-"""yardplan's own colours, symbols and names for everything drawn, kept in one place."""
+"""veerwise's own colours, symbols and names for everything drawn, kept in one place."""
 
 from __future__ import annotations
 
@@ -38,4 +38,4 @@ FIGURE_DPI = 130
 FONT_SIZE = 9
 
 #: Printed on every figure: the outputs are for simulation and review only.
-FIGURE_NOTICE = "yardplan - for simulation and review only"
+FIGURE_NOTICE = "veerwise - for simulation and review only"

@@ -85,7 +85,7 @@ def text_map_grid(lines, hazard_name="hole"):
 
 
 def plan_small_site(root, *args):
-    """Run ``yardplan plan`` on the small test site written into ``root``.
+    """Run ``veerwise plan`` on the small test site written into ``root``.
 
     Returns (site path, run folder, CliRunner result).
     """

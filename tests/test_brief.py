@@ -47,7 +47,7 @@ MIN_PAGE_CHARS = 200
 
 @pytest.fixture(scope="module")
 def planned(tmp_path_factory):
-    """The small test site planned by ``yardplan plan``: (run folder, summary printed)."""
+    """The small test site planned by ``veerwise plan``: (run folder, summary printed)."""
     _, out, result = plan_small_site(tmp_path_factory.mktemp("brief"), *PLAN_ARGS)
     assert result.exit_code == 0, result.output
     return out, result.output
@@ -55,7 +55,7 @@ def planned(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def inputs(planned):
-    """The briefing's inputs read back from the run folder (as ``yardplan brief`` does)."""
+    """The briefing's inputs read back from the run folder (as ``veerwise brief`` does)."""
     run = load_run(planned[0])
     site, grid, model = rebuild(run)
     rows = [RiskRow.from_dict(r) for r in json.loads((run.folder / "risk.json").read_text())]
@@ -314,7 +314,7 @@ def _check_printed(pdf: dict, inputs, summary, footer: str) -> None:
 def test_pdf_carries_the_briefing(planned, inputs, summary, tmp_path):
     tools = _poppler("reading back brief.pdf")
     pdf = _read_pdf(tools, planned[0] / "brief.pdf", tmp_path / "images")
-    _check_printed(pdf, inputs, summary, f"yardplan briefing - {inputs.site.name} - for simulation and review only")
+    _check_printed(pdf, inputs, summary, f"veerwise briefing - {inputs.site.name} - for simulation and review only")
     assert f"page 1 of {pdf['pages']}" in pdf["text"]
 
 
@@ -355,4 +355,4 @@ def test_browser_prints_the_briefing(planned, inputs, summary, tmp_path):
     pdf = _read_pdf(tools, pdf_path, tmp_path / "images")
     images_in_html = sum(1 for tag, _ in _Page(_page_html(inputs)).tags if tag == "img")
     assert len(pdf["images"]) == images_in_html
-    _check_printed(pdf, inputs, summary, f"yardplan briefing - {inputs.site.name} - for simulation and review only")
+    _check_printed(pdf, inputs, summary, f"veerwise briefing - {inputs.site.name} - for simulation and review only")

@@ -1,4 +1,4 @@
-"""``yardplan plan`` as a user runs it, and the commands that read its run folder.
+"""``veerwise plan`` as a user runs it, and the commands that read its run folder.
 
 One small plan on the in-memory test site (50 x 30 cells of 2 m, few episodes) is
 shared by the module; every test reads it, and tests that change a run folder work on
@@ -107,7 +107,7 @@ def test_run_folder_holds_every_file_and_nothing_else(planned):
 def test_manifest_records_inputs_settings_seeds_versions_and_hashes(planned):
     site, out, _ = planned
     m = manifest(out)
-    assert m["format"] == "yardplan-run" and m["format_version"] == 1
+    assert m["format"] == "veerwise-run" and m["format_version"] == 1
     assert m["input"]["sha256"] == sha256(site)
     assert m["input"]["site_copy"] == "site.geojson"
     assert m["seeds"]["given"] == 5
@@ -123,7 +123,7 @@ def test_manifest_records_inputs_settings_seeds_versions_and_hashes(planned):
     assert m["versions"]["numpy"] == np.__version__
     assert m["versions"]["shapely"] == shapely.__version__
     assert m["versions"]["numba"] == numba.__version__
-    assert {"python", "yardplan", "scipy", "pyproj", "proj", "matplotlib", "click"} <= set(m["versions"])
+    assert {"python", "veerwise", "scipy", "pyproj", "proj", "matplotlib", "click"} <= set(m["versions"])
     # A hash for every other file, each matching the file's bytes.
     assert set(m["files"]) == RUN_FILES - {"manifest.json"}
     for name, digest in m["files"].items():

@@ -1,4 +1,4 @@
-"""``yardplan check`` and ``yardplan grid`` as a user runs them: output, files, bad input."""
+"""``veerwise check`` and ``veerwise grid`` as a user runs them: output, files, bad input."""
 
 from __future__ import annotations
 
@@ -116,7 +116,7 @@ def test_bad_site_is_one_line_exit_2_nothing_written(tmp_path, label, content, m
     assert result.exit_code == 2, result.output
     lines = result.output.strip().splitlines()
     assert len(lines) == 1, result.output
-    assert lines[0].startswith("yardplan: error: ")
+    assert lines[0].startswith("veerwise: error: ")
     assert message in lines[0]
     assert "Traceback" not in result.output
     assert sorted(p.name for p in tmp_path.iterdir()) == ["site.geojson"]

@@ -38,7 +38,7 @@ WINDY_START, WINDY_GOAL = (3, 0), (3, 7)
 
 
 def windy_model(n_actions: int):
-    """Example 6.5 as a yardplan model: one drift zone per wind strength, pushing north.
+    """Example 6.5 as a veerwise model: one drift zone per wind strength, pushing north.
 
     The wind of the column a move starts in acts on that move (the drift of the start
     cell), with no spread and chance 1; the edges are walls.

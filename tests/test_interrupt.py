@@ -1,4 +1,4 @@
-"""Stopping ``yardplan plan`` in a real process: nothing half-written, the previous state untouched.
+"""Stopping ``veerwise plan`` in a real process: nothing half-written, the previous state untouched.
 
 Each test starts ``plan`` in a subprocess with its stderr on a pseudo-terminal (so the
 progress display is on, and tells us where the run is), waits until the run is in the
@@ -25,7 +25,7 @@ from conftest import small_site_dict
 
 pytestmark = pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals and pseudo-terminals")
 
-#: How the console script starts the command line (``yardplan`` itself may not be on PATH).
+#: How the console script starts the command line (``veerwise`` itself may not be on PATH).
 ENTRY = "from planner.cli import cli; cli()"
 #: Generous upper bounds (seconds); a healthy run is far inside them.
 START_TIMEOUT_S = 240.0
@@ -43,7 +43,7 @@ def snapshot(folder: Path) -> dict:
 
 
 class PlanProcess:
-    """``yardplan plan`` in a subprocess, its stderr read from a pseudo-terminal."""
+    """``veerwise plan`` in a subprocess, its stderr read from a pseudo-terminal."""
 
     def __init__(self, args, cwd: Path):
         master, slave = pty.openpty()
@@ -116,11 +116,11 @@ def assert_stopped(code, stdout, stderr):
     assert code == 130, stderr
     assert stdout == ""
     assert "Traceback" not in stderr
-    ours = [line for line in stderr.splitlines() if line.startswith("yardplan:")]
+    ours = [line for line in stderr.splitlines() if line.startswith("veerwise:")]
     assert len(ours) == 1, stderr
     assert "stopped" in ours[0] and "nothing was written" in ours[0], ours[0]
     # Everything else on stderr is the progress display ("[  1.2 s] ...") or blank.
-    others = [line for line in stderr.splitlines() if line.strip() and not line.startswith("yardplan:")]
+    others = [line for line in stderr.splitlines() if line.strip() and not line.startswith("veerwise:")]
     assert all(line.startswith("[") for line in others), stderr
 
 
@@ -149,7 +149,7 @@ def test_stopped_while_writing_leaves_no_trace(tmp_path, site, signum):
 def _previous_run(folder: Path) -> None:
     """A stand-in for an earlier run folder: some files, one of them large, and a subfolder."""
     folder.mkdir()
-    (folder / "manifest.json").write_text(json.dumps({"format": "yardplan-run", "note": "earlier run"}))
+    (folder / "manifest.json").write_text(json.dumps({"format": "veerwise-run", "note": "earlier run"}))
     (folder / "policies.npz").write_bytes(os.urandom(300_000))
     (folder / "notes").mkdir()
     (folder / "notes" / "review.txt").write_text("signed off 2026-11-30\n")

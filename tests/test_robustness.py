@@ -1,6 +1,6 @@
 """Bad input at the command line: one clear line, exit code 2, no traceback, nothing written.
 
-The tables below are the catalogue of what users do to yardplan: broken and hostile
+The tables below are the catalogue of what users do to veerwise: broken and hostile
 site files, options at and past their bounds, and damaged or tampered run folders.
 Every case asserts the same contract (see :func:`assert_refused`), plus that nothing
 was written beside the target. ``plan`` must refuse bad input before any heavy work:
@@ -40,14 +40,14 @@ def invoke(*args):
 
 
 def assert_refused(result, *fragments):
-    """Exit code 2, exactly one line on stderr starting 'yardplan: error:' that holds every fragment."""
+    """Exit code 2, exactly one line on stderr starting 'veerwise: error:' that holds every fragment."""
     assert "Traceback" not in result.output
     assert result.exception is None or isinstance(result.exception, SystemExit), repr(result.exception)
     assert result.exit_code == 2, result.output
     assert result.stdout == "", result.stdout
     lines = [line for line in result.stderr.splitlines() if line.strip()]
     assert len(lines) == 1, result.stderr
-    assert lines[0].startswith("yardplan: error: "), lines[0]
+    assert lines[0].startswith("veerwise: error: "), lines[0]
     for fragment in fragments:
         assert fragment in lines[0], f"{fragment!r} not in {lines[0]!r}"
     return lines[0]
@@ -306,7 +306,7 @@ def test_fix_repairs_a_self_intersecting_hazard_with_a_warning(tmp_path):
     assert result.exit_code == 0, result.output
     lines = [line for line in result.stderr.splitlines() if line.strip()]
     assert len(lines) == 1, result.stderr
-    assert lines[0].startswith("yardplan: warning: feature 3 ('Pond'): repaired an invalid polygon (Self-intersection")
+    assert lines[0].startswith("veerwise: warning: feature 3 ('Pond'): repaired an invalid polygon (Self-intersection")
     assert lines[0].endswith(") with --fix")
 
 
@@ -338,8 +338,8 @@ def test_overlapping_hazards_with_conflicting_ends_run_load_with_a_warning(tmp_p
     site = write_site(tmp_path / "site.geojson", site_text(_overlap_site))
     result = invoke("check", site, "--cell", "2")
     assert result.exit_code == 0, result.output
-    warnings = [line for line in result.stderr.splitlines() if line.startswith("yardplan: warning: ")]
-    assert warnings == ["yardplan: warning: feature 3 ('Pond') and feature 6 ('Mud') overlap with different "
+    warnings = [line for line in result.stderr.splitlines() if line.startswith("veerwise: warning: ")]
+    assert warnings == ["veerwise: warning: feature 3 ('Pond') and feature 6 ('Mud') overlap with different "
                         "ends_run; cells in the overlap end the run"]
     assert "Mud (run goes on" in result.stdout
     assert "Traceback" not in result.output
@@ -584,8 +584,8 @@ BAD_RUNS = [
     ("manifest without files", _set("files", delete=True), ["manifest key 'files' is missing"], None),
     ("manifest without settings", _set("settings", delete=True), ["manifest key 'settings' is missing"], None),
     ("manifest without seeds", _set("seeds", delete=True), ["manifest key 'seeds' is missing"], None),
-    ("another format", _set("format", value="other-tool"), ["is not a yardplan run"], None),
-    ("newer format version", _set("format_version", value=2), ["format 2 is newer", "upgrade yardplan"], None),
+    ("another format", _set("format", value="other-tool"), ["is not a veerwise run"], None),
+    ("newer format version", _set("format_version", value=2), ["format 2 is newer", "upgrade veerwise"], None),
     ("format version as text", _set("format_version", value="1"), ["format_version"], None),
     ("format version true", _set("format_version", value=True), ["format_version"], None),
     ("tampered policies", _flip_byte("policies.npz"), ["policies.npz does not match its hash"], None),

@@ -1,4 +1,4 @@
-"""The ``yardplan`` command line: a thin click layer over the stages.
+"""The ``veerwise`` command line: a thin click layer over the stages.
 
 Every command parses options, calls stage functions, writes files and prints. Our
 errors become one line on stderr and exit code 2 here, in one place.
@@ -20,7 +20,7 @@ EXIT_STOPPED = 130
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
-    click.echo(f"yardplan: warning: {message}", err=True)
+    click.echo(f"veerwise: warning: {message}", err=True)
 
 
 class _Group(click.Group):
@@ -30,20 +30,20 @@ class _Group(click.Group):
         previous = warnings.showwarning
         warnings.showwarning = _show_warning
         try:
-            result = super().main(args=args, prog_name=prog_name or "yardplan", complete_var=complete_var,
+            result = super().main(args=args, prog_name=prog_name or "veerwise", complete_var=complete_var,
                                   standalone_mode=False, **extra)
         except PlannerError as err:
-            click.echo(f"yardplan: error: {err}", err=True)
+            click.echo(f"veerwise: error: {err}", err=True)
             sys.exit(EXIT_STOPPED if isinstance(err, Interrupted) else EXIT_BAD_INPUT)
         except (click.exceptions.Abort, KeyboardInterrupt):
-            click.echo("yardplan: stopped; nothing was written", err=True)
+            click.echo("veerwise: stopped; nothing was written", err=True)
             sys.exit(EXIT_STOPPED)
         except click.UsageError as err:
             where = f"{err.ctx.command_path}: " if err.ctx is not None else ""
-            click.echo(f"yardplan: error: {where}{err.format_message()}", err=True)
+            click.echo(f"veerwise: error: {where}{err.format_message()}", err=True)
             sys.exit(EXIT_BAD_INPUT)
         except click.ClickException as err:
-            click.echo(f"yardplan: error: {err.format_message()}", err=True)
+            click.echo(f"veerwise: error: {err.format_message()}", err=True)
             sys.exit(err.exit_code or EXIT_BAD_INPUT)
         finally:
             warnings.showwarning = previous
@@ -51,7 +51,7 @@ class _Group(click.Group):
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
-@click.version_option(__version__, prog_name="yardplan")
+@click.version_option(__version__, prog_name="veerwise")
 def cli():
     """Plan cautious and shortest routes across a test yard and measure their hazard risk.
 

@@ -1,4 +1,4 @@
-"""``yardplan plan``: the main job, from a site file to a complete run folder."""
+"""``veerwise plan``: the main job, from a site file to a complete run folder."""
 
 from __future__ import annotations
 

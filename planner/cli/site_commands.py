@@ -1,4 +1,4 @@
-"""``yardplan check`` and ``yardplan grid``: look at a site before planning on it."""
+"""``veerwise check`` and ``veerwise grid``: look at a site before planning on it."""
 
 from __future__ import annotations
 
