@@ -13,6 +13,7 @@ reported is that of one full synchronous Bellman update of the final values.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
@@ -21,6 +22,8 @@ import numpy as np
 
 from planner.errors import SettingsError, SolverError
 from planner.model import (
+    EVENT_BOUNDARY,
+    EVENT_GOAL,
     EVENT_NONE,
     Chain,
     Model,
@@ -146,12 +149,7 @@ def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int
     finite = np.isfinite(start_cost) & model.active
     v[finite] = -start_cost[finite]
     v[model.active & ~escapes] = -np.inf
-    rows, cols = np.unravel_index(np.arange(n_s), model.shape)
-    sweepable = model.active & escapes
-    orders = np.stack([
-        np.lexsort((cols, rows)), np.lexsort((-cols, -rows)), np.lexsort((rows, cols)), np.lexsort((-rows, -cols)),
-    ])
-    orders = np.stack([o[sweepable[o]] for o in orders]).astype(np.int64)
+    orders = _sweep_orders(model, model.active & escapes)
     iterations, residual = _value_iteration(
         model.offsets, model.next_state, model.prob, model.reward, model.event, n_a, float(gamma), epsilon,
         float(tol), int(max_iter), orders, v,
@@ -165,6 +163,14 @@ def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int
                   model.active).reshape(n_s, n_a)
     return ExactSolution(q=q, v=v, epsilon=epsilon, gamma=float(gamma), iterations=int(iterations),
                          residual=float(residual), converged=True)
+
+
+def _sweep_orders(model: Model, sweepable: np.ndarray) -> np.ndarray:
+    """Four raster orders of the sweepable states (row-major and column-major, both ways)."""
+    rows, cols = np.unravel_index(np.arange(model.n_states), model.shape)
+    orders = (np.lexsort((cols, rows)), np.lexsort((-cols, -rows)), np.lexsort((rows, cols)),
+              np.lexsort((-rows, -cols)))
+    return np.stack([o[sweepable[o]] for o in orders]).astype(np.int64)
 
 
 def _can_end(model: Model) -> np.ndarray:
@@ -284,6 +290,406 @@ def near_best(q: np.ndarray, tol: float = ACTION_TOLERANCE, *, tie_m: float = 0.
         return (q >= best - slack) | (q == best)
 
 
+# ----------------------------------------------------------------------------- ties by safety
+
+#: Default tie tolerance (metres-equivalent): actions whose exact values differ by less
+#: than this are equally good. One centimetre lies far above the solvers' round-off
+#: (value iteration stops at a change of 1e-9 per sweep, so values over a few thousand
+#: moves are good to about 1e-6) and far below any detour a vehicle can fly or a site
+#: drawing can show (sites are drawn to 1 cm).
+DEFAULT_TIE_M = 0.01
+#: Reachability sweeps stop when no probability changes by more than this (or after
+#: ``REACH_SWEEPS``); policy improvement on exact chain solves then finishes the job, and
+#: the figures reported come from those solves, not from the sweeps.
+REACH_TOLERANCE = 1e-10
+REACH_SWEEPS = 2_000
+#: Two actions whose P(incident) from a state differ by less than this are equally safe.
+SAFETY_TIE = 1e-12
+#: Policy-improvement rounds on exact solves after the sweeps (each normally confirms).
+MAX_IMPROVEMENTS = 20
+
+
+def equally_good(q: np.ndarray, tie_m: float = DEFAULT_TIE_M) -> np.ndarray:
+    """The near-optimal action set of every state: actions within ``tie_m`` of the best.
+
+    Parameters
+    ----------
+    q : float ``(n_states, n_actions)``, a fixed point (``ExactSolution.q``) or a
+        learned mean Q.
+    tie_m : tolerance in metres-equivalent (>= 0); round-off ties (see
+        :func:`near_best`) always count.
+
+    Returns
+    -------
+    bool ``(n_states, n_actions)``; every row has at least one True.
+    """
+    if not (_is_number(tie_m) and tie_m >= 0):
+        raise SettingsError(f"tie_m must be a number of metres-equivalent >= 0, got {tie_m!r}")
+    return near_best(q, tie_m=float(tie_m))
+
+
+@dataclass(frozen=True)
+class SafestChoice:
+    """How the ties of a fixed point are broken: by safety, with the range they span.
+
+    Attributes
+    ----------
+    greedy : int64 ``(n_states,)``, the delivered policy: in every state, among the
+        allowed (equally good) actions, one that minimises P(incident) from there when
+        the policy is executed with noise ``epsilon``; among equally safe ones the one of
+        higher value, then any (they give the same figures).
+    riskiest : int64 ``(n_states,)``, the same with P(incident) maximised.
+    p_incident : exact P(incident) from the start of ``greedy`` (the low end).
+    p_incident_max : exact P(incident) from the start of ``riskiest`` (the high end).
+    expected_m : expected metres travelled from the start until the run ends, under
+        ``greedy`` with noise ``epsilon`` (``inf`` when it may never end).
+    n_tied_states : active states with more than one allowed action.
+    epsilon : the execution noise of the secondary problem.
+    improvements : policy-improvement rounds on exact solves (both ends together).
+    """
+
+    greedy: np.ndarray
+    riskiest: np.ndarray
+    p_incident: float
+    p_incident_max: float
+    expected_m: float
+    n_tied_states: int
+    epsilon: float
+    improvements: int
+
+
+def incident_from_every_state(model: Model, greedy: np.ndarray, epsilon: float, *,
+                              check: bool = True) -> np.ndarray:
+    """Exact P(incident) from every state for ``greedy`` executed with noise ``epsilon``.
+
+    Incident means the run ends in a hazard that ends it or off the boundary
+    (events from ``EVENT_BOUNDARY`` on). States from which the run never ends have 0.
+
+    ``check=False`` skips the residual test of the solve (for intermediate policies
+    of an improvement loop, which may hold near-closed loops; reported figures are
+    always checked).
+
+    Returns
+    -------
+    float64 ``(n_states,)``; 0 on inactive states.
+    """
+    chain = policy_chain(model, epsilon_greedy(greedy, model.n_actions, epsilon))
+    return _incident(model, chain, check=check)
+
+
+def _goal_from_every_state(model: Model, greedy: np.ndarray, epsilon: float, *, check: bool = True) -> np.ndarray:
+    """Exact P(the run ends at the goal) from every state (0 where it never ends)."""
+    chain = policy_chain(model, epsilon_greedy(greedy, model.n_actions, epsilon))
+    return _incident(model, chain, check=check, first=EVENT_GOAL, last=EVENT_GOAL + 1)
+
+
+def _incident(model: Model, chain: Chain, *, check: bool = True, first: int = EVENT_BOUNDARY,
+              last: int | None = None) -> np.ndarray:
+    """P(the run ends with an event in ``first:last``) from every state (default: an incident)."""
+    ends = reaches_absorption(chain, model.active)
+    b = np.asarray(chain.absorb[:, first:last].sum(axis=1)).ravel()
+    x = np.zeros(model.n_states)
+    if ends.any():
+        x, _ = solve_transient(chain, b, ends, check=check)
+    return np.clip(np.nan_to_num(x, nan=0.0), 0.0, 1.0)
+
+
+def expected_metres(model: Model, greedy: np.ndarray, epsilon: float) -> float:
+    """Expected metres travelled from the start until the run ends (``inf`` if it may not)."""
+    chain = policy_chain(model, epsilon_greedy(greedy, model.n_actions, epsilon))
+    return _expected_metres(model, chain)
+
+
+def _expected_metres(model: Model, chain: Chain) -> float:
+    ends = reaches_absorption(chain, model.active)
+    finite = ends & ~reaching(chain.transient, model.active & ~ends)
+    if not finite[model.start]:
+        return math.inf
+    metres, _ = solve_transient(chain, chain.move_m, finite)
+    return float(metres[model.start])
+
+
+def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np.ndarray | None = None,
+                 riskiest: bool = True, tol: float = REACH_TOLERANCE,
+                 max_iter: int = REACH_SWEEPS) -> SafestChoice:
+    """Break the ties of an action set by safety: lexicographic optimisation, solved exactly.
+
+    The primary criterion has already made ``allowed`` (e.g. :func:`equally_good` of a
+    fixed point). Restricted to those actions, the secondary problem is solved for the
+    policy executed with noise ``epsilon`` (greedy action with probability
+    ``1 - epsilon``, uniformly random otherwise). The safest policy maximises P(the run
+    ends at the goal): where every allowed choice ends the run (true of the ties of a
+    fixed point with positive move costs), that is the least P(incident), and a choice
+    that would loop for ever counts as a failure, not as safety. The riskiest maximises
+    P(incident). Each is solved by reachability value iteration, ``u(s) = max over
+    allowed a of (1 - epsilon) R(s, a) + epsilon mean_b R(s, b)``, ``R(s, a) = sum_o p_o
+    ([o is a target event] + [o goes on] u(next_o))``, from ``u = 0`` (the least fixed
+    point, which is the optimum of a reachability problem), then policy improvement on
+    exact chain solves until a policy repeats; the best policy met is kept.
+
+    Parameters
+    ----------
+    model : the model.
+    allowed : bool ``(n_states, n_actions)``; every active row needs a True.
+    epsilon : execution noise in [0, 1).
+    value : optional float ``(n_states, n_actions)`` (the fixed point's Q) to choose
+        between equally safe actions by value.
+    riskiest : also solve the maximising problem (the high end of the range); without
+        it ``riskiest`` and ``p_incident_max`` repeat the safest policy's.
+    tol : the sweeps stop at a change below this ...
+    max_iter : ... or after this many sweeps; exact policy improvement follows.
+
+    Returns
+    -------
+    SafestChoice
+
+    Raises
+    ------
+    SolverError
+        When policy improvement has not settled after ``MAX_IMPROVEMENTS`` rounds.
+
+    Notes
+    -----
+    Every allowed action must keep the policy proper (the run ends with probability 1),
+    as near-optimal actions of a fixed point with positive move costs do whenever the
+    tolerance is below the cost of the cheapest move; see :func:`check_tie_tolerance`.
+    """
+    n_s, n_a = model.n_states, model.n_actions
+    allowed = np.asarray(allowed, dtype=bool)
+    if allowed.shape != (n_s, n_a):
+        raise SettingsError(f"allowed must have shape {(n_s, n_a)}, got {allowed.shape}")
+    if not (_is_number(epsilon) and 0.0 <= epsilon < 1.0):
+        raise SettingsError(f"epsilon must be a number in [0, 1), got {epsilon!r}")
+    active = model.active
+    if not allowed[active].any(axis=1).all():
+        raise SettingsError("every active state needs at least one allowed action")
+    flat = np.ascontiguousarray(allowed.reshape(-1))
+    rank = np.zeros(n_s * n_a) if value is None else np.nan_to_num(
+        np.asarray(value, dtype=np.float64).reshape(-1), nan=-np.inf, posinf=np.inf, neginf=-np.inf)
+    orders = _sweep_orders(model, active & _can_end(model))
+    rounds = 0
+    # Safest: the most likely to reach the goal (so a loop that never ends counts as a
+    # failure, not as safety); riskiest: the most likely to end in an incident.
+    problems = ((EVENT_GOAL, _goal_from_every_state), (EVENT_BOUNDARY, incident_from_every_state))
+    picks = []
+    for target, evaluate in problems if riskiest else problems[:1]:
+        u = np.zeros(n_s)
+        # The sweeps only need to get close: policy improvement on exact solves finishes
+        # the job (and copes with near-closed loops, where sweeps crawl).
+        _reach_iteration(model.offsets, model.next_state, model.prob, model.event, target, n_a, float(epsilon),
+                         flat, -1.0, float(tol), int(max_iter), orders, u)
+        greedy = _pick(model.offsets, model.next_state, model.prob, model.event, target, n_a, flat, -1.0, u,
+                       rank, active, np.full(n_s, -1, np.int64))
+        best, best_value, seen = greedy, -np.inf, set()
+        for _ in range(MAX_IMPROVEMENTS):
+            rounds += 1
+            u = evaluate(model, greedy, epsilon, check=False)
+            if u[model.start] > best_value:
+                best, best_value = greedy, float(u[model.start])
+            seen.add(greedy.tobytes())
+            greedy = _pick(model.offsets, model.next_state, model.prob, model.event, target, n_a, flat, -1.0, u,
+                           rank, active, greedy)
+            if greedy.tobytes() in seen:
+                break
+        picks.append(best)
+    safe, risky = picks[0], picks[-1]
+    s0 = model.start
+    p_safe = float(incident_from_every_state(model, safe, epsilon)[s0])
+    p_risky = p_safe if risky is safe else float(incident_from_every_state(model, risky, epsilon)[s0])
+    return SafestChoice(
+        greedy=safe, riskiest=risky, p_incident=p_safe, p_incident_max=p_risky,
+        expected_m=expected_metres(model, safe, epsilon),
+        n_tied_states=int((allowed[active].sum(axis=1) > 1).sum()), epsilon=float(epsilon), improvements=rounds,
+    )
+
+
+def check_tie_tolerance(model: Model, tie_m: float, setting: str = "tie_m") -> None:
+    """Refuse a tie tolerance that could let equally good actions go round in a loop.
+
+    A loop of near-optimal moves costs at most ``tie_m`` per move, so a tolerance below
+    the cheapest move's cost rules loops out and every tie-break stays a proper policy.
+    """
+    cheapest = float(-model.reward[model.event == EVENT_NONE].max(initial=-math.inf))
+    if not (_is_number(tie_m) and 0.0 <= tie_m):
+        raise SettingsError(f"{setting} must be a number of metres-equivalent >= 0, got {tie_m!r}")
+    if math.isfinite(cheapest) and tie_m >= cheapest:
+        raise SettingsError(f"{setting} is {tie_m:g} m-equiv.; it must be below the cheapest move's cost "
+                            f"({cheapest:.3g} m-equiv.), or equally good moves could go round in a loop")
+
+
+@numba.njit(cache=True, inline="always")
+def _action_reach(offsets, next_state, prob, event, target, u, k):
+    """P(the run ends with a ``target`` event: 1 the goal, 2 an incident) after taking
+    block ``k`` once, given ``u`` from every next state."""
+    r = 0.0
+    for j in range(offsets[k], offsets[k + 1]):
+        e = event[j]
+        if e == 0:
+            r += prob[j] * u[next_state[j]]
+        elif (e == 1) if target == 1 else (e >= 2):
+            r += prob[j]
+    return r
+
+
+@numba.njit(cache=True)
+def _state_reach(offsets, next_state, prob, event, target, n_actions, epsilon, allowed, sense, u, s):
+    best = np.inf if sense > 0 else -np.inf
+    total = 0.0
+    for a in range(n_actions):
+        k = s * n_actions + a
+        r = _action_reach(offsets, next_state, prob, event, target, u, k)
+        total += r
+        if allowed[k]:
+            if sense > 0:
+                best = min(best, r)
+            else:
+                best = max(best, r)
+    return (1.0 - epsilon) * best + epsilon * total / n_actions
+
+
+@numba.njit(cache=True)
+def _reach_iteration(offsets, next_state, prob, event, target, n_actions, epsilon, allowed, sense, tol, max_iter,
+                     orders, u):
+    """In-place sweeps of the restricted reachability problem; returns (sweeps, last change)."""
+    n_orders = orders.shape[0]
+    change = np.inf
+    sweeps = 0
+    while sweeps < max_iter:
+        order = orders[sweeps % n_orders]
+        change = 0.0
+        for i in range(order.size):
+            s = order[i]
+            new = _state_reach(offsets, next_state, prob, event, target, n_actions, epsilon, allowed, sense, u, s)
+            d = abs(new - u[s])
+            if d > change:
+                change = d
+            u[s] = new
+        sweeps += 1
+        if change <= tol:
+            break
+    return sweeps, change
+
+
+@numba.njit(cache=True)
+def _pick(offsets, next_state, prob, event, target, n_actions, allowed, sense, u, rank, active, current):
+    """Per state, the allowed action of least (``sense`` 1) or greatest (-1) ``R(s, a)``;
+    among equal ones the one of highest ``rank`` (value), then the first. Where
+    ``current`` (a policy, or -1s) is already equally safe it is kept, so that policy
+    improvement never swaps between actions that differ only by round-off."""
+    n_s = active.size
+    out = np.zeros(n_s, np.int64)
+    r = np.empty(n_actions, np.float64)
+    for s in range(n_s):
+        if not active[s]:
+            continue
+        best = np.inf if sense > 0 else -np.inf
+        for a in range(n_actions):
+            k = s * n_actions + a
+            r[a] = _action_reach(offsets, next_state, prob, event, target, u, k)
+            if allowed[k]:
+                if sense > 0:
+                    best = min(best, r[a])
+                else:
+                    best = max(best, r[a])
+        pick = -1
+        c = current[s]
+        if c >= 0 and allowed[s * n_actions + c] and abs(r[c] - best) <= SAFETY_TIE:
+            pick = c
+        else:
+            for a in range(n_actions):
+                k = s * n_actions + a
+                if allowed[k] and abs(r[a] - best) <= SAFETY_TIE:
+                    if pick < 0 or rank[k] > rank[s * n_actions + pick]:
+                        pick = a
+        out[s] = pick
+    return out
+
+
+@dataclass(frozen=True)
+class RiskVerdict:
+    """Whether a learned policy's risk agrees with its exact reference.
+
+    Attributes
+    ----------
+    converged : P(incident) inside the band and expected length within the share.
+    p_incident : the learned policy's own exact P(incident), at the run's noise.
+    reference_low, reference_high : the reference's tie range (safest and riskiest
+        equally good policies).
+    band_low, band_high : that range widened by ``max(rel_band, Monte Carlo 99 %
+        half-width)``.
+    length_m, reference_length_m : expected metres travelled until the run ends.
+    seeds_low, seeds_high : range of the single seeds' own exact P(incident) (NaN
+        when no seed policies were given).
+    message : one plain sentence for the summary, ``risk.json`` and the briefing.
+    """
+
+    converged: bool
+    p_incident: float
+    reference_low: float
+    reference_high: float
+    band_low: float
+    band_high: float
+    length_m: float
+    reference_length_m: float
+    seeds_low: float
+    seeds_high: float
+    message: str
+
+
+def risk_verdict(model: Model, greedy: np.ndarray, reference: SafestChoice, *, mc_halfwidth: float = 0.0,
+                 seed_policies=(), rel_band: float = 0.10, length_share: float = 0.01, fmt=None) -> RiskVerdict:
+    """Judge a learned policy by its risk: converged only when it is as safe as the reference.
+
+    Parameters
+    ----------
+    model : the model both policies live on.
+    greedy : int ``(n_states,)``, the learned (delivered) policy.
+    reference : :func:`safest_among` of the exact fixed point the learner aims at;
+        its ``epsilon`` is the run's noise, at which both are evaluated.
+    mc_halfwidth : half-width of the Monte Carlo 99 % interval of the learned policy's
+        P(incident) (0 without rollouts).
+    seed_policies : the single seeds' greedy policies, for the spread across seeds.
+    rel_band : relative widening of the reference range (10 %).
+    length_share : largest relative excess of expected length still converged (1 %).
+    fmt : how the message writes a probability (default: percent, 3 significant digits).
+
+    Returns
+    -------
+    RiskVerdict
+    """
+    fmt = fmt or _pct
+    eps = reference.epsilon
+    chain = policy_chain(model, epsilon_greedy(greedy, model.n_actions, eps))
+    p = float(_incident(model, chain)[model.start])
+    length = _expected_metres(model, chain)
+    lo, hi = reference.p_incident, reference.p_incident_max
+    band_lo = max(0.0, lo - max(rel_band * lo, mc_halfwidth))
+    band_hi = min(1.0, hi + max(rel_band * hi, mc_halfwidth))
+    ref_len = reference.expected_m
+    long_ok = math.isfinite(length) and length <= ref_len * (1.0 + length_share) + 1e-9
+    risk_ok = band_lo - 1e-15 <= p <= band_hi + 1e-15
+    seeds = [float(incident_from_every_state(model, g, eps, check=False)[model.start]) for g in seed_policies]
+    seeds_lo, seeds_hi = (min(seeds), max(seeds)) if seeds else (math.nan, math.nan)
+    ref = fmt(lo) if fmt(lo) == fmt(hi) else f"{fmt(lo)}, equally good routes {fmt(lo)} to {fmt(hi)}"
+    if risk_ok and long_ok:
+        message = f"converged: P(incident) {fmt(p)} (exact reference {ref}), {length:.1f} m (reference {ref_len:.1f} m)"
+    else:
+        why = f"P(incident) {fmt(p)}" + ("" if risk_ok else f" outside {fmt(band_lo)} to {fmt(band_hi)}") + \
+            f" (exact reference {ref}), {length:.1f} m" + ("" if long_ok else
+                                                           f", over {100 * length_share:g}% longer") + \
+            f" (reference {ref_len:.1f} m)"
+        message = f"NOT CONVERGED: {why}"
+    if seeds:
+        message += f"; single seeds {fmt(seeds_lo)} to {fmt(seeds_hi)}"
+    return RiskVerdict(converged=bool(risk_ok and long_ok), p_incident=p, reference_low=lo, reference_high=hi,
+                       band_low=band_lo, band_high=band_hi, length_m=float(length), reference_length_m=ref_len,
+                       seeds_low=seeds_lo, seeds_high=seeds_hi, message=message)
+
+
+def _pct(p: float) -> str:
+    return f"{100 * p:.3g}%"
+
+
 # ----------------------------------------------------------------------------- convergence report
 
 
@@ -322,6 +728,16 @@ class Convergence:
     visited_states: int
     converged: bool
     message: str
+    verdict: RiskVerdict | None = None
+
+    def judged_by(self, verdict: RiskVerdict, episodes: int) -> Convergence:
+        """This report with the risk verdict as its verdict: converged only when the
+        risk agrees; the action agreement stays as a diagnostic. ``episodes`` is the
+        training budget used (a not-converged message suggests four times it)."""
+        message = f"{verdict.message}; {100 * self.agreement:.0f}% of visited states agree with the reference"
+        if not verdict.converged:
+            message += f"; try --episodes {4 * int(episodes)}"
+        return dataclasses.replace(self, converged=verdict.converged, message=message, verdict=verdict)
 
 
 def policy_value(model: Model, greedy: np.ndarray, epsilon: float) -> tuple[float, Chain, np.ndarray]:
@@ -388,7 +804,8 @@ def same_corridor(model: Model, a: np.ndarray, b: np.ndarray, cells: int = 2) ->
 
 
 def convergence_report(model: Model, learned, reference: ExactSolution, epsilon: float, *,
-                       threshold: float = 0.95, tie_m: float = 0.0, gap_limit_m: float = math.inf) -> Convergence:
+                       threshold: float = 0.95, tie_m: float = 0.0, gap_limit_m: float = math.inf,
+                       greedy: np.ndarray | None = None, seed_greedy=None) -> Convergence:
     """Compare a learned consensus policy with its exact reference.
 
     Parameters
@@ -403,6 +820,10 @@ def convergence_report(model: Model, learned, reference: ExactSolution, epsilon:
         best count as agreeing (``plan`` uses a quarter of a cell: a detour below the
         grid's resolution is not a disagreement).
     gap_limit_m : largest value gap at the start still called converged.
+    greedy : the delivered consensus policy (by default the seeds' mean Q with exact
+        ties broken by safety at ``epsilon``; ``plan`` passes the safest among the
+        learned ties).
+    seed_greedy : each seed's own policy (by default its Q, ties by safety).
 
     Returns
     -------
@@ -415,11 +836,14 @@ def convergence_report(model: Model, learned, reference: ExactSolution, epsilon:
     so the gap is >= 0 up to round-off and 0 when the learned policy is as good as the
     reference.
     """
-    from planner.learn import greedy_actions
-
     if not (_is_number(threshold) and 0.0 < threshold <= 1.0):
         raise SettingsError(f"threshold must be in (0, 1], got {threshold!r}")
-    consensus = greedy_actions(learned.q_mean)
+    def safest(q):
+        return safest_among(model, equally_good(q), epsilon, value=q, riskiest=False).greedy
+
+    consensus = safest(learned.q_mean) if greedy is None else np.asarray(greedy, dtype=np.int64)
+    if seed_greedy is None:
+        seed_greedy = [safest(q) for q in learned.q]
     correct = near_best(reference.q, tie_m=tie_m)
     states = np.arange(model.n_states)
 
@@ -442,8 +866,7 @@ def convergence_report(model: Model, learned, reference: ExactSolution, epsilon:
 
     route = nominal_path(model, consensus)
     matching, agreeing = 0, 0
-    for i in range(learned.q.shape[0]):
-        own = greedy_actions(learned.q[i])
+    for own in seed_greedy:
         other = nominal_path(model, own)
         matching += int(other.end_event == route.end_event and same_corridor(model, other.states, route.states))
         agreeing += int(agree(own) >= threshold)
@@ -472,6 +895,7 @@ def convergence_report(model: Model, learned, reference: ExactSolution, epsilon:
 
 
 __all__ = [
-    "ACTION_TOLERANCE", "Convergence", "ExactSolution", "convergence_report", "near_best", "occupancy",
-    "on_policy_q", "optimal_q", "policy_value",
+    "ACTION_TOLERANCE", "DEFAULT_TIE_M", "Convergence", "ExactSolution", "RiskVerdict", "SafestChoice",
+    "check_tie_tolerance", "convergence_report", "equally_good", "expected_metres", "incident_from_every_state",
+    "near_best", "occupancy", "on_policy_q", "optimal_q", "policy_value", "risk_verdict", "safest_among",
 ]

@@ -3,8 +3,9 @@
 This stage owns tabular temporal-difference learning over the outcome table of a
 :class:`~planner.model.Model`: the settings (:class:`LearnSettings`), the Q
 initialisation (:func:`heuristic_q`, from a cheapest-path cost-to-go), the numba
-kernels that run whole training runs per seed, and the consensus policy
-(:func:`greedy_actions` on the seeds' mean Q).
+kernels that run whole training runs per seed, and the tie sets of a learned Q
+(:func:`learned_ties`, from the seeds' spread) from which the delivered policy is
+picked by safety (:func:`planner.exact.safest_among`).
 
 The kernels sample outcomes straight from the model's flat CSR arrays (a cumulative
 walk inside each (state, action) block that cannot fall off the end), so learning and
@@ -320,11 +321,13 @@ def heuristic_q(model: Model, cost_to_go) -> np.ndarray:
 
 
 def greedy_actions(q: np.ndarray, rng: np.random.Generator | None = None) -> np.ndarray:
-    """The greedy action of every state, int64 ``(n_states,)``.
+    """The greedy action of every state by action order, int64 ``(n_states,)``.
 
-    Without ``rng``, exact ties go to the lowest action index, so the exported policy
-    is a pure function of ``q`` (reproducible); with ``rng``, uniformly among the tied
-    actions.
+    Without ``rng``, exact ties go to the lowest action index; with ``rng``, uniformly
+    among the tied actions. Neither is how the product delivers a policy: ties there
+    go to the safest action (:func:`planner.exact.safest_among`). This is the plain
+    rule, for tables known to have no ties and for showing what a tie-break by action
+    order would report.
 
     Parameters
     ----------
@@ -343,6 +346,41 @@ def greedy_actions(q: np.ndarray, rng: np.random.Generator | None = None) -> np.
     tied = q == q.max(axis=1, keepdims=True)
     keys = np.where(tied, rng.random(q.shape), -1.0)
     return np.argmax(keys, axis=1).astype(np.int64)
+
+
+def learned_ties(learned: Learned, tie_m: float = 0.0, *, z: float = 2.0,
+                 max_slack_m: float | None = None) -> np.ndarray:
+    """Actions a learned Q cannot tell apart from its best: the tie set of a learned policy.
+
+    An action is tied with the best when its mean Q over the seeds is within ``tie_m``
+    plus ``z`` standard errors of the difference (the seeds' spread; common practice:
+    two standard errors) of the best mean; with one seed, within ``tie_m`` (and exact
+    ties). The delivered policy picks among them by safety
+    (:func:`planner.exact.safest_among`), never by action order.
+
+    Parameters
+    ----------
+    learned : a :class:`Learned`.
+    tie_m : tolerance in metres-equivalent (>= 0).
+    z : how many standard errors of the difference count as "cannot tell apart".
+    max_slack_m : cap on the slack (``plan`` allows the seeds' spread to add at most 5 %
+        of the cheapest move, so that the safety rule cannot pick moves that go round in
+        a loop on a barely trained Q).
+
+    Returns
+    -------
+    bool ``(n_states, n_actions)``; every row has at least one True.
+    """
+    q = np.asarray(learned.q, dtype=np.float64)
+    mean = learned.q_mean
+    n = q.shape[0]
+    se = q.std(axis=0, ddof=1) / math.sqrt(n) if n > 1 else np.zeros_like(mean)
+    best = mean.max(axis=1, keepdims=True)
+    se_best = np.where(mean == best, se, 0.0).max(axis=1, keepdims=True)
+    slack = float(tie_m) + z * np.sqrt(se * se + se_best * se_best)
+    if max_slack_m is not None:
+        slack = np.minimum(slack, max_slack_m)
+    return (mean >= best - slack) | (mean == best)
 
 
 # ----------------------------------------------------------------------------- training
@@ -729,7 +767,7 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
 
 __all__ = [
     "CORRIDOR_MARGIN", "END_STEP_CAP", "METHODS", "Learned", "LearnSettings", "corridor_states",
-    "TABLE_DTYPE", "fewest_moves", "greedy_actions", "heuristic_q", "model_cost_to_go",
+    "TABLE_DTYPE", "fewest_moves", "greedy_actions", "heuristic_q", "learned_ties", "model_cost_to_go",
     "sampling_table", "seed_states", "train",
 ]
 
