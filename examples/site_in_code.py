@@ -24,10 +24,10 @@ import numpy as np
 from pyproj import Transformer
 
 from planner.errors import PlannerError
-from planner.exact import convergence_report, on_policy_q, optimal_q
+from planner.exact import convergence_report, equally_good, on_policy_q, optimal_q, risk_verdict, safest_among
 from planner.export import write_csv, write_geojson, write_gpx
 from planner.grid import GridSpec, rasterise
-from planner.learn import LearnSettings, greedy_actions, train
+from planner.learn import LearnSettings, learned_ties, train
 from planner.model import Dynamics, build_model
 from planner.risk import evaluate, format_prob
 from planner.route import build_route, nominal_path
@@ -99,9 +99,13 @@ def main(argv=None) -> int:
         print(f"{site.name}: grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m "
               "(for simulation and review only)")
         for name, result in learned.items():
-            greedy = greedy_actions(result.q_mean)
+            # Ties by safety: among actions the learned Q cannot tell apart, the safest at the noise.
+            greedy = safest_among(model, learned_ties(result), args.noise, value=result.q_mean,
+                                  riskiest=False).greedy
             conv = convergence_report(model, result, exact[name], args.noise if name == "cautious" else 0.0,
-                                      tie_m=0.25 * grid.cell_m)
+                                      tie_m=0.25 * grid.cell_m, greedy=greedy)
+            reference = safest_among(model, equally_good(exact[name].q), args.noise, value=exact[name].q)
+            conv = conv.judged_by(risk_verdict(model, greedy, reference, fmt=format_prob), learn.episodes)
             risk = evaluate(model, greedy, noise=args.noise, name=name, hazards=grid.hazards)
             route = build_route(name, nominal_path(model, greedy), grid, site, model)
             routes.append(route)

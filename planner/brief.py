@@ -272,7 +272,8 @@ def brief_content(inputs: BriefInputs) -> dict:
             "p_incident_strong": format_prob(row_strong.p_incident) if row_strong else "-",
             "p_goal": format_prob(row.p_goal) if row else "-",
             "p_incident_value": row.p_incident if row else math.nan,
-            "p_incident_reference": format_prob(ref.p_incident) if ref else "-",
+            "p_incident_reference": _with_range(ref) if ref else "-",
+            "delivered": conv.get("delivered", "learned"),
             "expected_m": row.expected_m if row else math.nan,
             "main_event": f"{main[0]} ({format_prob(main[1])})" if main else "none",
             "converged": conv["converged"], "message": conv["message"], "agreement": conv["agreement"],
@@ -298,8 +299,9 @@ def brief_content(inputs: BriefInputs) -> dict:
         {"title": "5. Site and assumptions", "blocks": _section_site(inputs, content)},
         {"title": "6. Cautions (from SAFETY.md, in short)", "blocks": [_list(CAUTIONS, keep=True)]},
         {"title": "7. Sign-off", "blocks": [
-            *([_para("Training has NOT converged: this briefing is not ready for review.", alert=True)]
-              if not content["converged"] else []),
+            *([_para("NOT CONVERGED: the learned " + " and ".join(
+                x["name"] for x in policies if not x["converged"]) + " route must not be signed; this briefing "
+                "is not ready for review.", alert=True)] if not content["converged"] else []),
             _para("To be completed by the person responsible for the trial. A briefing with a training-not-"
                   "converged banner is not ready for review.", small=True),
             {"kind": "signoff", "fields": list(SIGNOFF_FIELDS)}]},
@@ -307,12 +309,22 @@ def brief_content(inputs: BriefInputs) -> dict:
     return content
 
 
+def _with_range(ref) -> str:
+    """A reference's P(incident) with the range over its equally good tie-breaks."""
+    text = format_prob(ref.p_incident)
+    rng = ref.p_incident_range
+    if rng is not None and rng[1] > rng[0]:
+        text += f" (equally good routes: {format_prob(rng[0])} to {format_prob(rng[1])})"
+    return text
+
+
 def _banners(policies) -> list[str]:
     out = []
-    bad = [x["name"] for x in policies if not x["converged"]]
-    if bad:
-        out.append(f"TRAINING HAS NOT CONVERGED for the {' and '.join(bad)} policy: its route and figures may not "
-                   "be the best the model allows. Do not sign this briefing; re-run with more episodes.")
+    bad = [x for x in policies if not x["converged"]]
+    for x in bad:
+        out.append(f"NOT CONVERGED: the learned {x['name']} policy's risk does not agree with its exact reference "
+                   f"({x['message']}). The learned {x['name']} route must not be signed; re-run with more "
+                   "episodes.")
     for x in policies:
         if not x["reached_goal"]:
             out.append(f"The {x['name']} nominal route does not reach the goal: it ends {x['ends']}.")
@@ -374,9 +386,9 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
 
     bad = [x for x in (c, s) if not x["converged"]]
     if bad:
-        trust = ("NO. Training has NOT converged for the " + " and ".join(
-            f"{x['name']} policy ({100 * x['agreement']:.0f}% agreement with the exact solution)" for x in bad)
-            + ": do not sign; re-run with more episodes.")
+        trust = ("NO. Not converged: the " + " and ".join(
+            f"{x['name']} policy's own P(incident) is {x['p_incident']} against {x['p_incident_reference']} for "
+            "its exact reference" for x in bad) + ": do not sign the learned route; re-run with more episodes.")
     else:
         trust = (f"Training converged for both policies ({100 * c['agreement']:.1f}% and "
                  f"{100 * s['agreement']:.1f}% agreement with the exact solution of the same model).")
@@ -547,7 +559,12 @@ def _section_trust(content: dict, rows) -> list:
         _table(["policy", "training", "agreement with exact", "value gap at start (m-equiv.)",
                 "seed routes within 2 cells", f"P(incident) learned / exact, noise {content['noise']:g}",
                 "seeds x episodes"], table, numeric=(2, 3), alerts=alerts),
-        _list([f"{x['name']}: {x['message']}" for x in content["policies"]]),
+        _list([f"{x['name']} (delivered: {x['delivered']}): {x['message']}" for x in content["policies"]]),
+        _para("Verdict: a learned policy is converged only when its own exact P(incident) lies within its exact "
+              "reference's range over equally good tie-breaks, widened by 10 % or the Monte Carlo 99 % interval "
+              "(whichever is wider), and its expected length is within 1 % of the reference's. Ties are broken "
+              "by safety: among actions within the tie tolerance of the best, the one with the least P(incident) "
+              "at the run's noise.", small=True),
         _para("Agreement: share of the states the policy visits (weighted by how often) where its action is optimal "
               "for the exact solution of the same model (value iteration). Value gap: how much worse, in "
               "metres-equivalent, the learned policy is at the start than the exact one. Seed routes: independent "

@@ -31,7 +31,7 @@ import numba
 import numpy as np
 
 from planner.errors import SettingsError, SolverError
-from planner.learn import greedy_actions
+from planner.exact import equally_good, safest_among
 from planner.model import (
     EVENT_BOUNDARY,
     EVENT_GOAL,
@@ -133,6 +133,12 @@ class RiskRow:
     mc_disagrees : keys of ``mc`` whose exact figure falls outside its Wilson interval
         at ``z = mc_flag_z`` (by default the 95% interval shown).
     mc_flag_z : the normal quantile of the interval behind ``mc_disagrees``.
+    verdict : what the policy is: ``"converged"`` or ``"not converged"`` for a learned
+        policy (its risk verdict), ``"exact reference (ties by safety)"`` for a
+        reference, ``""`` when not judged (e.g. ``veerwise risk`` on given policies).
+    p_incident_range : for a reference at the run's noise and drift scale, P(incident)
+        of the safest and the riskiest equally good tie-breaks (``p_incident`` is the
+        low end); else None.
     """
 
     policy: str
@@ -156,6 +162,8 @@ class RiskRow:
     mc: dict[str, McEstimate] = field(default_factory=dict)
     mc_disagrees: tuple[str, ...] = ()
     mc_flag_z: float = Z95
+    verdict: str = ""
+    p_incident_range: tuple[float, float] | None = None
 
     def exact(self) -> dict[str, float]:
         """The exact figure behind every Monte Carlo key (see ``mc``)."""
@@ -192,6 +200,9 @@ class RiskRow:
                 mc={k: McEstimate(int(m["count"]), int(m["n"]), num(m["estimate"]), num(m["lo"]), num(m["hi"]))
                     for k, m in data["mc"].items()},
                 mc_disagrees=tuple(data["mc_disagrees"]), mc_flag_z=num(data["mc_flag_z"]),
+                verdict=str(data.get("verdict", "")),
+                p_incident_range=None if data.get("p_incident_range") is None
+                else (num(data["p_incident_range"][0]), num(data["p_incident_range"][1])),
             )
         except (KeyError, TypeError, ValueError, AttributeError) as err:
             raise SettingsError(f"a risk table row is malformed ({err!r})") from err
@@ -211,6 +222,9 @@ class RiskRow:
             "mc": {k: {"count": int(m.count), "n": int(m.n), "estimate": _plain(m.estimate), "lo": _plain(m.lo),
                        "hi": _plain(m.hi)} for k, m in self.mc.items()},
             "mc_disagrees": list(self.mc_disagrees), "mc_flag_z": _plain(self.mc_flag_z),
+            "verdict": self.verdict,
+            "p_incident_range": None if self.p_incident_range is None
+            else [_plain(self.p_incident_range[0]), _plain(self.p_incident_range[1])],
         }
 
 
@@ -332,12 +346,13 @@ def incident_probability(result: Absorption) -> np.ndarray:
     return np.clip(result.probs[:, EVENT_BOUNDARY:].sum(axis=1), 0.0, 1.0)
 
 
-def _policy_actions(model: Model, policy) -> np.ndarray:
+def _policy_actions(model: Model, policy, noise: float) -> np.ndarray:
     policy = np.asarray(policy)
     if policy.ndim == 2:
         if policy.shape != (model.n_states, model.n_actions):
             raise SettingsError(f"Q table has shape {policy.shape}, model needs {(model.n_states, model.n_actions)}")
-        return greedy_actions(policy)
+        # Ties by safety at the row's own noise, never by action order.
+        return safest_among(model, equally_good(policy), noise, value=policy, riskiest=False).greedy
     if policy.shape != (model.n_states,):
         raise SettingsError(f"greedy actions have shape {policy.shape}, model needs ({model.n_states},)")
     if not np.issubdtype(policy.dtype, np.integer):
@@ -423,7 +438,8 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
     ----------
     model : the model (its ``dynamics.drift_scale`` is the row's drift scale).
     greedy_action : int ``(n_states,)`` greedy actions, or a Q table
-        ``(n_states, n_actions)`` to take them from (ties to the lowest index).
+        ``(n_states, n_actions)`` to take them from (ties to the safest at ``noise``,
+        see :func:`planner.exact.safest_among`).
     noise : execution noise epsilon in [0, 1].
     name : the policy's name in the table.
     budget : step budget T (moves), or None.
@@ -464,7 +480,7 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
         raise SettingsError(f"flag_z must be a positive number, got {flag_z!r}")
     if not (isinstance(max_rollout_steps, (int, np.integer)) and max_rollout_steps >= 1):
         raise SettingsError(f"max_rollout_steps must be a whole number >= 1, got {max_rollout_steps!r}")
-    greedy = _policy_actions(model, greedy_action)
+    greedy = _policy_actions(model, greedy_action, noise)
     action_probs = epsilon_greedy(greedy, model.n_actions, noise)
     ends = _ending_hazards(model, hazards)
     names = model.event_names
@@ -989,6 +1005,6 @@ def _union(dicts) -> list[str]:
 
 __all__ = [
     "DEFAULT_DRIFT_SCALES", "DEFAULT_NOISES", "Z95", "Absorption", "McEstimate", "RiskRow", "absorption",
-    "clearance_m", "evaluate", "format_prob", "format_table", "greedy_actions", "incident_probability",
+    "clearance_m", "evaluate", "format_prob", "format_table", "incident_probability",
     "mc_estimate", "risk_map", "sample_runs", "sensitivity", "wilson_interval",
 ]

@@ -35,6 +35,7 @@ RUN_FORMAT_VERSION = 1
 #: Arrays stored in ``policies.npz`` and their dtypes (checked on load).
 POLICY_ARRAYS = {
     "greedy_cautious": "int64", "greedy_shortest": "int64",
+    "greedy_exact_on_policy": "int64", "greedy_exact_optimal": "int64",
     "q_cautious": "float64", "q_shortest": "float64",
     "q_exact_on_policy": "float64", "q_exact_optimal": "float64",
 }
@@ -133,6 +134,7 @@ class PlanSettings:
     max_bytes: int = 50_000_000
     alt_m: float | None = None
     convergence_threshold: float = 0.95
+    tie_m: float = 0.01
 
     def __post_init__(self):
         if not 0.0 <= self.learn.epsilon < 1.0:
@@ -148,6 +150,9 @@ class PlanSettings:
             raise SettingsError(f"--budget must be a whole number of moves >= 1, got {self.budget}")
         if self.rollouts < 0:
             raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
+        if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
+                and np.isfinite(self.tie_m) and self.tie_m >= 0):
+            raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
         if self.seed is not None and not (0 <= self.seed < 2**63):
             raise SettingsError(f"--seed must be a whole number in [0, 2**63), got {self.seed}")
 
@@ -167,7 +172,7 @@ def settings_record(settings: PlanSettings) -> dict:
 SETTING_TYPES = {
     "episodes_shortest": (int, type(None)), "budget": (int, type(None)), "rollouts": (int,),
     "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
-    "alt_m": (int, float, type(None)), "convergence_threshold": (int, float),
+    "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
 }
 
 
@@ -257,6 +262,9 @@ class PlanResult:
     exact: dict
     greedy: dict
     convergence: dict
+    #: ``planner.exact.SafestChoice`` per policy: the exact references with ties broken
+    #: by safety, and the range of P(incident) over their ties.
+    references: dict
     paths: dict
     routes: dict
     risk_rows: list
@@ -283,9 +291,19 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     ``site`` and ``grid``, when the caller has already loaded and rasterised
     ``site_path`` with these settings, are used instead of doing it again.
     """
-    from planner.exact import convergence_report, occupancy, on_policy_q, optimal_q, policy_value
+    from planner.exact import (
+        check_tie_tolerance,
+        convergence_report,
+        equally_good,
+        occupancy,
+        on_policy_q,
+        optimal_q,
+        policy_value,
+        risk_verdict,
+        safest_among,
+    )
     from planner.grid import cost_to_goal, rasterise
-    from planner.learn import greedy_actions, train
+    from planner.learn import learned_ties, train
     from planner.model import build_model
     from planner.route import nominal_path
     from planner.site import load_site
@@ -325,14 +343,29 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     progress("solving the exact references (value iteration)")
     eps = settings.learn.epsilon
     exact = {"cautious": on_policy_q(model, eps), "shortest": optimal_q(model)}
+    # Ties by safety: among equally good actions, the one that minimises P(incident) at
+    # the run's noise; the riskiest tie-break gives the other end of the range.
+    check_tie_tolerance(model, settings.tie_m, "--tie-m")
+    progress("breaking ties by safety (exact references)")
+    references = {name: safest_among(model, equally_good(exact[name].q, settings.tie_m), eps, value=exact[name].q)
+                  for name in POLICIES}
     timings["exact_s"] = time.perf_counter() - t
     learned = {"cautious": cautious, "shortest": shortest}
-    greedy = {name: greedy_actions(learned[name].q_mean) for name in POLICIES}
+    cheapest_m = float(-model.reward[model.event == 0].max())
+    # The seeds' spread may widen a learned tie set by at most LEARNED_SLACK_SHARE of the
+    # cheapest move: wider sets of a barely trained Q let the safety rule pick moves that
+    # go round in loops.
+    slack_m = settings.tie_m + LEARNED_SLACK_SHARE * cheapest_m
+    greedy = {name: safest_among(model, learned_ties(learned[name], settings.tie_m, max_slack_m=slack_m), eps,
+                                 value=learned[name].q_mean, riskiest=False).greedy for name in POLICIES}
+    seed_greedy = {name: [safest_among(model, equally_good(q, settings.tie_m), eps, value=q, riskiest=False).greedy
+                          for q in learned[name].q] for name in POLICIES}
     tie_m = TIE_CELLS * grid.cell_m
     convergence = {
         name: convergence_report(model, learned[name], exact[name], eps if name == "cautious" else 0.0,
                                  threshold=settings.convergence_threshold, tie_m=tie_m,
-                                 gap_limit_m=max(grid.cell_m, GAP_SHARE * abs(float(exact[name].v[model.start]))))
+                                 gap_limit_m=max(grid.cell_m, GAP_SHARE * abs(float(exact[name].v[model.start]))),
+                                 greedy=greedy[name], seed_greedy=seed_greedy[name])
         for name in POLICIES
     }
     paths = {name: nominal_path(model, greedy[name]) for name in POLICIES}
@@ -342,11 +375,58 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         visited |= occupancy(model, chain, finite) >= VISITED_FLOOR
     routes = _routes(site, grid, model, paths)
     t = time.perf_counter()
-    risk_rows = _risk(site, grid, settings, model, greedy, exact, seed_risk, progress)
+    risk_rows = _risk(site, grid, settings, model, greedy, references, seed_risk, progress)
     timings["risk_s"] = time.perf_counter() - t
+    from planner.risk import find_row, format_prob
+
+    base = float(settings.dynamics.drift_scale)
+    # Verdicts on risk: a learned policy is converged only when its own exact P(incident)
+    # lies in its reference's tie range (widened) and its length is within 1 %.
+    for name in POLICIES:
+        verdict = risk_verdict(model, greedy[name], references[name], seed_policies=seed_greedy[name],
+                               mc_halfwidth=_mc_halfwidth(find_row(risk_rows, name, eps, base)), fmt=format_prob)
+        convergence[name] = convergence[name].judged_by(verdict, learned[name].settings.episodes)
+    risk_rows = _with_verdicts(risk_rows, convergence, references, eps, base)
     return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
-                      convergence=convergence, paths=paths, routes=routes, risk_rows=risk_rows, root_seed=root,
-                      timings=timings, visited=visited)
+                      convergence=convergence, references=references, paths=paths, routes=routes,
+                      risk_rows=risk_rows, root_seed=root, timings=timings, visited=visited)
+
+
+#: Largest widening of a learned tie set by the seeds' spread, as a share of the cheapest move.
+LEARNED_SLACK_SHARE = 0.05
+#: Reference rows of the risk table, by the learned policy they judge.
+REFERENCE_ROWS = {"cautious": "exact on-policy", "shortest": "exact optimal"}
+#: Normal quantile of the two-sided 99 % interval.
+Z99 = 2.5758293035489004
+
+
+def _mc_halfwidth(row) -> float:
+    """Half-width of the Clopper-Pearson 99 % interval of a row's Monte Carlo P(incident)."""
+    from planner.risk import exact_interval
+
+    mc = None if row is None else row.mc.get("incident")
+    if mc is None or mc.n <= 0:
+        return 0.0
+    lo, hi = exact_interval(mc.count, mc.n, Z99)
+    return max(mc.estimate - lo, hi - mc.estimate)
+
+
+def _with_verdicts(rows, convergence, references, eps: float, base: float) -> list:
+    """Risk rows that say what each policy is: a learned one with its verdict, or an
+    exact reference with its tie range at the run's noise."""
+    out = []
+    by_reference = {ref: name for name, ref in REFERENCE_ROWS.items()}
+    for row in rows:
+        if row.policy in convergence:
+            row = dataclasses.replace(row, verdict="converged" if convergence[row.policy].converged
+                                      else "not converged")
+        elif row.policy in by_reference:
+            choice = references[by_reference[row.policy]]
+            at_run_noise = row.noise == eps and row.drift_scale == base
+            row = dataclasses.replace(row, verdict="exact reference (ties by safety)", p_incident_range=(
+                (choice.p_incident, choice.p_incident_max) if at_run_noise else None))
+        out.append(row)
+    return out
 
 
 def _routes(site, grid, model, paths) -> dict:
@@ -355,14 +435,13 @@ def _routes(site, grid, model, paths) -> dict:
     return {name: build_route(name, paths[name], grid, site, model) for name in POLICIES}
 
 
-def _risk(site, grid, settings, model, greedy, exact, seed, progress) -> list:
-    from planner.learn import greedy_actions
+def _risk(site, grid, settings, model, greedy, references, seed, progress) -> list:
     from planner.risk import sensitivity
 
     policies = {
         "cautious": greedy["cautious"], "shortest": greedy["shortest"],
-        "exact on-policy": greedy_actions(exact["cautious"].q),
-        "exact optimal": greedy_actions(exact["shortest"].q),
+        "exact on-policy": references["cautious"].greedy,
+        "exact optimal": references["shortest"].greedy,
     }
     progress(f"risk table: {len(policies)} policies x {len(settings.noises)} noise levels x "
              f"{len(settings.drift_scales)} drift scales, {settings.rollouts:,} rollouts per row")
@@ -404,6 +483,8 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     arrays = {
         "greedy_cautious": result.greedy["cautious"].astype(np.int64),
         "greedy_shortest": result.greedy["shortest"].astype(np.int64),
+        "greedy_exact_on_policy": result.references["cautious"].greedy.astype(np.int64),
+        "greedy_exact_optimal": result.references["shortest"].greedy.astype(np.int64),
         "q_cautious": result.learned["cautious"].q_mean, "q_shortest": result.learned["shortest"].q_mean,
         "q_exact_on_policy": result.exact["cautious"].q, "q_exact_optimal": result.exact["shortest"].q,
     }
@@ -466,6 +547,28 @@ def _save_npz(path: Path, arrays: dict) -> None:
             zf.writestr(info, buf.getvalue())
 
 
+#: How the manifest and the files name each learner.
+METHOD_NAMES = {"sarsa": "SARSA", "qlearning": "Q-learning"}
+
+
+def _verdict_record(verdict, reference) -> dict | None:
+    """The risk verdict and the reference's tie range, as plain data for the manifest."""
+    if verdict is None:
+        return None
+
+    def num(x):
+        return None if not np.isfinite(x) else float(x)
+
+    return {
+        "converged": bool(verdict.converged), "p_incident": num(verdict.p_incident),
+        "reference_p_incident": num(verdict.reference_low), "reference_p_incident_max": num(verdict.reference_high),
+        "band": [num(verdict.band_low), num(verdict.band_high)],
+        "expected_length_m": num(verdict.length_m), "reference_expected_length_m": num(verdict.reference_length_m),
+        "seeds_p_incident": [num(verdict.seeds_low), num(verdict.seeds_high)],
+        "tied_states": int(reference.n_tied_states), "message": verdict.message,
+    }
+
+
 def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder: Path) -> dict:
     """The manifest: inputs with hashes, settings, seeds, versions, results in brief."""
     root = result.root_seed
@@ -480,6 +583,9 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
             "value_gap_m": None if not np.isfinite(conv.value_gap_m) else round(conv.value_gap_m, 6),
             "seed_routes_matching": conv.seed_routes_matching, "n_seeds": conv.n_seeds, "message": conv.message,
             "episodes": learned.settings.episodes, "max_steps": learned.max_steps,
+            "delivered": f"learned ({METHOD_NAMES[learned.method]}), "
+                         f"{'converged' if conv.converged else 'not converged'}",
+            "verdict": _verdict_record(conv.verdict, result.references[name]),
         }
     exact = {name: {"iterations": sol.iterations, "residual": sol.residual, "epsilon": sol.epsilon}
              for name, sol in result.exact.items()}
@@ -610,7 +716,7 @@ def rebuild_grid(run: Run):
         expected = (n_states,) if key.startswith("greedy") else (n_states, n_actions)
         if arr.shape != expected:
             raise RunFolderError(f"{run.folder}: policy array {key!r} has shape {arr.shape}, expected {expected}")
-    for key in ("greedy_cautious", "greedy_shortest"):
+    for key in (k for k in POLICY_ARRAYS if k.startswith("greedy")):
         arr = run.arrays[key]
         if arr.size and (arr.min() < 0 or arr.max() >= n_actions):
             raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{n_actions - 1}")
@@ -636,7 +742,7 @@ def run_routes(run: Run, site, grid, model) -> dict:
 #: Policies ``veerwise risk`` can tabulate, and the arrays they come from.
 RISK_POLICIES = {
     "cautious": "greedy_cautious", "shortest": "greedy_shortest",
-    "exact on-policy": "q_exact_on_policy", "exact optimal": "q_exact_optimal",
+    "exact on-policy": "greedy_exact_on_policy", "exact optimal": "greedy_exact_optimal",
 }
 
 

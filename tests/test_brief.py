@@ -121,8 +121,10 @@ def _page_html(inputs) -> str:
 
 def _with_convergence(inputs, cautious: bool, shortest: bool):
     manifest = json.loads(json.dumps(inputs.manifest))
-    manifest["results"]["cautious"]["converged"] = cautious
-    manifest["results"]["shortest"]["converged"] = shortest
+    for name, ok in (("cautious", cautious), ("shortest", shortest)):
+        result = manifest["results"][name]
+        result["converged"] = ok
+        result["message"] = ("converged: " if ok else "NOT CONVERGED: ") + result["message"].split(": ", 1)[1]
     return dataclasses.replace(inputs, manifest=manifest)
 
 
@@ -198,9 +200,11 @@ def test_banner_exactly_when_not_converged(inputs, cautious, shortest):
         assert trust.startswith("Training converged for both policies")
     else:
         bad = " and ".join(n for n, ok in (("cautious", cautious), ("shortest", shortest)) if not ok)
-        assert f"TRAINING HAS NOT CONVERGED for the {bad} policy" in text
-        assert trust.startswith("NO. Training has NOT converged")
-        assert "Training has NOT converged: this briefing is not ready for review." in text
+        for name in bad.split(" and "):
+            assert f"NOT CONVERGED: the learned {name} policy's risk does not agree with its exact reference" in text
+            assert f"The learned {name} route must not be signed" in text
+        assert trust.startswith("NO. Not converged")
+        assert f"NOT CONVERGED: the learned {bad} route must not be signed; this briefing is not ready" in text
 
 
 def test_risk_is_shown_compactly(inputs):
@@ -301,7 +305,7 @@ def _check_printed(pdf: dict, inputs, summary, footer: str) -> None:
     for label in ("Reviewed by (name, role)", "Date", "Signature"):
         assert label in text
     if not content["converged"]:
-        assert "TRAINING HAS NOT CONVERGED" in text
+        assert "route must not be signed" in text
     for name in ("cautious", "shortest"):
         for w in inputs.routes[name].waypoints:
             assert _has_number(text, f"{w.lat:.7f}")

@@ -87,8 +87,9 @@ def test_plan_succeeds_and_summarises_both_policies(planned):
         assert int(match.group(2)) == results[name]["moves"]
         assert (match.group(3) == "reaches the goal") == results[name]["reached_goal"]
         # The convergence line follows, and says what the manifest says.
-        assert lines[i + 1].strip() == results[name]["message"]
-        assert re.match(r"(not )?converged: ", results[name]["message"])
+        method = {"cautious": "SARSA", "shortest": "Q-learning"}[name]
+        assert lines[i + 1].strip() == f"delivered: learned ({method}); {results[name]['message']}"
+        assert re.match(r"(NOT CONVERGED|converged): ", results[name]["message"])
         # With 2,000 episodes neither learner matches its exact reference.
         assert results[name]["converged"] is False
         row = next(r for r in rows if r["policy"] == name and r["noise"] == 0.1 and r["drift_scale"] == 1.0)
@@ -136,7 +137,7 @@ def test_policies_are_plain_arrays_of_the_grid_shape(planned):
     with np.load(out / "policies.npz", allow_pickle=False) as data:
         arrays = {k: data[k] for k in data.files}
     assert set(arrays) == {"greedy_cautious", "greedy_shortest", "q_cautious", "q_shortest",
-                           "q_exact_on_policy", "q_exact_optimal"}
+                           "q_exact_on_policy", "q_exact_optimal", "greedy_exact_on_policy", "greedy_exact_optimal"}
     for name, arr in arrays.items():
         if name.startswith("greedy"):
             assert arr.dtype == np.int64 and arr.shape == (1500,)
@@ -268,3 +269,23 @@ def test_brief_rewrites_the_briefing_and_keeps_the_folder_loadable(run_copy):
         assert after["files"][name] == sha256(run_copy / name)
     # The folder still passes its own checks.
     assert run("risk", run_copy, "--rollouts", "0", "--noise", "0.1", "--drift-scale", "1").exit_code == 0
+
+
+def test_a_tiny_training_budget_is_not_converged_everywhere_it_is_said(planned):
+    # The small settings train far too little: the risk verdict must fail, and say so in the
+    # summary, the manifest, risk.json and the briefing (banner and sign-off).
+    _, out, result = planned
+    results = manifest(out)["results"]
+    for name in ("cautious", "shortest"):
+        verdict = results[name]["verdict"]
+        assert verdict["converged"] is False and results[name]["converged"] is False
+        assert results[name]["message"].startswith("NOT CONVERGED")
+        assert results[name]["delivered"].endswith("not converged")
+        assert verdict["reference_p_incident"] <= verdict["reference_p_incident_max"]
+    assert result.stdout.count("NOT CONVERGED") == 2
+    records = json.loads((out / "risk.json").read_text())
+    assert {r["verdict"] for r in records if r["policy"] in ("cautious", "shortest")} == {"not converged"}
+    assert {r["verdict"] for r in records if r["policy"].startswith("exact")} == {"exact reference (ties by safety)"}
+    html = (out / "brief.html").read_text()
+    assert "learned cautious route must not be signed" in html
+    assert "learned shortest route must not be signed" in html

@@ -16,6 +16,7 @@ from numpy.testing import assert_allclose
 
 from planner.errors import SettingsError
 from planner.grid import FREE, DriftInfo, GridSpec, HazardInfo, grid_from_arrays, rasterise
+from planner.learn import greedy_actions
 from planner.model import EVENT_GOAL, EVENT_HAZARD, Dynamics, build_model, epsilon_greedy
 from planner.risk import (
     McEstimate,
@@ -25,7 +26,6 @@ from planner.risk import (
     evaluate,
     format_prob,
     format_table,
-    greedy_actions,
     mc_estimate,
     risk_map,
     sample_runs,
@@ -357,8 +357,11 @@ def test_monte_carlo_is_reproducible_and_does_not_advance_the_seed(site_dict):
 def test_q_table_and_its_greedy_actions_give_the_same_row(site_dict):
     _, grid = small_site_grid(site_dict)
     model = build_model(grid, Dynamics())
-    q = np.random.default_rng(11).normal(size=(model.n_states, model.n_actions))
-    q[:, 2] += 1.5  # mostly east
+    # Values a whole metre apart: no ties, so the Q table's policy is its argmax (ties would
+    # go to the safest action; see test_ties.py).
+    order = np.tile(np.arange(model.n_actions, dtype=float), (model.n_states, 1))
+    q = np.random.default_rng(11).permuted(order, axis=1)
+    q[:, 2] += model.n_actions  # mostly east
     assert evaluate(model, q, noise=0.1) == evaluate(model, np.argmax(q, axis=1), noise=0.1)
     with pytest.raises(SettingsError):
         evaluate(model, np.zeros(3, dtype=np.int64), noise=0.1)

@@ -79,10 +79,13 @@ def default_episodes(n_active: int) -> int:
 @risk_options
 @click.option("--alt-m", type=float, default=None, metavar="M",
               help="Constant altitude above ground written into the waypoint files (aerial simulators).")
+@click.option("--tie-m", type=float, default=0.01, show_default=True, metavar="M",
+              help="Actions within this many metres-equivalent of the best are equally good; among them the "
+                   "safest is taken (must stay below the shortest move).")
 @click.option("--quiet", "-q", is_flag=True, help="No progress display.")
 def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions,
          slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay, gamma, episodes, max_steps,
-         n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m, quiet):
+         n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m, tie_m, quiet):
     """Plan the cautious and the shortest route across SITE and write the run folder OUT.
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
@@ -111,7 +114,8 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
                           q_init=q_init)
     settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn, noises=float_list(noises, "--noise"),
                             drift_scales=float_list(drift_scales, "--drift-scales"), budget=budget,
-                            rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m)
+                            rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
+                            tie_m=tie_m)
     show = not quiet and sys.stderr.isatty()
     progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
     with stop_on_sigterm():
@@ -125,6 +129,7 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
 
 def format_plan_summary(result, settings, out) -> str:
     from planner.risk import find_row, format_prob
+    from planner.runfolder import METHOD_NAMES
 
     eps = settings.learn.epsilon
     lines = [f"{result.site.name}: run folder {out} (for simulation and review only)"]
@@ -135,5 +140,6 @@ def format_plan_summary(result, settings, out) -> str:
         end = "reaches the goal" if route.reached_goal else f"ENDS AT {route.end_event.upper()}"
         lines.append(f"  {name:9s} {route.length_m:7.1f} m ({route.waypoint_length_m:.1f} m by waypoints), "
                      f"{route.n_moves:3d} moves, {end}{risk}")
-        lines.append(f"            {conv.message}")
+        delivered = f"learned ({METHOD_NAMES[result.learned[name].method]})"
+        lines.append(f"            delivered: {delivered}; {conv.message}")
     return "\n".join(lines)
