@@ -105,7 +105,8 @@ def main(argv=None) -> int:
             conv = convergence_report(model, result, exact[name], args.noise if name == "cautious" else 0.0,
                                       tie_m=0.25 * grid.cell_m, greedy=greedy)
             reference = safest_among(model, equally_good(exact[name].q), args.noise, value=exact[name].q)
-            conv = conv.judged_by(risk_verdict(model, greedy, reference, fmt=format_prob), learn.episodes)
+            conv = conv.judged_by(risk_verdict(model, greedy, reference, fmt=format_prob),
+                                  advice=f"try --episodes {4 * learn.episodes}")
             risk = evaluate(model, greedy, noise=args.noise, name=name, hazards=grid.hazards)
             route = build_route(name, nominal_path(model, greedy), grid, site, model)
             routes.append(route)

@@ -730,13 +730,16 @@ class Convergence:
     message: str
     verdict: RiskVerdict | None = None
 
-    def judged_by(self, verdict: RiskVerdict, episodes: int) -> Convergence:
+    def judged_by(self, verdict: RiskVerdict, *, used: str = "", advice: str = "") -> Convergence:
         """This report with the risk verdict as its verdict: converged only when the
-        risk agrees; the action agreement stays as a diagnostic. ``episodes`` is the
-        training budget used (a not-converged message suggests four times it)."""
+        risk agrees; the action agreement stays as a diagnostic. ``used`` says what
+        training took (e.g. "2.6e+06 updates"), ``advice`` what to try when the verdict
+        fails."""
         message = f"{verdict.message}; {100 * self.agreement:.0f}% of visited states agree with the reference"
-        if not verdict.converged:
-            message += f"; try --episodes {4 * int(episodes)}"
+        if used:
+            message += f"; {used}"
+        if advice and not verdict.converged:
+            message += f"; {advice}"
         return dataclasses.replace(self, converged=verdict.converged, message=message, verdict=verdict)
 
 

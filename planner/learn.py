@@ -22,7 +22,7 @@ import os
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor, wait
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numba
 import numpy as np
@@ -52,6 +52,17 @@ START_SHARE = 0.5
 PROGRESS_CHUNKS = 50
 #: How often, at most, the progress callback is called.
 PROGRESS_SECONDS = 0.2
+#: Training schedules (see :class:`LearnSettings`).
+SCHEDULES = ("episodes", "sweeps")
+#: Largest sweep budget accepted.
+MAX_SWEEPS = 1_000_000
+#: Step-size exponent of the sweeps schedule without ``step_decay``: ``alpha_n = n ** -0.7``
+#: (polynomial rates; Even-Dar & Mansour, "Learning rates for Q-learning", JMLR 5, 2003).
+#: Measured on the ground-robot demo yard: 0.7 met the risk verdict in 48 sweeps, a
+#: rescaled linear schedule ``H / (H + n - 1)`` needed 256.
+SWEEP_DECAY = 0.7
+#: First sweep count at which the stopping rule is checked; later checks double it.
+FIRST_CHECK_SWEEPS = 4
 
 
 @dataclass(frozen=True)
@@ -78,6 +89,14 @@ class LearnSettings:
         (with probability ``START_SHARE`` at the start, otherwise at a cell drawn
         uniformly from the start-goal corridor; see :func:`corridor_states`).
     q_init : ``"heuristic"`` (:func:`heuristic_q`) or ``"zeros"``.
+    schedule : ``"episodes"`` (runs from a start cell, as a vehicle would fly them) or
+        ``"sweeps"`` (synchronous: every reachable state-action pair is updated once per
+        sweep with one transition sampled from the model, pairs in order of their cost
+        to go, nearest the goal first; the step size of the ``n``-th update of a pair
+        is ``n ** -w``, ``w`` = ``step_decay`` or ``SWEEP_DECAY``).
+    max_sweeps : with ``"sweeps"``, the update budget in sweeps; training checks its
+        stopping rule (see :func:`train`) after 4, 8, 16, ... sweeps and stops there
+        when it is met.
     """
 
     epsilon: float = 0.1
@@ -89,6 +108,8 @@ class LearnSettings:
     n_seeds: int = 8
     start_mode: str = "start"
     q_init: str = "heuristic"
+    schedule: str = "episodes"
+    max_sweeps: int = 512
 
     def __post_init__(self):
         if not (_is_real(self.epsilon) and 0.0 <= self.epsilon <= 1.0):
@@ -109,6 +130,11 @@ class LearnSettings:
             raise SettingsError(f"--start-mode must be 'start' or 'explore', got {self.start_mode!r}")
         if self.q_init not in ("heuristic", "zeros"):
             raise SettingsError(f"--q-init must be 'heuristic' or 'zeros', got {self.q_init!r}")
+        if self.schedule not in SCHEDULES:
+            raise SettingsError(f"LearnSettings.schedule must be one of {', '.join(SCHEDULES)}, got {self.schedule!r}")
+        if not (_is_whole(self.max_sweeps) and 1 <= self.max_sweeps <= MAX_SWEEPS):
+            raise SettingsError(f"LearnSettings.max_sweeps must be a whole number in [1, {MAX_SWEEPS}], "
+                                f"got {self.max_sweeps!r}")
 
 
 def _is_real(value) -> bool:
@@ -142,6 +168,14 @@ class Learned:
     seed_spawn_key : spawn key of the ``SeedSequence`` passed in (empty for a root).
     steps_total : environment steps over all seeds and episodes.
     seconds : wall time of the training kernels (tables prepared beforehand excluded).
+    check_updates : int64 ``(n_checks,)``, updates made over all seeds at each check
+        of the stopping rule (sweeps schedule; empty otherwise).
+    check_p_incident : float64 ``(n_checks,)``, the consensus policy's exact
+        P(incident) at each check, as the stopping rule reported it (NaN without one).
+    check_value : float64 ``(n_seeds, n_checks)``, each seed's greedy value at the
+        start (``max_a Q``) at each check: the seed bands of the learning curve.
+    stopped_by_rule : whether the stopping rule ended training before the budget.
+    n_sweeps : sweeps made per seed (sweeps schedule; 0 otherwise).
     """
 
     method: str
@@ -156,6 +190,11 @@ class Learned:
     seed_spawn_key: tuple[int, ...]
     steps_total: int
     seconds: float
+    check_updates: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    check_p_incident: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    check_value: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    stopped_by_rule: bool = False
+    n_sweeps: int = 0
 
     @property
     def n_seeds(self) -> int:
@@ -348,8 +387,7 @@ def greedy_actions(q: np.ndarray, rng: np.random.Generator | None = None) -> np.
     return np.argmax(keys, axis=1).astype(np.int64)
 
 
-def learned_ties(learned: Learned, tie_m: float = 0.0, *, z: float = 2.0,
-                 max_slack_m: float | None = None) -> np.ndarray:
+def learned_ties(learned, tie_m: float = 0.0, *, z: float = 2.0, max_slack_m: float | None = None) -> np.ndarray:
     """Actions a learned Q cannot tell apart from its best: the tie set of a learned policy.
 
     An action is tied with the best when its mean Q over the seeds is within ``tie_m``
@@ -360,7 +398,7 @@ def learned_ties(learned: Learned, tie_m: float = 0.0, *, z: float = 2.0,
 
     Parameters
     ----------
-    learned : a :class:`Learned`.
+    learned : a :class:`Learned`, or its per-seed Q, float ``(n_seeds, n_states, n_actions)``.
     tie_m : tolerance in metres-equivalent (>= 0).
     z : how many standard errors of the difference count as "cannot tell apart".
     max_slack_m : cap on the slack (``plan`` allows the seeds' spread to add at most 5 %
@@ -371,8 +409,8 @@ def learned_ties(learned: Learned, tie_m: float = 0.0, *, z: float = 2.0,
     -------
     bool ``(n_states, n_actions)``; every row has at least one True.
     """
-    q = np.asarray(learned.q, dtype=np.float64)
-    mean = learned.q_mean
+    q = np.asarray(getattr(learned, "q", learned), dtype=np.float64)
+    mean = q.mean(axis=0)
     n = q.shape[0]
     se = q.std(axis=0, ddof=1) / math.sqrt(n) if n > 1 else np.zeros_like(mean)
     best = mean.max(axis=1, keepdims=True)
@@ -478,7 +516,7 @@ def _entropy(root: np.random.SeedSequence):
 
 
 def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), *, seed=None,
-          cost_to_go=None, n_jobs: int | None = None, progress=None) -> Learned:
+          cost_to_go=None, n_jobs: int | None = None, progress=None, stop_rule=None) -> Learned:
     """Train SARSA (``"sarsa"``, cautious) or Q-learning (``"qlearning"``, shortest).
 
     Each seed runs ``settings.episodes`` episodes of epsilon-greedy behaviour (greedy
@@ -496,9 +534,13 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
         exploring-start corridor; default :func:`model_cost_to_go`.
     n_jobs : threads; default the usable cores (at most ``n_seeds``).
     progress : optional ``callable(done, total)``, called from the calling thread about
-        every ``PROGRESS_SECONDS`` with episodes finished and episodes in all (over all
-        seeds). A ``KeyboardInterrupt`` while training stops the workers after their
+        every ``PROGRESS_SECONDS`` with episodes (or sweeps) finished and in all (over
+        all seeds). A ``KeyboardInterrupt`` while training stops the workers after their
         current chunk and is re-raised.
+    stop_rule : sweeps schedule only: optional ``callable(q_mean, q) -> (done,
+        p_incident)`` checked after 4, 8, 16, ... sweeps of every seed (so the result
+        does not depend on timing or on ``n_jobs``); training stops at the first check
+        that says ``done``. ``plan`` passes the risk verdict against the exact reference.
 
     Returns
     -------
@@ -535,6 +577,9 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
     n_s, n_a, n_seeds, n_ep = model.n_states, model.n_actions, settings.n_seeds, settings.episodes
     q0 = heuristic_q(model, to_go) if settings.q_init == "heuristic" else np.zeros((n_s, n_a))
     q = np.repeat(q0[None], n_seeds, axis=0)
+    if settings.schedule == "sweeps":
+        return _train_sweeps(model, method, settings, q, to_go, states, root, int(max_steps), int(n_jobs), progress,
+                             stop_rule)
     returns = np.zeros((n_seeds, n_ep), np.float64)
     moves = np.zeros((n_seeds, n_ep), np.int32)
     ends = np.zeros((n_seeds, n_ep), np.int16)
@@ -581,6 +626,93 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
         method=method, settings=settings, q=q, q_mean=q.mean(axis=0), returns=returns, moves=moves, ends=ends,
         max_steps=int(max_steps), seed_entropy=_entropy(root), seed_spawn_key=tuple(int(k) for k in root.spawn_key),
         steps_total=int(sum(totals)), seconds=seconds,
+    )
+
+
+def sweep_order(model: Model, cost_to_go: np.ndarray) -> np.ndarray:
+    """The (state, action) blocks a sweep updates, in the order it updates them.
+
+    Every action of every active state from which the goal can be reached, states in
+    increasing cost to go (nearest the goal first, so that one sweep carries values
+    along a whole route), actions in index order within a state.
+
+    Returns
+    -------
+    int64 ``(n_pairs,)`` flat block indices ``s * n_actions + a``.
+    """
+    cost = _checked_cost_to_go(model, cost_to_go)
+    ok = model.active & np.isfinite(cost) & ~model.goal
+    states = np.flatnonzero(ok)
+    states = states[np.argsort(cost[states], kind="stable")]
+    return (states[:, None] * model.n_actions + np.arange(model.n_actions)[None, :]).ravel().astype(np.int64)
+
+
+def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_jobs, progress, stop_rule):
+    """The sweeps schedule of :func:`train` (see :class:`LearnSettings`)."""
+    n_a, n_seeds = model.n_actions, settings.n_seeds
+    order = sweep_order(model, to_go)
+    table = sampling_table(model)
+    decay = SWEEP_DECAY if settings.step_decay is None else float(settings.step_decay)
+    rng_states = [np.uint64(x) for x in states]
+    checks, p_checks, values = [], [], []
+    lock, stop, done = threading.Lock(), threading.Event(), [0]
+    budget = int(settings.max_sweeps)
+    # Checkpoints 4, 8, 16, ... and the budget; every seed reaches each one before the
+    # stopping rule looks, so the result is the same for any number of threads.
+    marks = []
+    m = FIRST_CHECK_SWEEPS
+    while m < budget:
+        marks.append(m)
+        m *= 2
+    marks.append(budget)
+
+    def run(i, first, last):
+        flat_q = q[i].reshape(-1)
+        at = first
+        while at < last and not stop.is_set():
+            # Small calls, so that progress is reported and a stop request is honoured.
+            step = min(last - at, max(1, budget // PROGRESS_CHUNKS))
+            rng_states[i] = np.uint64(_sweep_seed(
+                model.offsets, table, n_a, flat_q, METHODS[method], float(settings.epsilon), float(settings.gamma),
+                decay, order, at, step, rng_states[i]))
+            at += step
+            with lock:
+                done[0] += step
+
+    began = time.perf_counter()
+    swept, stopped = 0, False
+    with ThreadPoolExecutor(max_workers=min(int(n_jobs), n_seeds)) as pool:
+        for mark in marks:
+            futures = [pool.submit(run, i, swept, mark) for i in range(n_seeds)]
+            try:
+                pending = set(futures)
+                while pending:
+                    _, pending = wait(pending, timeout=PROGRESS_SECONDS)
+                    if progress is not None:
+                        progress(done[0], n_seeds * budget)
+            except BaseException:
+                stop.set()
+                raise
+            for f in futures:
+                f.result()
+            swept = mark
+            mean = q.mean(axis=0)
+            p_incident = math.nan
+            if stop_rule is not None:
+                stopped, p_incident = stop_rule(mean, q)
+            checks.append(swept * order.size * n_seeds)
+            p_checks.append(p_incident)
+            values.append(q[:, model.start, :].max(axis=1))
+            if stopped:
+                break
+    seconds = time.perf_counter() - began
+    empty = np.zeros((n_seeds, 0))
+    return Learned(
+        method=method, settings=settings, q=q, q_mean=q.mean(axis=0), returns=empty, moves=empty.astype(np.int32),
+        ends=empty.astype(np.int16), max_steps=max_steps, seed_entropy=_entropy(root),
+        seed_spawn_key=tuple(int(k) for k in root.spawn_key), steps_total=int(checks[-1]), seconds=seconds,
+        check_updates=np.array(checks, np.int64), check_p_incident=np.array(p_checks, np.float64),
+        check_value=np.array(values, np.float64).T, stopped_by_rule=bool(stopped), n_sweeps=int(swept),
     )
 
 
@@ -765,9 +897,44 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
     return total, state
 
 
+@numba.njit(cache=True, nogil=True)
+def _sweep_seed(offsets, table, n_actions, q, method, epsilon, gamma, decay, order, done, n_sweeps, rng_state):
+    """Sweeps ``done + 1`` to ``done + n_sweeps`` over the (state, action) blocks in
+    ``order``: one transition sampled from the model per block and sweep, one TD update
+    of ``q`` (flat, in place).
+
+    Q-learning (``method`` 1) bootstraps on the best next value; SARSA (0) on the value
+    of a next action drawn from the current epsilon-greedy policy. Every block is
+    updated once per sweep, so the ``n``-th update of every block falls in sweep ``n``
+    and its step size ``n ** -decay`` (a polynomial schedule, ``decay`` in (0.5, 1]) is
+    one number per sweep. Returns the generator state to continue from.
+    """
+    state = rng_state
+    for sweep in range(done + 1, done + n_sweeps + 1):
+        alpha = float(sweep) ** (-decay)
+        for i in range(order.size):
+            k = order[i]
+            state, z = _next(state)
+            rec = table[_sample(table, offsets[k], offsets[k + 1] - 1, np.uint32(z >> _S32))]
+            r = rec.reward
+            code = rec.code
+            if code < 0:
+                q[k] += alpha * (r - q[k])
+                continue
+            base2 = code * n_actions
+            state, g2, best2 = _greedy(q, base2, n_actions, state)
+            if method == 0:
+                state, a2 = _explore(g2, n_actions, epsilon, state)
+                q[k] += alpha * (r + gamma * q[base2 + a2] - q[k])
+            else:
+                q[k] += alpha * (r + gamma * best2 - q[k])
+    return state
+
+
 __all__ = [
     "CORRIDOR_MARGIN", "END_STEP_CAP", "METHODS", "Learned", "LearnSettings", "corridor_states",
     "TABLE_DTYPE", "fewest_moves", "greedy_actions", "heuristic_q", "learned_ties", "model_cost_to_go",
+    "sweep_order",
     "sampling_table", "seed_states", "train",
 ]
 
@@ -775,11 +942,19 @@ __all__ = [
 def learning_curves(learned: Learned, n_bins: int = 1000) -> dict[str, np.ndarray]:
     """Per-seed learning curves averaged over consecutive blocks of episodes.
 
+    With the sweeps schedule: ``update_end`` (int64 ``(n_checks,)``, updates over all
+    seeds at each check), ``start_value`` (float64 ``(n_seeds, n_checks)``, each seed's
+    greedy value at the start) and ``p_incident`` (float64 ``(n_checks,)``, the
+    consensus policy's exact P(incident) as the stopping rule found it).
+
     Returns ``episode_end`` (int64 ``(n_bins,)``, last episode of each block, 1-based)
     and float64 ``(n_seeds, n_bins)`` arrays ``return_mean``, ``moves_mean``,
     ``goal_share`` and ``incident_share`` (boundary or an ending hazard). Small enough
     to keep in a run folder whatever the number of episodes.
     """
+    if learned.settings.schedule == "sweeps":
+        return {"update_end": learned.check_updates, "start_value": learned.check_value,
+                "p_incident": learned.check_p_incident}
     n_ep = learned.returns.shape[1]
     n_bins = max(1, min(int(n_bins), n_ep))
     edges = np.linspace(0, n_ep, n_bins + 1).round().astype(np.int64)

@@ -214,9 +214,20 @@ def _moving_average(values: np.ndarray, window: int) -> np.ndarray:
 def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Path:
     """Return per episode (moving average; mean and min-max band over seeds) for both
     learners, and hazard incidents per episode during training."""
-    fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(7.5, 6.2), dpi=style.FIGURE_DPI, sharex=True,
-                                   gridspec_kw={"height_ratios": [2.2, 1.0]})
-    for name, result in learned.items():
+    episodic = {n: r for n, r in learned.items() if r.settings.schedule == "episodes"}
+    swept = {n: r for n, r in learned.items() if r.settings.schedule == "sweeps"}
+    rows = (2 if episodic else 0) + (1 if swept else 0)
+    fig, axes = plt.subplots(rows, 1, figsize=(7.5, 6.2 if episodic else 3.4) if not (episodic and swept)
+                             else (7.5, 8.4), dpi=style.FIGURE_DPI,
+                             gridspec_kw={"height_ratios": ([2.2, 1.0] if episodic else []) + ([1.4] if swept else [])})
+    axes = np.atleast_1d(axes)
+    if swept:
+        _sweep_panel(axes[-1], swept, title if not episodic else None)
+    if not episodic:
+        return _save_learning(fig, path)
+    ax1, ax2 = axes[0], axes[1]
+    ax2.sharex(ax1)
+    for name, result in episodic.items():
         look = style.POLICY[name]
         n_ep = result.returns.shape[1]
         window = max(1, n_ep // 50)
@@ -237,6 +248,30 @@ def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Pat
     ax2.set_ylim(bottom=0)
     ax2.grid(alpha=0.3)
     ax2.legend(fontsize=style.FONT_SIZE - 1, loc="upper right")
+    return _save_learning(fig, path)
+
+
+def _sweep_panel(ax, swept: dict, title: str | None) -> None:
+    """Learners trained in sweeps: the consensus policy's exact P(incident) at each check
+    of the stopping rule, against the updates made (all seeds together)."""
+    for name, result in swept.items():
+        look = style.POLICY[name]
+        p = np.asarray(result.check_p_incident, dtype=float)
+        x = np.asarray(result.check_updates, dtype=float)
+        ax.plot(x, np.maximum(p, 1e-12), color=look["color"], ls=look["linestyle"], lw=1.6, marker="o", ms=3.5,
+                label=f"{look['label']}: {result.q.shape[0]} seeds, "
+                      + ("stopped when its verdict passed" if result.stopped_by_rule else "whole budget used"))
+    ax.set_xscale("log")
+    ax.set_yscale("log")
+    ax.set_xlabel("updates (one sampled transition each, all seeds)")
+    ax.set_ylabel("P(incident) of the\ngreedy policy (exact)")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=style.FONT_SIZE - 1, loc="best")
+    if title:
+        ax.set_title(title, loc="left", fontsize=style.FONT_SIZE + 2)
+
+
+def _save_learning(fig, path) -> Path:
     fig.text(0.01, 0.005, style.FIGURE_NOTICE + "; band = range over seeds", fontsize=style.FONT_SIZE - 2,
              color="#666666")
     fig.tight_layout()

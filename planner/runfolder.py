@@ -135,6 +135,8 @@ class PlanSettings:
     alt_m: float | None = None
     convergence_threshold: float = 0.95
     tie_m: float = 0.01
+    cautious_schedule: str = "episodes"
+    shortest_schedule: str = "sweeps"
 
     def __post_init__(self):
         if not 0.0 <= self.learn.epsilon < 1.0:
@@ -173,6 +175,7 @@ SETTING_TYPES = {
     "episodes_shortest": (int, type(None)), "budget": (int, type(None)), "rollouts": (int,),
     "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
     "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
+    "cautious_schedule": (str,), "shortest_schedule": (str,),
 }
 
 
@@ -327,21 +330,11 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     seed_cautious, seed_shortest, seed_risk = root.spawn(3)
     to_go = cost_to_goal(grid, settings.dynamics.n_actions,
                          hazard_penalty_m=model.penalty_m, unit_cost=settings.dynamics.step_cost == "move")
-    learn_cautious = settings.learn
-    learn_shortest = settings.learn if settings.episodes_shortest is None else dataclasses.replace(
-        settings.learn, episodes=settings.episodes_shortest)
-    t = time.perf_counter()
-    progress(f"training SARSA (cautious): {learn_cautious.n_seeds} seeds x {learn_cautious.episodes:,} episodes")
-    cautious = train(model, "sarsa", learn_cautious, seed=seed_cautious, cost_to_go=to_go,
-                     progress=progress.fraction("SARSA"))
-    progress(f"training Q-learning (shortest): {learn_shortest.n_seeds} seeds x {learn_shortest.episodes:,} episodes")
-    shortest = train(model, "qlearning", learn_shortest, seed=seed_shortest, cost_to_go=to_go,
-                     progress=progress.fraction("Q-learning"))
-    timings["learn_s"] = time.perf_counter() - t
-
-    t = time.perf_counter()
-    progress("solving the exact references (value iteration)")
     eps = settings.learn.epsilon
+    t = time.perf_counter()
+    # The exact references come first: the sweeps schedule stops on the risk verdict
+    # against them.
+    progress("solving the exact references (value iteration)")
     exact = {"cautious": on_policy_q(model, eps), "shortest": optimal_q(model)}
     # Ties by safety: among equally good actions, the one that minimises P(incident) at
     # the run's noise; the riskiest tie-break gives the other end of the range.
@@ -350,14 +343,39 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     references = {name: safest_among(model, equally_good(exact[name].q, settings.tie_m), eps, value=exact[name].q)
                   for name in POLICIES}
     timings["exact_s"] = time.perf_counter() - t
-    learned = {"cautious": cautious, "shortest": shortest}
     cheapest_m = float(-model.reward[model.event == 0].max())
     # The seeds' spread may widen a learned tie set by at most LEARNED_SLACK_SHARE of the
     # cheapest move: wider sets of a barely trained Q let the safety rule pick moves that
     # go round in loops.
     slack_m = settings.tie_m + LEARNED_SLACK_SHARE * cheapest_m
-    greedy = {name: safest_among(model, learned_ties(learned[name], settings.tie_m, max_slack_m=slack_m), eps,
-                                 value=learned[name].q_mean, riskiest=False).greedy for name in POLICIES}
+
+    def delivered(q):
+        """The consensus policy of per-seed Q ``q``: the safest among its learned ties."""
+        return safest_among(model, learned_ties(q, settings.tie_m, max_slack_m=slack_m), eps, value=q.mean(axis=0),
+                            riskiest=False).greedy
+
+    def stop_rule(name):
+        def rule(_mean, q):
+            verdict = risk_verdict(model, delivered(q), references[name])
+            return verdict.converged, verdict.p_incident
+        return rule
+
+    learn_cautious = dataclasses.replace(settings.learn, schedule=settings.cautious_schedule)
+    learn_shortest = dataclasses.replace(
+        settings.learn, schedule=settings.shortest_schedule,
+        episodes=settings.learn.episodes if settings.episodes_shortest is None else settings.episodes_shortest)
+    t = time.perf_counter()
+    learned = {}
+    for name, method, how, seed in (("cautious", "sarsa", learn_cautious, seed_cautious),
+                                    ("shortest", "qlearning", learn_shortest, seed_shortest)):
+        label = METHOD_NAMES[method]
+        budget = (f"up to {how.max_sweeps:,} sweeps, stopping when its risk verdict passes"
+                  if how.schedule == "sweeps" else f"{how.episodes:,} episodes")
+        progress(f"training {label} ({name}): {how.n_seeds} seeds x {budget}")
+        learned[name] = train(model, method, how, seed=seed, cost_to_go=to_go, progress=progress.fraction(label),
+                              stop_rule=stop_rule(name) if how.schedule == "sweeps" else None)
+    timings["learn_s"] = time.perf_counter() - t
+    greedy = {name: delivered(learned[name].q) for name in POLICIES}
     seed_greedy = {name: [safest_among(model, equally_good(q, settings.tie_m), eps, value=q, riskiest=False).greedy
                           for q in learned[name].q] for name in POLICIES}
     tie_m = TIE_CELLS * grid.cell_m
@@ -385,7 +403,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     for name in POLICIES:
         verdict = risk_verdict(model, greedy[name], references[name], seed_policies=seed_greedy[name],
                                mc_halfwidth=_mc_halfwidth(find_row(risk_rows, name, eps, base)), fmt=format_prob)
-        convergence[name] = convergence[name].judged_by(verdict, learned[name].settings.episodes)
+        convergence[name] = convergence[name].judged_by(verdict, **_training_notes(learned[name]))
     risk_rows = _with_verdicts(risk_rows, convergence, references, eps, base)
     return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
                       convergence=convergence, references=references, paths=paths, routes=routes,
@@ -398,6 +416,17 @@ LEARNED_SLACK_SHARE = 0.05
 REFERENCE_ROWS = {"cautious": "exact on-policy", "shortest": "exact optimal"}
 #: Normal quantile of the two-sided 99 % interval.
 Z99 = 2.5758293035489004
+
+
+def _training_notes(learned) -> dict:
+    """What a learner's training took, and what to try when its verdict fails."""
+    how = learned.settings
+    if how.schedule == "sweeps":
+        used = (f"{learned.steps_total:.2e} updates ({learned.n_sweeps:,} sweeps"
+                + (", stopped when its verdict passed)" if learned.stopped_by_rule else ", the whole budget)"))
+        return {"used": used, "advice": f"try --max-sweeps {4 * how.max_sweeps}"}
+    return {"used": f"{learned.steps_total:.2e} updates ({how.episodes:,} episodes per seed)",
+            "advice": f"try --episodes {4 * how.episodes}"}
 
 
 def _mc_halfwidth(row) -> float:
@@ -583,6 +612,10 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
             "value_gap_m": None if not np.isfinite(conv.value_gap_m) else round(conv.value_gap_m, 6),
             "seed_routes_matching": conv.seed_routes_matching, "n_seeds": conv.n_seeds, "message": conv.message,
             "episodes": learned.settings.episodes, "max_steps": learned.max_steps,
+            "schedule": learned.settings.schedule, "updates": int(learned.steps_total),
+            "sweeps": int(learned.n_sweeps), "stopped_by_rule": bool(learned.stopped_by_rule),
+            "checks": {"updates": [int(u) for u in learned.check_updates],
+                       "p_incident": [None if not np.isfinite(p) else float(p) for p in learned.check_p_incident]},
             "delivered": f"learned ({METHOD_NAMES[learned.method]}), "
                          f"{'converged' if conv.converged else 'not converged'}",
             "verdict": _verdict_record(conv.verdict, result.references[name]),

@@ -25,7 +25,7 @@ from planner.cli import cli
 from planner.risk import format_prob
 
 #: Small settings: a few seconds in all, not converged (the summary says so).
-SMALL = ["--cell", "2", "--episodes", "2000", "--seeds", "2", "--rollouts", "300", "--seed", "5"]
+SMALL = ["--cell", "2", "--episodes", "2000", "--max-sweeps", "4", "--seeds", "2", "--rollouts", "300", "--seed", "5"]
 #: Every file a run folder holds.
 RUN_FILES = {
     "manifest.json", "policies.npz", "training.npz", "routes-cautious.geojson", "routes-shortest.geojson",

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
@@ -21,6 +23,7 @@ from planner.learn import (
     heuristic_q,
     model_cost_to_go,
     sampling_table,
+    sweep_order,
     train,
 )
 from planner.model import Dynamics, build_model
@@ -297,3 +300,80 @@ def test_train_refuses_unknown_method_and_jobs(cliff):
         train(cliff, "sarsa", LearnSettings(episodes=1, n_seeds=1), n_jobs=0)
     with pytest.raises(SettingsError, match="--seed"):
         train(cliff, "sarsa", LearnSettings(episodes=1, n_seeds=1), seed=-3)
+
+
+# ----------------------------------------------------------------------------- sweeps schedule
+
+
+SWEEPS = LearnSettings(epsilon=0.1, n_seeds=4, schedule="sweeps", max_sweeps=4096)
+
+
+def test_sweeps_qlearning_reaches_the_optimum_on_the_cliff(cliff):
+    # Example 6.6, Sutton & Barto 2nd ed. (2018): the optimum walks the cliff edge in 13
+    # moves. Deterministic moves, so synchronous Q-learning's fixed point is Q* itself.
+    result = train(cliff, "qlearning", dataclasses.replace(SWEEPS, max_sweeps=256), seed=3)
+    exact = optimal_q(cliff)
+    act = cliff.active
+    assert_allclose(result.q_mean[act], exact.q[act], atol=1e-6)
+    path = nominal_path(cliff, np.argmax(result.q_mean, axis=1))
+    assert path.reached_goal and path.n_moves == 13
+    assert result.n_sweeps == 256 and not result.stopped_by_rule
+    assert result.steps_total == 256 * sweep_order(cliff, model_cost_to_go(cliff)).size * 4
+
+
+def test_sweeps_qlearning_averages_a_stochastic_corridor():
+    # A corridor of 6 cells where each move stalls with probability 0.25: the expected
+    # number of moves from the west end is 5 / 0.75 (geometric trials per cell).
+    from test_exact import corridor_model
+
+    model = corridor_model(6, stall=0.25)
+    result = train(model, "qlearning", dataclasses.replace(SWEEPS, n_seeds=8), seed=11)
+    east = 1
+    assert_allclose(result.q_mean[model.start, east], -5 / 0.75, rtol=0.01)
+
+
+def test_sweeps_sarsa_approaches_the_epsilon_greedy_fixed_point_on_the_cliff(cliff):
+    # Example 6.6: the on-policy solution at epsilon 0.1 keeps off the cliff edge. SARSA's
+    # sampled next action keeps its targets noisy; with 4,096 sweeps and 4 seeds the start's
+    # value is within a move of the exact fixed point and the route keeps off the edge row.
+    result = train(cliff, "sarsa", SWEEPS, seed=5)
+    exact = on_policy_q(cliff, 0.1)
+    assert abs(result.q_mean[cliff.start].max() - exact.q[cliff.start].max()) < 1.0
+    route = nominal_path(cliff, np.argmax(result.q_mean, axis=1))
+    assert route.reached_goal
+    assert all(r >= 2 for r, _ in cells(cliff, route.states)[2:-2])
+
+
+def test_sweeps_same_seed_same_arrays_whatever_the_thread_count(cliff):
+    settings = dataclasses.replace(SWEEPS, max_sweeps=64)
+    one = train(cliff, "sarsa", settings, seed=8, n_jobs=1)
+    two = train(cliff, "sarsa", settings, seed=8, n_jobs=2)
+    np.testing.assert_array_equal(one.q, two.q)
+    np.testing.assert_array_equal(one.check_value, two.check_value)
+    other = train(cliff, "sarsa", settings, seed=9, n_jobs=2)
+    assert not np.array_equal(one.q, other.q)
+
+
+def test_sweeps_stop_at_the_first_check_the_rule_passes(cliff):
+    calls = []
+
+    def rule(mean, q):
+        calls.append(q.copy())
+        return len(calls) == 3, 0.5 / len(calls)
+
+    result = train(cliff, "qlearning", SWEEPS, seed=2, stop_rule=rule)
+    # Checks after 4, 8 and 16 sweeps; the third passes.
+    assert result.n_sweeps == 16 and result.stopped_by_rule
+    assert_allclose(result.check_p_incident, [0.5, 0.25, 0.5 / 3])
+    n_pairs = sweep_order(cliff, model_cost_to_go(cliff)).size
+    assert result.check_updates.tolist() == [4 * n_pairs * 4, 8 * n_pairs * 4, 16 * n_pairs * 4]
+    assert result.check_value.shape == (4, 3)
+    np.testing.assert_array_equal(calls[-1], result.q)
+
+
+def test_sweep_order_puts_the_goal_side_first(cliff):
+    order = sweep_order(cliff, model_cost_to_go(cliff))
+    states = order[:: cliff.n_actions] // cliff.n_actions
+    cost = model_cost_to_go(cliff)[states]
+    assert np.all(np.diff(cost) >= 0)
+    assert set(states) == set(np.flatnonzero(cliff.active & ~cliff.goal & np.isfinite(model_cost_to_go(cliff))))

@@ -82,10 +82,16 @@ def default_episodes(n_active: int) -> int:
 @click.option("--tie-m", type=float, default=0.01, show_default=True, metavar="M",
               help="Actions within this many metres-equivalent of the best are equally good; among them the "
                    "safest is taken (must stay below the shortest move).")
+@click.option("--shortest-schedule", type=click.Choice(["sweeps", "episodes"]), default="sweeps", show_default=True,
+              help="How Q-learning samples: sweeps over every state-action pair (stopping when its risk verdict "
+                   "passes), or episodes from the start like SARSA.")
+@click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), default=512, show_default=True,
+              help="Update budget of the sweeps schedule, in sweeps.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress display.")
 def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions,
          slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay, gamma, episodes, max_steps,
-         n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m, tie_m, quiet):
+         n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m, tie_m, shortest_schedule,
+         max_sweeps, quiet):
     """Plan the cautious and the shortest route across SITE and write the run folder OUT.
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
@@ -111,11 +117,11 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
         raise click.BadParameter(f"{alt_m:g} is not an altitude in [0, 10000] m", param_hint="--alt-m")
     learn = LearnSettings(epsilon=epsilon, step_size=step_size, step_decay=step_decay, gamma=gamma,
                           episodes=episodes, max_steps=max_steps, n_seeds=n_seeds, start_mode=start_mode,
-                          q_init=q_init)
+                          q_init=q_init, max_sweeps=max_sweeps)
     settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn, noises=float_list(noises, "--noise"),
                             drift_scales=float_list(drift_scales, "--drift-scales"), budget=budget,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
-                            tie_m=tie_m)
+                            tie_m=tie_m, shortest_schedule=shortest_schedule)
     show = not quiet and sys.stderr.isatty()
     progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
     with stop_on_sigterm():
