@@ -98,7 +98,7 @@ def optimal_q(model: Model, *, gamma: float = 1.0, tol: float = 1e-9, max_iter: 
 
 
 def on_policy_q(model: Model, epsilon: float, *, gamma: float = 1.0, tol: float = 1e-9,
-                max_iter: int = DEFAULT_MAX_ITER) -> ExactSolution:
+                max_iter: int = DEFAULT_MAX_ITER, warm: np.ndarray | None = None) -> ExactSolution:
     """The epsilon-greedy on-policy fixed point by value iteration.
 
     ``V(s) = (1 - epsilon) max_a Q(s, a) + epsilon mean_a Q(s, a)``: the value of
@@ -112,6 +112,9 @@ def on_policy_q(model: Model, epsilon: float, *, gamma: float = 1.0, tol: float 
     gamma : discount in (0, 1].
     tol : largest change of a synchronous Bellman update accepted as converged.
     max_iter : cap on sweeps.
+    warm : optional float ``(n_states,)`` values to start from (e.g. the ``v`` of a
+        solution on the same grid with a nearby penalty); default the deterministic
+        cost to go.
 
     Returns
     -------
@@ -124,7 +127,7 @@ def on_policy_q(model: Model, epsilon: float, *, gamma: float = 1.0, tol: float 
     """
     if not (_is_number(epsilon) and 0.0 <= epsilon <= 1.0):
         raise SettingsError(f"--epsilon must be a number in [0, 1], got {epsilon!r}")
-    return _solve(model, float(epsilon), gamma, tol, max_iter)
+    return _solve(model, float(epsilon), gamma, tol, max_iter, warm)
 
 
 def _is_number(value) -> bool:
@@ -132,7 +135,8 @@ def _is_number(value) -> bool:
         and math.isfinite(value)
 
 
-def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int) -> ExactSolution:
+def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int,
+           warm: np.ndarray | None = None) -> ExactSolution:
     if not (_is_number(gamma) and 0.0 < gamma <= 1.0):
         raise SettingsError(f"--gamma must be a number in (0, 1], got {gamma!r}")
     if not (_is_number(tol) and tol > 0):
@@ -144,10 +148,13 @@ def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int
     n_s, n_a = model.n_states, model.n_actions
     escapes = _can_end(model)
     v = np.zeros(n_s)
-    # Start from the deterministic cost to go: close to the answer on most grids.
-    start_cost = model_cost_to_go(model)
-    finite = np.isfinite(start_cost) & model.active
-    v[finite] = -start_cost[finite]
+    if warm is not None:
+        v[:] = np.where(np.isfinite(warm), warm, 0.0)
+    else:
+        # Start from the deterministic cost to go: close to the answer on most grids.
+        start_cost = model_cost_to_go(model)
+        finite = np.isfinite(start_cost) & model.active
+        v[finite] = -start_cost[finite]
     v[model.active & ~escapes] = -np.inf
     orders = _sweep_orders(model, model.active & escapes)
     iterations, residual = _value_iteration(
