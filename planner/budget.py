@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from planner.errors import SettingsError
-from planner.exact import equally_good, on_policy_q, policy_value, safest_among
+from planner.exact import equally_good, on_policy_q, safest_among
 from planner.model import EVENT_BOUNDARY, EVENT_HAZARD, EVENT_NONE, Model
 
 #: Largest penalty the search tries (metres-equivalent per incident): beyond this the
@@ -120,19 +120,14 @@ class _Solver:
         lagrangian = dataclasses.replace(self.model, reward=self.base.reward - penalty_m * self.incident)
         solution = on_policy_q(lagrangian, self.epsilon, warm=self.warm)
         self.warm = solution.v
-        greedy = safest_among(lagrangian, equally_good(solution.q, self.tie_m), self.epsilon, value=solution.q,
-                              riskiest=False).greedy
+        choice = safest_among(lagrangian, equally_good(solution.q, self.tie_m), self.epsilon, value=solution.q,
+                              riskiest=False)
         self.n_solves += 1
-        point = self.evaluate(greedy, penalty_m)
+        # The Lagrangian return is -(length + penalty * P(incident)).
+        point = TradeoffPoint(penalty_m=penalty_m, greedy=choice.greedy, p_incident=choice.p_incident,
+                              length_m=-choice.value - penalty_m * choice.p_incident)
         self.cache[penalty_m] = point
         return point
-
-    def evaluate(self, greedy: np.ndarray, penalty_m: float = math.nan) -> TradeoffPoint:
-        from planner.exact import incident_from_every_state
-
-        value, _, _ = policy_value(self.base, greedy, self.epsilon)
-        p = float(incident_from_every_state(self.model, greedy, self.epsilon)[self.model.start])
-        return TradeoffPoint(penalty_m=penalty_m, greedy=greedy, p_incident=p, length_m=-float(value))
 
 
 def cost_only(model: Model) -> Model:

@@ -350,6 +350,8 @@ class SafestChoice:
     p_incident_max : exact P(incident) from the start of ``riskiest`` (the high end).
     expected_m : expected metres travelled from the start until the run ends, under
         ``greedy`` with noise ``epsilon`` (``inf`` when it may never end).
+    value : the expected return from the start of ``greedy`` with noise ``epsilon``
+        under the model's own rewards (``-inf`` when it may never end).
     n_tied_states : active states with more than one allowed action.
     epsilon : the execution noise of the secondary problem.
     improvements : policy-improvement rounds on exact solves (both ends together).
@@ -360,6 +362,7 @@ class SafestChoice:
     p_incident: float
     p_incident_max: float
     expected_m: float
+    value: float
     n_tied_states: int
     epsilon: float
     improvements: int
@@ -384,12 +387,6 @@ def incident_from_every_state(model: Model, greedy: np.ndarray, epsilon: float, 
     return _incident(model, chain, check=check)
 
 
-def _goal_from_every_state(model: Model, greedy: np.ndarray, epsilon: float, *, check: bool = True) -> np.ndarray:
-    """Exact P(the run ends at the goal) from every state (0 where it never ends)."""
-    chain = policy_chain(model, epsilon_greedy(greedy, model.n_actions, epsilon))
-    return _incident(model, chain, check=check, first=EVENT_GOAL, last=EVENT_GOAL + 1)
-
-
 def _incident(model: Model, chain: Chain, *, check: bool = True, first: int = EVENT_BOUNDARY,
               last: int | None = None) -> np.ndarray:
     """P(the run ends with an event in ``first:last``) from every state (default: an incident)."""
@@ -408,12 +405,17 @@ def expected_metres(model: Model, greedy: np.ndarray, epsilon: float) -> float:
 
 
 def _expected_metres(model: Model, chain: Chain) -> float:
+    return _expected_metres_and_value(model, chain)[0]
+
+
+def _expected_metres_and_value(model: Model, chain: Chain) -> tuple[float, float]:
+    """Expected metres until the run ends and expected return, from the start (one solve)."""
     ends = reaches_absorption(chain, model.active)
     finite = ends & ~reaching(chain.transient, model.active & ~ends)
     if not finite[model.start]:
-        return math.inf
-    metres, _ = solve_transient(chain, chain.move_m, finite)
-    return float(metres[model.start])
+        return math.inf, -math.inf
+    x, _ = solve_transient(chain, np.column_stack([chain.move_m, chain.reward]), finite)
+    return float(x[model.start, 0]), float(x[model.start, 1])
 
 
 def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np.ndarray | None = None,
@@ -477,9 +479,11 @@ def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np
     rounds = 0
     # Safest: the most likely to reach the goal (so a loop that never ends counts as a
     # failure, not as safety); riskiest: the most likely to end in an incident.
-    problems = ((EVENT_GOAL, _goal_from_every_state), (EVENT_BOUNDARY, incident_from_every_state))
+    # Safest: the most likely to reach the goal (so a loop that never ends counts as a
+    # failure, not as safety); riskiest: the most likely to end in an incident.
+    targets = (EVENT_GOAL, EVENT_BOUNDARY) if riskiest else (EVENT_GOAL,)
     picks = []
-    for target, evaluate in problems if riskiest else problems[:1]:
+    for target in targets:
         u = np.zeros(n_s)
         # The sweeps only need to get close: policy improvement on exact solves finishes
         # the job (and copes with near-closed loops, where sweeps crawl).
@@ -487,25 +491,30 @@ def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np
                          flat, -1.0, float(tol), int(max_iter), orders, u)
         greedy = _pick(model.offsets, model.next_state, model.prob, model.event, target, n_a, flat, -1.0, u,
                        rank, active, np.full(n_s, -1, np.int64))
-        best, best_value, seen = greedy, -np.inf, set()
+        best, best_value, seen = None, -np.inf, set()
         for _ in range(MAX_IMPROVEMENTS):
             rounds += 1
-            u = evaluate(model, greedy, epsilon, check=False)
+            chain = policy_chain(model, epsilon_greedy(greedy, n_a, epsilon))
+            if target == EVENT_GOAL:
+                u = _incident(model, chain, check=False, first=EVENT_GOAL, last=EVENT_GOAL + 1)
+            else:
+                u = _incident(model, chain, check=False)
             if u[model.start] > best_value:
-                best, best_value = greedy, float(u[model.start])
+                best, best_value = (greedy, chain), float(u[model.start])
             seen.add(greedy.tobytes())
             greedy = _pick(model.offsets, model.next_state, model.prob, model.event, target, n_a, flat, -1.0, u,
                            rank, active, greedy)
             if greedy.tobytes() in seen:
                 break
         picks.append(best)
-    safe, risky = picks[0], picks[-1]
+    # Every reported figure of a policy comes from one chain (one factorisation, checked).
+    (safe, safe_chain), (risky, risky_chain) = picks[0], picks[-1]
     s0 = model.start
-    p_safe = float(incident_from_every_state(model, safe, epsilon)[s0])
-    p_risky = p_safe if risky is safe else float(incident_from_every_state(model, risky, epsilon)[s0])
+    p_safe = float(_incident(model, safe_chain)[s0])
+    p_risky = p_safe if risky is safe else float(_incident(model, risky_chain)[s0])
+    metres, value = _expected_metres_and_value(model, safe_chain)
     return SafestChoice(
-        greedy=safe, riskiest=risky, p_incident=p_safe, p_incident_max=p_risky,
-        expected_m=expected_metres(model, safe, epsilon),
+        greedy=safe, riskiest=risky, p_incident=p_safe, p_incident_max=p_risky, expected_m=metres, value=value,
         n_tied_states=int((allowed[active].sum(axis=1) > 1).sum()), epsilon=float(epsilon), improvements=rounds,
     )
 
