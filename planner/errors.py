@@ -33,11 +33,27 @@ class RunFolderError(PlannerError, OSError):
 
 
 class Interrupted(PlannerError):
-    """The user stopped a long command; nothing was written."""
+    """The user stopped a long command; the message says what was written (usually nothing)."""
+
+
+class Stopped(KeyboardInterrupt):
+    """A stop signal (SIGINT or SIGTERM) arrived; ``signum`` says which.
+
+    A ``KeyboardInterrupt`` so that every clean-up path written for Ctrl-C also runs
+    for SIGTERM.
+    """
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
 
 
 class PlannerWarning(UserWarning):
     """Root of veerwise's warnings."""
+
+
+class RunFolderWarning(PlannerWarning):
+    """A run folder needed attention (a stale lock taken over, leftovers cleaned)."""
 
 
 class SiteWarning(PlannerWarning):

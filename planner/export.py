@@ -15,6 +15,7 @@ import io
 import json
 import math
 import os
+import stat
 import tempfile
 from collections.abc import Iterable
 from datetime import UTC, datetime
@@ -319,27 +320,85 @@ def process_umask() -> int:
     return mask
 
 
+#: The file that makes a folder a run folder, and the format it names.
+RUN_MANIFEST = "manifest.json"
+RUN_FORMAT = "veerwise-run"
+
+
+def is_run_folder(folder) -> bool:
+    """True when ``folder`` holds a veerwise manifest (a plain file naming our format).
+
+    Only the first few kilobytes are looked at: enough to find the format member,
+    which every manifest writes near its top.
+    """
+    try:
+        fd = os.open(Path(folder) / RUN_MANIFEST, os.O_RDONLY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
+    except OSError:
+        return False
+    try:
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            return False
+        head = os.read(fd, 65536)
+    finally:
+        os.close(fd)
+    return f'"format": "{RUN_FORMAT}"'.encode() in head
+
+
+def refuse_run_folder_target(path, what: str = "output") -> Path:
+    """``path`` resolved (symlinks followed); refused when it lands in a run folder.
+
+    A run folder's files are written only by the run-folder transaction; any other
+    write there (an export over the manifest, a figure over a waypoint file) would
+    destroy the run, so it is refused before any work.
+    """
+    path = Path(path)
+    resolved = path.resolve()
+    if resolved.is_dir():
+        raise RunFolderError(f"{what} {path}: is a folder, expected a file name")
+    if is_run_folder(resolved.parent):
+        raise RunFolderError(f"{what} {path}: lies inside the run folder {resolved.parent}, whose files only "
+                             "veerwise plan and brief write; choose a file outside it")
+    return resolved
+
+
+def fsync_path(path) -> None:
+    """Flush a file or a folder's entries to disk (a folder fsync makes renames in it durable)."""
+    flags = os.O_RDONLY | (getattr(os, "O_DIRECTORY", 0) if Path(path).is_dir() else 0)
+    fd = os.open(path, flags)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
 @contextlib.contextmanager
-def atomic_output(path):
+def atomic_output(path, *, guard: bool = True):
     """Yield a temporary path beside ``path``; rename it into place only on success.
 
     A reader never sees a half-written file: it finds the old file or the new one.
-    The file gets the usual permissions (0666 less the umask).
+    The file gets the usual permissions (0666 less the umask) and is flushed to disk
+    before the rename. A symlink at ``path`` is followed (its target is replaced).
+    With ``guard`` (the default) a target inside a run folder is refused (see
+    :func:`refuse_run_folder_target`); the run-folder transaction passes ``False``.
     """
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
+    path = refuse_run_folder_target(path) if guard else Path(path).resolve()
+    folder = path.parent
     if not folder.is_dir():
         raise RunFolderError(f"{path}: folder {folder} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix or ".tmp", dir=folder)
-    os.close(fd)
-    os.chmod(tmp, 0o666 & ~process_umask())
     try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=path.suffix or ".tmp", dir=folder)
+    except OSError as err:
+        raise RunFolderError(f"{path}: cannot write in {folder} ({err.strerror or err})") from err
+    os.close(fd)
+    try:
+        os.chmod(tmp, 0o666 & ~process_umask())
         yield Path(tmp)
+        fsync_path(tmp)
         os.replace(tmp, path)
     except OSError as err:
-        raise RunFolderError(f"{path}: cannot write ({err.strerror or err})") from err
+        raise RunFolderError(f"{path}: cannot write ({err.strerror or err}); the file was not changed") from err
     finally:
-        if os.path.exists(tmp):
+        if os.path.lexists(tmp):
             os.unlink(tmp)
 
 

@@ -8,9 +8,12 @@ an invalid polygon is an error naming the feature unless ``fix=True``.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import math
+import os
+import stat
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,6 +24,7 @@ import shapely
 from shapely.geometry import MultiPolygon, Point, Polygon
 
 from planner.errors import SettingsError, SiteError, SiteWarning
+from planner.names import check_unique, clean_name, file_key
 
 #: Largest site file read, in bytes, unless the caller raises it.
 DEFAULT_MAX_BYTES = 50_000_000
@@ -166,6 +170,8 @@ class Site:
     zones: tuple[Zone, ...]
     scale_distortion: float
     warnings: tuple[str, ...] = field(default=())
+    #: The site file's bytes as read (empty for a site built from a value in memory).
+    data: bytes = field(default=b"", repr=False, compare=False)
 
     @property
     def hazards(self) -> tuple[Zone, ...]:
@@ -189,41 +195,79 @@ class Site:
 # ----------------------------------------------------------------------------- reading
 
 
+class _Object(dict):
+    """A JSON object that remembers keys it saw more than once (JSON itself keeps the last)."""
+
+    repeated: tuple[str, ...] = ()
+
+
+def _object_pairs(pairs) -> _Object:
+    obj = _Object(pairs)
+    if len(obj) != len(pairs):
+        seen: set[str] = set()
+        obj.repeated = tuple(k for k, _ in pairs if k in seen or seen.add(k))
+    return obj
+
+
+def _refuse_repeated(obj, where: str) -> None:
+    repeated = getattr(obj, "repeated", ())
+    if repeated:
+        raise SiteError(f"{where}: key {repeated[0]!r} appears more than once (JSON would keep only the last); "
+                        "remove the duplicate")
+
+
+def read_site_bytes(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> bytes:
+    """The bytes of a site file, read once, refused by size before reading."""
+    path = Path(path)
+    if max_bytes <= 0:
+        raise SettingsError(f"--max-bytes must be positive, got {max_bytes}")
+    try:
+        if not stat.S_ISREG(path.stat().st_mode):  # a pipe or device would block or never end
+            raise SiteError(f"{path}: not a file")
+        with open(path, "rb") as f:
+            info = os.fstat(f.fileno())
+            if not stat.S_ISREG(info.st_mode):
+                raise SiteError(f"{path}: not a file")
+            if info.st_size > max_bytes:
+                raise SiteError(f"{path}: file is {info.st_size:,} bytes, over the {max_bytes:,}-byte limit "
+                                "(raise it with --max-bytes)")
+            data = f.read(max_bytes + 1)
+    except IsADirectoryError as err:
+        raise SiteError(f"{path}: not a file") from err
+    except OSError as err:
+        raise SiteError(f"{path}: cannot read the site file ({err.strerror or err})") from err
+    if len(data) > max_bytes:
+        raise SiteError(f"{path}: file grew past the {max_bytes:,}-byte limit while it was read "
+                        "(raise it with --max-bytes)")
+    return data
+
+
+def parse_site_bytes(data: bytes, source: str) -> tuple[Any, str]:
+    """Parse a site file's bytes; returns the JSON value and the SHA-256 of exactly these bytes."""
+    digest = hashlib.sha256(data).hexdigest()
+    if not data.strip():
+        raise SiteError(f"{source}: file is empty, expected a GeoJSON FeatureCollection")
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        raise SiteError(f"{source}: not a text file (byte {err.start} is not UTF-8); expected GeoJSON") from err
+    try:
+        obj = json.loads(text, parse_constant=_refuse_constant, object_pairs_hook=_object_pairs)
+    except RecursionError as err:
+        raise SiteError(f"{source}: JSON is nested too deeply to be a site file") from err
+    except json.JSONDecodeError as err:
+        raise SiteError(f"{source}: not valid JSON (line {err.lineno}, column {err.colno}: {err.msg})") from err
+    except ValueError as err:
+        raise SiteError(f"{source}: {err}") from err
+    return obj, digest
+
+
 def read_site_text(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> tuple[Any, str]:
     """Read and parse a site file, refusing it by size before parsing.
 
     Returns the parsed JSON and the SHA-256 of the file's bytes.
     """
-    path = Path(path)
-    if max_bytes <= 0:
-        raise SettingsError(f"--max-bytes must be positive, got {max_bytes}")
-    try:
-        size = path.stat().st_size
-    except OSError as err:
-        raise SiteError(f"{path}: cannot read the site file ({err.strerror or err})") from err
-    if not path.is_file():
-        raise SiteError(f"{path}: not a file")
-    if size > max_bytes:
-        raise SiteError(
-            f"{path}: file is {size:,} bytes, over the {max_bytes:,}-byte limit (raise it with --max-bytes)"
-        )
-    data = path.read_bytes()
-    digest = hashlib.sha256(data).hexdigest()
-    if not data.strip():
-        raise SiteError(f"{path}: file is empty, expected a GeoJSON FeatureCollection")
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as err:
-        raise SiteError(f"{path}: not a text file (byte {err.start} is not UTF-8); expected GeoJSON") from err
-    try:
-        obj = json.loads(text, parse_constant=_refuse_constant)
-    except RecursionError as err:
-        raise SiteError(f"{path}: JSON is nested too deeply to be a site file") from err
-    except json.JSONDecodeError as err:
-        raise SiteError(f"{path}: not valid JSON (line {err.lineno}, column {err.colno}: {err.msg})") from err
-    except ValueError as err:
-        raise SiteError(f"{path}: {err}") from err
-    return obj, digest
+    return parse_site_bytes(read_site_bytes(path, max_bytes=max_bytes), str(path))
 
 
 def _refuse_constant(name: str):
@@ -252,8 +296,14 @@ def load_site(
     SiteError
         Naming the feature (index and name) and the rule it breaks.
     """
-    obj, digest = read_site_text(path, max_bytes=max_bytes)
-    return site_from_geojson(obj, crs=crs, fix=fix, source=str(path), sha256=digest)
+    return site_from_bytes(read_site_bytes(path, max_bytes=max_bytes), source=str(path), crs=crs, fix=fix)
+
+
+def site_from_bytes(data: bytes, *, source: str, crs: str | None = None, fix: bool = False) -> Site:
+    """Validate a site file's bytes; the :class:`Site` keeps them (``data``) with their hash,
+    so what is copied is exactly what was hashed and read."""
+    obj, digest = parse_site_bytes(data, source)
+    return dataclasses.replace(site_from_geojson(obj, crs=crs, fix=fix, source=source, sha256=digest), data=data)
 
 
 def site_from_geojson(
@@ -290,6 +340,8 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
             f"{source}: has a 'crs' member; RFC 7946 GeoJSON is always WGS 84 lon/lat, "
             "so remove it (use --crs to choose the working frame)"
         )
+    _refuse_repeated(obj, source)
+    _refuse_repeated(obj.get("properties"), f"{source}: top-level properties")
     features = obj.get("features")
     if not isinstance(features, list):
         raise SiteError(f"{source}: 'features' must be a list")
@@ -309,9 +361,11 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
                 f"{source}: {len(found)} features with role '{role}' "
                 f"({a['label']} and {b['label']}); exactly one is required"
             )
+    reserved = {file_key(r) for r in RESERVED_NAMES}
     seen: dict[str, str] = {}
+    drawn: dict[str, str] = {}
     for item in parsed:
-        if item["role"] == "hazard" and item["name"] in RESERVED_NAMES:
+        if item["role"] == "hazard" and file_key(item["name"]) in reserved:
             raise SiteError(f"{source}: {item['label']}: hazard name {item['name']!r} is reserved "
                             f"({', '.join(RESERVED_NAMES)} name outcomes in the risk table); rename it")
         if item["role"] in ZONE_ROLES:
@@ -320,6 +374,13 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
                     f"{source}: {item['label']}: zone name {item['name']!r} is already used by {seen[item['name']]}"
                 )
             seen[item["name"]] = item["label"]
+            # The same zone drawn twice would count twice (two pushes, two entries): refuse it.
+            key = json.dumps([item["role"], item["geometry"]], sort_keys=True)
+            if key in drawn:
+                raise SiteError(f"{source}: {item['label']}: repeats the {item['role']} zone {drawn[key]} "
+                                "(same geometry); remove one")
+            drawn[key] = item["label"]
+    check_unique([(item["label"], item["name"]) for item in parsed if item["role"] in ZONE_ROLES], source)
 
     boundary_item = by_role["boundary"][0]
     lon_b, lat_b = _all_lonlat(boundary_item["geometry"])
@@ -356,11 +417,19 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         zones.append(Zone(feature=item["index"], name=item["name"], role=item["role"], geometry=geom,
                           buffered=buffered, **props))
 
+    # Strictly inside: a start or goal on the boundary line (or a goal area sharing only
+    # an edge with it) has no usable cell, and would be accepted by a sloppier test.
     if not boundary.covers(start):
         raise SiteError(f"{source}: {start_item['label']}: start lies outside the boundary")
+    if not boundary.contains(start):
+        raise SiteError(f"{source}: {start_item['label']}: start lies on the boundary's edge; move it strictly "
+                        "inside")
     goal_probe = goal if goal.geom_type == "Point" else goal.representative_point()
     if not boundary.intersects(goal):
         raise SiteError(f"{source}: {goal_item['label']}: goal lies outside the boundary")
+    if not boundary.contains(goal):
+        raise SiteError(f"{source}: {goal_item['label']}: goal is not strictly inside the boundary (on its edge "
+                        "or partly outside); move it inside")
     if start.equals(goal) or (goal.geom_type != "Point" and goal.covers(start)):
         raise SiteError(f"{source}: {start_item['label']}: start is at the goal; nothing to plan")
     for z in zones:
@@ -385,18 +454,15 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
             )
 
     hazards = [z for z in zones if z.role == "hazard"]
-    for i, a in enumerate(hazards):
-        for b in hazards[i + 1:]:
-            if a.ends_run != b.ends_run and a.buffered.intersection(b.buffered).area > 0:
-                site_warnings.append(
-                    f"{a.label} and {b.label} overlap with different ends_run; "
-                    "cells in the overlap end the run"
-                )
+    for a, b in _overlapping([z.buffered for z in hazards], hazards):
+        if a.ends_run != b.ends_run:
+            site_warnings.append(
+                f"{a.label} and {b.label} overlap with different ends_run; "
+                "cells in the overlap end the run"
+            )
     drifts = [z for z in zones if z.role == "drift"]
-    for i, a in enumerate(drifts):
-        for b in drifts[i + 1:]:
-            if a.geometry.intersection(b.geometry).area > 0:
-                site_warnings.append(f"drift zones {a.label} and {b.label} overlap; their pushes add as vectors")
+    for a, b in _overlapping([z.geometry for z in drifts], drifts):
+        site_warnings.append(f"drift zones {a.label} and {b.label} overlap; their pushes add as vectors")
 
     distortion = frame.scale_distortion(lon_b, lat_b)
     name = boundary_item["name"]
@@ -407,6 +473,25 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         start_name=start_item["name"], goal_name=goal_item["name"], zones=tuple(zones),
         scale_distortion=distortion, warnings=tuple(site_warnings),
     )
+
+
+def _overlapping(geometries: list, items: list) -> list[tuple]:
+    """Pairs of ``items`` (in file order) whose geometries overlap with positive area.
+
+    Candidates come from one bulk STRtree query, so thousands of small zones cost
+    about as much as their number, not its square.
+    """
+    if len(geometries) < 2:
+        return []
+    tree = shapely.STRtree(geometries)
+    left, right = tree.query(geometries, predicate="intersects")
+    keep = left < right
+    left, right = left[keep], right[keep]
+    if not left.size:
+        return []
+    areas = shapely.area(shapely.intersection(np.take(geometries, left), np.take(geometries, right)))
+    order = np.lexsort((right, left))
+    return [(items[left[k]], items[right[k]]) for k in order if areas[k] > 0]
 
 
 # ----------------------------------------------------------------------------- features
@@ -421,14 +506,18 @@ def _parse_feature(index: int, feature: Any, source: str) -> dict:
     if not isinstance(props, dict):
         raise SiteError(f"{where}: has no 'properties' object (every feature needs a 'role')")
     raw_name = props.get("name")
-    name = raw_name if isinstance(raw_name, str) and raw_name.strip() else f"#{index}"
+    if raw_name is None or (isinstance(raw_name, str) and not raw_name.strip()):
+        name = f"#{index}"
+    else:
+        name = clean_name(raw_name, f"{where} ('#{index}')")
     label = f"feature {index} ({name!r})"
     where = f"{source}: {label}"
+    _refuse_repeated(feature, where)
+    _refuse_repeated(props, f"{where} properties")
+    _refuse_repeated(feature.get("geometry"), f"{where} geometry")
     role = props.get("role")
     if role not in ROLES:
         raise SiteError(f"{where}: unknown role {role!r}; expected one of {', '.join(ROLES)}")
-    if raw_name is not None and not isinstance(raw_name, str):
-        raise SiteError(f"{where}: 'name' must be a string")
     unknown = sorted(set(props) - _PROPERTIES[role])
     if unknown:
         allowed = ", ".join(sorted(_PROPERTIES[role] - {"role"}))
