@@ -1195,7 +1195,8 @@ def write_pdf(path: Path, folder: Path, content: dict) -> Path:
     from matplotlib.backends.backend_pdf import PdfPages
 
     # TrueType fonts keep the text searchable and extractable (pdftotext, screen readers)
-    with matplotlib.rc_context({"pdf.fonttype": 42, "font.family": "DejaVu Sans"}):
+    with matplotlib.rc_context({"pdf.fonttype": 42, "font.family": "DejaVu Sans", "text.usetex": False,
+                                "text.parse_math": False}):
         flow = _Flow(folder)
         try:
             flow.paragraph(f"Pre-trial briefing: {content['site']}", 16, bold=True, after=2.0)

@@ -23,6 +23,7 @@ from pathlib import Path
 from xml.sax.saxutils import escape
 
 from planner.errors import RunFolderError, SettingsError
+from planner.names import csv_cell
 from planner.route import Route
 
 #: The notice every waypoint file carries.
@@ -236,7 +237,7 @@ def csv_text(route: Route, *, alt_m: float | None = None) -> str:
             "lon": f"{_lon_normalised(w.lon):.{d}f}", "lat": f"{w.lat:.{d}f}", "leg_m": f"{w.leg_m:.{m}f}",
             "cumulative_m": f"{w.cumulative_m:.{m}f}",
             "clearance_m": f"{w.clearance_m:.{m}f}" if math.isfinite(w.clearance_m) else "",
-            "nearest_hazard": w.nearest_hazard or "",
+            "nearest_hazard": csv_cell(w.nearest_hazard or ""),
         }
         if alt_m is not None:
             row["alt_m"] = f"{alt_m:.{m}f}"

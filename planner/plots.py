@@ -30,7 +30,9 @@ def _styled(draw):
 
     @functools.wraps(draw)
     def wrapper(*args, **kwargs):
-        with plt.rc_context({"font.size": style.FONT_SIZE, "svg.hashsalt": "veerwise"}):
+        # Names from the site file are text, never TeX or mathtext ("$x$", "\\" stay as drawn).
+        with plt.rc_context({"font.size": style.FONT_SIZE, "svg.hashsalt": "veerwise", "text.usetex": False,
+                             "text.parse_math": False}):
             return draw(*args, **kwargs)
 
     return wrapper

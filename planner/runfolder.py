@@ -13,12 +13,14 @@ import contextlib
 import dataclasses
 import hashlib
 import json
+import math
 import os
 import platform
 import secrets
 import shutil
 import signal
 import socket
+import stat
 import tempfile
 import time
 import warnings
@@ -43,6 +45,9 @@ POLICY_ARRAYS = {
     "q_exact_on_policy": "float64", "q_exact_optimal": "float64",
 }
 POLICIES = ("cautious", "shortest")
+#: Largest root seed: the 128 bits of entropy ``SeedSequence`` draws when no seed is given,
+#: so every run's recorded entropy can be given back to ``--seed``.
+MAX_SEED = 2**128 - 1
 #: Actions within this many cells (metres-equivalent / cell size) of the exact best
 #: count as agreeing: a detour below the grid's resolution is no disagreement.
 TIE_CELLS = 0.25
@@ -106,13 +111,16 @@ def _holder_text(fd: int) -> str:
     return "".join(ch for ch in raw.strip() if ch.isprintable())[:200]
 
 
-def _acquire(lock: Path, path: Path) -> int:
+def _acquire(lock: Path, path: Path, *, optional: bool = False) -> int | None:
+    import errno
     import fcntl
 
     for _ in range(50):
         try:
             fd = os.open(lock, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0), 0o644)
         except OSError as err:
+            if optional and err.errno in (errno.EACCES, errno.EROFS, errno.EPERM):
+                return None
             raise RunFolderError(f"{path}: cannot create the lock file {lock.name} in {lock.parent} "
                                  f"({err.strerror or err}); nothing was written") from err
         try:
@@ -145,7 +153,18 @@ def _acquire(lock: Path, path: Path) -> int:
 
 
 @contextlib.contextmanager
-def run_lock(path):
+def read_lock(path):
+    """The run's lock, for a command that reads run folder ``path`` and writes elsewhere.
+
+    A run folder on read-only media (or in a folder the user may not write) is read
+    without the lock: nobody who could change it is running this command either.
+    """
+    with run_lock(path, optional=True) as resolved:
+        yield resolved
+
+
+@contextlib.contextmanager
+def run_lock(path, *, optional: bool = False):
     """Hold the exclusive lock of run folder ``path`` for the block (re-entrant in one process).
 
     The lock is a ``flock`` on a hidden sibling file holding the holder's pid, host and
@@ -164,7 +183,10 @@ def run_lock(path):
         finally:
             _HELD[key][1] -= 1
         return
-    fd = _acquire(lock, path)
+    fd = _acquire(lock, path, optional=optional)
+    if fd is None:
+        yield path
+        return
     _HELD[key] = [fd, 1]
     try:
         recover(path)
@@ -387,8 +409,101 @@ class PlanSettings:
         if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
                 and np.isfinite(self.tie_m) and self.tie_m >= 0):
             raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
-        if self.seed is not None and not (0 <= self.seed < 2**63):
-            raise SettingsError(f"--seed must be a whole number in [0, 2**63), got {self.seed}")
+        check_seed(self.seed)
+        check_counts(seeds=self.learn.n_seeds, episodes=max(self.learn.episodes, self.episodes_shortest or 0),
+                     max_steps=self.learn.max_steps, rollouts=self.rollouts, budget=self.budget,
+                     noise=len(self.noises), drift_scales=len(self.drift_scales))
+        from planner.site import MAX_PENALTY_M
+
+        penalty = self.dynamics.hazard_penalty_m
+        if penalty is not None and penalty > MAX_PENALTY_M:
+            raise SettingsError(f"--penalty must be at most {MAX_PENALTY_M:g} m (a penalty above it swamps every "
+                                f"route and its costs lose precision), got {penalty:g}")
+
+
+#: Upper bounds on counts, checked when the settings are made (before any work): far
+#: beyond any useful plan, and low enough that no setting alone can run for days.
+COUNT_LIMITS = {
+    "--seeds": 100, "--episodes": 100_000_000, "--max-steps": 10_000_000, "--rollouts": 10_000_000,
+    "--budget": 1_000_000, "--noise": 50, "--drift-scales": 50,
+}
+#: Share of the memory the system reports available that one plan may plan to use.
+MEMORY_SHARE = 0.8
+
+
+def check_counts(**counts) -> None:
+    """Refuse a count over its bound in :data:`COUNT_LIMITS` (keyword: the option without ``--``, ``_`` for ``-``)."""
+    for key, value in counts.items():
+        option = "--" + key.replace("_", "-")
+        limit = COUNT_LIMITS[option]
+        if value is not None and value > limit:
+            what = f"gives {value:,} values" if option in ("--noise", "--drift-scales") else f"{value:,} is"
+            raise SettingsError(f"{option} {what}, over the limit of {limit:,}")
+
+
+def available_memory_bytes() -> int | None:
+    """Memory the system says is available now (Linux ``MemAvailable``), or None if unknown."""
+    try:
+        with open("/proc/meminfo") as f:
+            for line in f:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def estimate_plan_bytes(grid, settings: PlanSettings) -> dict:
+    """Upper estimates (bytes) of what ``plan`` holds at once, from the grid and settings alone.
+
+    The model's outcome table (and as much again for the chain matrices of one
+    policy), the Q tables of every seed of both learners (and the visit counts of a
+    decaying step size), the per-episode learning curves, and one risk row's rollouts.
+    """
+    from planner.model import estimate_bytes
+
+    learn = settings.learn
+    s_a = grid.n_cells * settings.dynamics.n_actions
+    episodes = max(learn.episodes, settings.episodes_shortest or 0)
+    return {
+        "model": 2 * estimate_bytes(grid, settings.dynamics),
+        "Q tables": 2 * learn.n_seeds * s_a * 8 * (2 if learn.step_decay else 1) + 4 * s_a * 8,
+        "learning curves": 2 * learn.n_seeds * episodes * (8 + 4 + 2),
+        "rollouts": settings.rollouts * (2 + 8 + 8),
+    }
+
+
+def check_plan_size(grid, settings: PlanSettings) -> None:
+    """Refuse, before allocating, a plan whose estimated memory is over what the machine has.
+
+    The message gives the estimate, its largest part and the option that shrinks it.
+    """
+    from planner.errors import BudgetError
+    from planner.grid import format_bytes
+
+    parts = estimate_plan_bytes(grid, settings)
+    total = sum(parts.values())
+    available = available_memory_bytes()
+    if available is None or total <= MEMORY_SHARE * available:
+        return
+    largest = max(parts, key=parts.get)
+    option = {"model": "a larger --cell", "Q tables": "a larger --cell or fewer --seeds",
+              "learning curves": "fewer --episodes or --seeds", "rollouts": "fewer --rollouts"}[largest]
+    raise BudgetError(f"plan would need about {format_bytes(total)} of memory (most for the {largest}: "
+                      f"{format_bytes(parts[largest])}), more than the {format_bytes(available)} available; "
+                      f"use {option}")
+
+
+def check_seed(seed, option: str = "--seed") -> None:
+    """Refuse a root seed outside [0, 2**128): the one rule for ``plan``, ``risk`` and manifests."""
+    if seed is None:
+        return
+    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed <= MAX_SEED:
+        shown = f"{seed}" if not isinstance(seed, int) or seed.bit_length() < 200 else "a larger number"
+        raise SettingsError(f"{option} must be a whole number in [0, 2**128), got {shown}")
 
 
 def settings_record(settings: PlanSettings) -> dict:
@@ -551,6 +666,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     if grid is None:
         grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
+    check_plan_size(grid, settings)
     # Every drift scale of the risk table must make a model: find out before training.
     check_drift_scales(grid, "--drift-scale", (settings.dynamics.drift_scale,))
     check_drift_scales(grid, "--drift-scales", settings.drift_scales)
@@ -740,7 +856,14 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     from planner.export import write_csv, write_geojson
     from planner.risk import format_table, risk_map
 
-    shutil.copyfile(site_path, folder / "site.geojson")
+    # The bytes that were hashed and parsed, not the file again: it may have changed since.
+    data = result.site.data
+    if not data:
+        raise RunFolderError(f"{result.site.source}: the site was not read from a file, so there are no bytes to "
+                             "copy into the run folder; load it with planner.site.load_site")
+    if hashlib.sha256(data).hexdigest() != result.site.sha256:
+        raise RunFolderError(f"{site_path}: the site's bytes in memory do not match its hash; nothing was written")
+    (folder / "site.geojson").write_bytes(data)
     arrays = {
         "greedy_cautious": result.greedy["cautious"].astype(np.int64),
         "greedy_shortest": result.greedy["shortest"].astype(np.int64),
@@ -789,8 +912,9 @@ def write_manifest(folder: Path, manifest: dict) -> None:
     from planner.export import atomic_output
 
     manifest["files"] = {p.name: sha256_file(p) for p in sorted(folder.iterdir())
-                         if p.is_file() and p.name != "manifest.json" and not p.name.startswith(".")}
-    with atomic_output(folder / "manifest.json") as tmp:
+                         if p.is_file() and not p.is_symlink() and p.name != "manifest.json"
+                         and not p.name.startswith(".")}
+    with atomic_output(folder / "manifest.json", guard=False) as tmp:
         tmp.write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
 
 
@@ -883,16 +1007,163 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
 
 MANIFEST_KEYS = {"format": str, "format_version": int, "input": dict, "settings": dict, "seeds": dict,
                  "versions": dict, "files": dict, "results": dict}
+#: Largest manifest read back, and largest file of a run folder read back (bytes).
+MAX_MANIFEST_BYTES = 16 * 2**20
+MAX_MEMBER_BYTES = 4 * 2**30
+#: A manifest nests four levels; anything far deeper is not one of ours.
+MAX_JSON_DEPTH = 32
+#: Whole numbers in a manifest have at most this many digits (a 128-bit seed has 39).
+MAX_INT_DIGITS = 60
+
+_NUMBER = (int, float)
+_RESULT_SCHEMA = {"converged": bool, "message": str, "agreement": _NUMBER, "value_gap_m": (int, float, type(None)),
+                  "seed_routes_matching": int, "n_seeds": int}
+#: What readers of a manifest rely on, checked once on loading: a type, a tuple of types,
+#: a dict of keys ("*": every member) or a one-item list (every item).
+MANIFEST_SCHEMA = {
+    "created_utc": str, "input": {"site": str}, "seeds": {"entropy": str}, "versions": {"*": str},
+    "files": {"*": str}, "results": {"cautious": _RESULT_SCHEMA, "shortest": _RESULT_SCHEMA},
+    "model": {"boundary_penalty_m": _NUMBER, "hazard_penalty_m": [_NUMBER]}, "warnings": [str],
+}
+
+
+def _schema_error(where: str, path: str, value, spec) -> RunFolderError:
+    if isinstance(spec, dict):
+        want = "an object"
+    elif isinstance(spec, list):
+        want = "a list"
+    else:
+        kinds = spec if isinstance(spec, tuple) else (spec,)
+        want = " or ".join("null" if k is type(None) else "a number" if k is float else f"a {k.__name__}"
+                           for k in dict.fromkeys(kinds))
+    shown = "missing" if value is _MISSING else f"{type(value).__name__}"
+    return RunFolderError(f"{where}: manifest key {path!r} is {shown}, expected {want}; the run folder was changed")
+
+
+_MISSING = object()
+
+
+def check_schema(value, spec, where: str, path: str = "") -> None:
+    """Refuse ``value`` unless it has the shape ``spec`` describes (see :data:`MANIFEST_SCHEMA`)."""
+    if isinstance(spec, dict):
+        if not isinstance(value, dict):
+            raise _schema_error(where, path, value, spec)
+        for key, inner in spec.items():
+            if key == "*":
+                for k, v in value.items():
+                    check_schema(v, inner, where, f"{path}.{k}" if path else k)
+            else:
+                check_schema(value.get(key, _MISSING), inner, where, f"{path}.{key}" if path else key)
+        return
+    if isinstance(spec, list):
+        if not isinstance(value, list):
+            raise _schema_error(where, path, value, spec)
+        for k, v in enumerate(value):
+            check_schema(v, spec[0], where, f"{path}[{k}]")
+        return
+    kinds = spec if isinstance(spec, tuple) else (spec,)
+    if value is _MISSING or not isinstance(value, kinds) or (isinstance(value, bool) and bool not in kinds):
+        raise _schema_error(where, path, value, spec)
+
+
+def _strict_pairs(pairs):
+    obj = dict(pairs)
+    if len(obj) != len(pairs):
+        seen: set = set()
+        again = next(k for k, _ in pairs if k in seen or seen.add(k))
+        raise ValueError(f"key {again!r} appears more than once")
+    return obj
+
+
+def _strict_int(text: str) -> int:
+    if len(text.lstrip("-")) > MAX_INT_DIGITS:
+        raise ValueError(f"a whole number of {len(text.lstrip('-')):,} digits (at most {MAX_INT_DIGITS})")
+    return int(text)
+
+
+def _strict_float(text: str) -> float:
+    value = float(text)
+    if not math.isfinite(value):
+        raise ValueError(f"number {text[:30]} is out of range")
+    return value
+
+
+def _refuse_json_constant(name: str):
+    raise ValueError(f"{name} is not a JSON number")
+
+
+def _depth(value) -> int:
+    """Nesting depth of a parsed JSON value (iterative: no recursion limit to hit)."""
+    deepest, stack = 0, [(value, 1)]
+    while stack:
+        node, level = stack.pop()
+        if isinstance(node, (dict, list)):
+            deepest = max(deepest, level)
+            if level > MAX_JSON_DEPTH:
+                return level
+            stack.extend((v, level + 1) for v in (node.values() if isinstance(node, dict) else node))
+    return deepest
+
+
+def parse_json_strict(data: bytes, where: str):
+    """JSON from a run folder: UTF-8, no repeated keys, no NaN or infinities, bounded numbers and nesting."""
+    try:
+        value = json.loads(data.decode("utf-8"), object_pairs_hook=_strict_pairs, parse_int=_strict_int,
+                           parse_float=_strict_float, parse_constant=_refuse_json_constant)
+    except RecursionError as err:
+        raise RunFolderError(f"{where}: nested too deeply to be ours; the run folder was changed") from err
+    except (UnicodeDecodeError, ValueError) as err:  # JSONDecodeError is a ValueError
+        raise RunFolderError(f"{where}: not valid JSON ({err})") from err
+    if _depth(value) > MAX_JSON_DEPTH:
+        raise RunFolderError(f"{where}: nested more than {MAX_JSON_DEPTH} levels deep; the run folder was changed")
+    return value
+
+
+def read_member(folder: Path, name: str, *, limit: int = MAX_MEMBER_BYTES) -> bytes:
+    """The bytes of file ``name`` of a run folder, read once: never through a symlink, only a plain file."""
+    path = folder / name
+    flags = os.O_RDONLY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NONBLOCK", 0)
+    try:
+        fd = os.open(path, flags)
+    except FileNotFoundError as err:
+        raise RunFolderError(f"{folder}: {name} is listed in the manifest but missing") from err
+    except OSError as err:
+        if os.path.islink(path):
+            raise RunFolderError(f"{folder}: {name} is a symbolic link; a run folder holds plain files only, "
+                                 "so it is not followed") from err
+        raise RunFolderError(f"{folder}: cannot read {name} ({err.strerror or err})") from err
+    try:
+        info = os.fstat(fd)
+        if not stat.S_ISREG(info.st_mode):
+            raise RunFolderError(f"{folder}: {name} is not a plain file")
+        if info.st_size > limit:
+            raise RunFolderError(f"{folder}: {name} is {info.st_size:,} bytes, over the {limit:,}-byte limit "
+                                 "for a run-folder file")
+        chunks, total = [], 0
+        while chunk := os.read(fd, 1 << 20):
+            total += len(chunk)
+            if total > limit:
+                raise RunFolderError(f"{folder}: {name} grew past {limit:,} bytes while it was read")
+            chunks.append(chunk)
+        return b"".join(chunks)
+    except OSError as err:
+        if isinstance(err, RunFolderError):
+            raise
+        raise RunFolderError(f"{folder}: cannot read {name} ({err.strerror or err})") from err
+    finally:
+        os.close(fd)
 
 
 @dataclass(frozen=True)
 class Run:
-    """A run folder read back and checked: its manifest, settings and policies."""
+    """A run folder read back and checked: its manifest, settings, policies, and the bytes
+    of every file the manifest lists (read once, matching their hashes)."""
 
     folder: Path
     manifest: dict
     settings: PlanSettings
     arrays: dict
+    blobs: dict = field(default_factory=dict, repr=False)
 
     @property
     def site_path(self) -> Path:
@@ -902,60 +1173,64 @@ class Run:
 def load_run(folder) -> Run:
     """Read a run folder, checking its manifest schema, version and file hashes.
 
+    Only files the manifest lists are opened, each once, never through a symlink; the
+    bytes whose hash matched are the bytes every later step uses (``Run.blobs``).
+
     Raises
     ------
     RunFolderError
-        Missing folder or manifest, another format, a newer version, a file whose
-        hash differs from the manifest (tampered or damaged), or bad policy arrays.
+        Missing folder or manifest, another format, a newer version, a manifest that is
+        not the shape veerwise writes, a file whose hash differs from the manifest
+        (tampered or damaged), a listed file that is a symlink, or bad policy arrays.
     """
     folder = Path(folder)
     if not folder.is_dir():
         raise RunFolderError(f"{folder}: no such run folder")
     path = folder / "manifest.json"
-    if not path.is_file():
+    if not os.path.lexists(path):
         raise RunFolderError(f"{folder}: has no manifest.json; not a complete veerwise run folder")
-    try:
-        manifest = json.loads(path.read_text())
-    except (UnicodeDecodeError, json.JSONDecodeError) as err:
-        raise RunFolderError(f"{path}: manifest is not valid JSON ({err})") from err
+    manifest = parse_json_strict(read_member(folder, "manifest.json", limit=MAX_MANIFEST_BYTES),
+                                 f"{path}: manifest")
     if not isinstance(manifest, dict):
         raise RunFolderError(f"{path}: manifest is not a JSON object")
     for key, kind in MANIFEST_KEYS.items():
         value = manifest.get(key)
         if not isinstance(value, kind) or (kind is int and isinstance(value, bool)):
             raise RunFolderError(f"{path}: manifest key {key!r} is missing or not a {kind.__name__}")
-    entropy = manifest["seeds"].get("entropy")
-    if not (isinstance(entropy, str) and entropy.isdigit()):
-        raise RunFolderError(f"{path}: manifest seeds.entropy is missing or not a whole number")
     if manifest["format"] != RUN_FORMAT:
-        raise RunFolderError(f"{path}: format {manifest['format']!r} is not a veerwise run")
+        raise RunFolderError(f"{path}: format {manifest['format'][:40]!r} is not a veerwise run")
     if manifest["format_version"] > RUN_FORMAT_VERSION:
         raise RunFolderError(
             f"{path}: run folder format {manifest['format_version']} is newer than this veerwise understands "
             f"({RUN_FORMAT_VERSION}); upgrade veerwise"
         )
+    entropy = manifest["seeds"].get("entropy")
+    if not (isinstance(entropy, str) and entropy.isascii() and entropy.isdigit() and int(entropy) <= MAX_SEED):
+        raise RunFolderError(f"{path}: manifest seeds.entropy is missing or not a whole number in [0, 2**128)")
+    check_schema(manifest, MANIFEST_SCHEMA, str(path))
+    blobs = {}
     for name, digest in manifest["files"].items():
-        if Path(name).name != name or name.startswith("."):
-            raise RunFolderError(f"{path}: file entry {name!r} is not a plain file name")
-        member = folder / name
-        if not member.is_file():
-            raise RunFolderError(f"{folder}: {name} is listed in the manifest but missing")
-        if sha256_file(member) != digest:
+        if Path(name).name != name or name.startswith(".") or name in ("", "manifest.json") or "\x00" in name:
+            raise RunFolderError(f"{path}: file entry {name[:60]!r} is not a plain file name")
+        blob = read_member(folder, name)
+        if hashlib.sha256(blob).hexdigest() != digest:
             raise RunFolderError(f"{folder}: {name} does not match its hash in the manifest (changed or damaged)")
+        blobs[name] = blob
     for required in ("policies.npz", "site.geojson"):
         if required not in manifest["files"]:
             raise RunFolderError(f"{path}: manifest does not list {required}")
     settings = settings_from_record(manifest["settings"])
-    arrays = _load_policies(folder / "policies.npz")
-    return Run(folder=folder, manifest=manifest, settings=settings, arrays=arrays)
+    arrays = _load_policies(folder / "policies.npz", blobs["policies.npz"])
+    return Run(folder=folder, manifest=manifest, settings=settings, arrays=arrays, blobs=blobs)
 
 
-def _load_policies(path: Path) -> dict:
+def _load_policies(path: Path, data: bytes) -> dict:
+    import io
     import zipfile
 
     try:
-        with np.load(path, allow_pickle=False) as data:
-            arrays = {k: data[k] for k in data.files}
+        with np.load(io.BytesIO(data), allow_pickle=False) as npz:
+            arrays = {k: npz[k] for k in npz.files}
     except (ValueError, OSError, zipfile.BadZipFile, EOFError) as err:
         raise RunFolderError(f"{path}: cannot read policies ({err})") from err
     for key, dtype in POLICY_ARRAYS.items():
@@ -969,12 +1244,17 @@ def _load_policies(path: Path) -> dict:
 def rebuild_grid(run: Run):
     """Site and grid of a run, rebuilt from its site copy and recorded settings, with the
     run's policy arrays checked against the grid (shape and action range)."""
+    from planner.errors import BudgetError
     from planner.grid import moves_for, rasterise
-    from planner.site import load_site
+    from planner.site import site_from_bytes
 
     s = run.settings
-    site = load_site(run.site_path, crs=s.crs, fix=s.fix, max_bytes=s.max_bytes)
-    grid = rasterise(site, s.grid)
+    try:
+        site = site_from_bytes(run.blobs["site.geojson"], source=str(run.site_path), crs=s.crs, fix=s.fix)
+        grid = rasterise(site, s.grid)
+    except (SettingsError, BudgetError) as err:
+        raise RunFolderError(f"{run.folder}: its recorded settings do not rebuild the run ({err}); the manifest "
+                             "was changed") from err
     n_states, n_actions = grid.n_cells, len(moves_for(s.dynamics.n_actions))
     for key in POLICY_ARRAYS:
         arr = run.arrays[key]
@@ -1016,6 +1296,7 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, s
     """The risk table of a run's policies at the given settings (model rebuilt per drift scale)."""
     from planner.risk import sensitivity
 
+    check_seed(seed)
     check_drift_scales(grid, "--drift-scale", drift_scales)
     chosen = {}
     for name in policies:
@@ -1029,22 +1310,60 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, s
                        flag_z=table_z(grid, len(chosen), noises, drift_scales, budget))
 
 
-def rewrite_brief(run: Run) -> tuple[Path, Path]:
-    """Render ``brief.html``/``brief.pdf`` again from a run folder, and update its manifest."""
+def rewrite_brief(run) -> tuple[Path, Path]:
+    """Render ``brief.html``/``brief.pdf`` again from a run folder, and update its manifest.
+
+    One transaction on the folder (``run`` is a :class:`Run` or a folder path): under
+    its lock the run is read again, the briefing is rendered into a temporary sibling
+    holding exactly the checked bytes of the files the manifest lists (so no figure can
+    come from anywhere else), a new manifest is written there, every file the user
+    added is carried over by hard link, and the new folder replaces the old in one step.
+    """
     from planner.brief import BriefInputs, write_brief
     from planner.risk import RiskRow
 
-    site, grid, model = rebuild(run)
-    routes = run_routes(run, site, grid, model)
+    folder = run.folder if isinstance(run, Run) else Path(run)
+    with run_lock(folder) as path:
+        run = load_run(path)
+        site, grid, model = rebuild(run)
+        routes = run_routes(run, site, grid, model)
+        if "risk.json" not in run.blobs:
+            raise RunFolderError(f"{path}: manifest does not list risk.json, which the briefing needs")
+        records = parse_json_strict(run.blobs["risk.json"], f"{path / 'risk.json'}")
+        try:
+            if not (isinstance(records, list) and records and all(isinstance(r, dict) for r in records)):
+                raise ValueError("expected a non-empty list of rows")
+            rows = [RiskRow.from_dict(r) for r in records]
+        except (TypeError, KeyError, ValueError, AttributeError) as err:
+            raise RunFolderError(f"{path}: cannot read risk.json ({err})") from err
+        listed = set(run.blobs)
+        with atomic_folder(path, force=True) as tmp:
+            for name, blob in run.blobs.items():
+                if name not in ("brief.html", "brief.pdf"):
+                    (tmp / name).write_bytes(blob)
+            inputs = BriefInputs(folder=tmp, site=site, grid=grid, routes=routes, risk_rows=rows,
+                                 settings=run.settings, manifest=run.manifest, run_name=path.name)
+            write_brief(inputs, tmp / "brief.html", tmp / "brief.pdf")
+            write_manifest(tmp, dict(run.manifest))
+            _carry_over(path, tmp, skip=listed | {"manifest.json", "brief.html", "brief.pdf"})
+    return path / "brief.html", path / "brief.pdf"
+
+
+def _carry_over(old: Path, new: Path, *, skip: set) -> None:
+    """Hard-link into ``new`` every entry of ``old`` that veerwise did not write (the user's
+    notes, a review folder): nothing a user put in a run folder is lost when it is replaced.
+    Links are made without opening or following anything."""
+    for entry in old.iterdir():
+        if entry.name in skip or os.path.lexists(new / entry.name):
+            continue
+        if entry.is_dir() and not entry.is_symlink():
+            shutil.copytree(entry, new / entry.name, symlinks=True, copy_function=_link_or_copy)
+        else:
+            _link_or_copy(entry, new / entry.name)
+
+
+def _link_or_copy(src, dst) -> None:
     try:
-        records = json.loads((run.folder / "risk.json").read_text())
-        if not (isinstance(records, list) and records and all(isinstance(r, dict) for r in records)):
-            raise ValueError("expected a non-empty list of rows")
-        rows = [RiskRow.from_dict(r) for r in records]
-    except (OSError, ValueError) as err:
-        raise RunFolderError(f"{run.folder}: cannot read risk.json ({err})") from err
-    inputs = BriefInputs(folder=run.folder, site=site, grid=grid, routes=routes, risk_rows=rows,
-                         settings=run.settings, manifest=run.manifest, run_name=run.folder.name)
-    paths = write_brief(inputs, run.folder / "brief.html", run.folder / "brief.pdf")
-    write_manifest(run.folder, dict(run.manifest))
-    return paths
+        os.link(src, dst, follow_symlinks=False)
+    except OSError:
+        shutil.copy2(src, dst, follow_symlinks=False)

@@ -112,8 +112,9 @@ def site(tmp_path) -> Path:
     return path
 
 
-def assert_stopped(code, stdout, stderr):
-    assert code == 130, stderr
+def assert_stopped(code, stdout, stderr, signum=signal.SIGINT):
+    # 128 + the signal's number, as shells report a command a signal ended: 130 SIGINT, 143 SIGTERM.
+    assert code == {signal.SIGINT: 130, signal.SIGTERM: 143}[signum], stderr
     assert stdout == ""
     assert "Traceback" not in stderr
     ours = [line for line in stderr.splitlines() if line.startswith("veerwise:")]
@@ -129,7 +130,7 @@ def test_stopped_while_training_leaves_no_trace(tmp_path, site, signum):
     before = snapshot(tmp_path)
     run = PlanProcess([site, "--out", tmp_path / "run", *LONG_TRAINING], tmp_path)
     run.wait_for(training, "the middle of training")
-    assert_stopped(*run.stop(signum))
+    assert_stopped(*run.stop(signum), signum)
     assert not (tmp_path / "run").exists()
     assert snapshot(tmp_path) == before
 
@@ -140,7 +141,7 @@ def test_stopped_while_writing_leaves_no_trace(tmp_path, site, signum):
     run = PlanProcess([site, "--out", tmp_path / "run", *QUICK], tmp_path)
     run.wait_for(writing(tmp_path, "run"), "writing its temporary folder")
     code, stdout, stderr = run.stop(signum)
-    assert_stopped(code, stdout, stderr)
+    assert_stopped(code, stdout, stderr, signum)
     assert f"while writing {tmp_path / 'run'}" in stderr
     assert not (tmp_path / "run").exists()
     assert snapshot(tmp_path) == before
@@ -167,5 +168,5 @@ def test_stopped_with_force_leaves_the_previous_folder_byte_identical(tmp_path, 
         run.wait_for(writing(tmp_path, "run"), "writing its temporary folder")
     else:
         run.wait_for(training, "the middle of training")
-    assert_stopped(*run.stop(signum))
+    assert_stopped(*run.stop(signum), signum)
     assert snapshot(tmp_path) == before

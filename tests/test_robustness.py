@@ -357,7 +357,7 @@ BAD_PLAN_OPTIONS = [
     ("--episodes 1.5", ["--episodes", "1.5"], ["--episodes"], None),
     ("--seeds 0", ["--seeds", "0"], ["--seeds"], None),
     ("--seed -1", ["--seed", "-1"], ["--seed", "-1"], None),
-    ("--seed 2**63", ["--seed", str(2**63)], ["--seed"], None),
+    ("--seed 2**128", ["--seed", str(2**128)], ["--seed", "2**128"], None),
     ("--cell 1e-9", ["--cell", "1e-9"], ["--cell", "--max-cells"], None),
     ("--cell 1e9", ["--cell", "1e9"], ["--cell", "larger than the site"], None),
     ("--cell 0", ["--cell", "0"], ["--cell"], None),
@@ -419,10 +419,10 @@ def test_plan_refuses_an_option_out_of_bounds_before_any_work(tmp_path, no_heavy
                   ("learn", "max_steps"): 1, ("budget",): 1, ("noises",): [0.0], ("drift_scales",): [0.0],
                   ("alt_m",): 0.0, ("dynamics", "slip"): 0.0, ("dynamics", "drift_scale"): 0.0},
                  id="lower bounds"),
-    pytest.param(["--epsilon", "0.99", "--step-decay", "1", "--seed", str(2**63 - 1), "--slip", "0.5",
+    pytest.param(["--epsilon", "0.99", "--step-decay", "1", "--seed", str(2**128 - 1), "--slip", "0.5",
                   "--stall", "0.5", "--noise", "0.99", "--alt-m", "10000", "--hazard-overlap", "0.99",
                   "--boundary-cover", "1"],
-                 {("learn", "epsilon"): 0.99, ("learn", "step_decay"): 1.0, ("seed",): 2**63 - 1,
+                 {("learn", "epsilon"): 0.99, ("learn", "step_decay"): 1.0, ("seed",): 2**128 - 1,
                   ("dynamics", "slip"): 0.5, ("dynamics", "stall"): 0.5, ("noises",): [0.99], ("alt_m",): 10000.0},
                  id="upper bounds"),
 ])
@@ -444,11 +444,12 @@ def test_plan_accepts_options_at_their_bounds(tmp_path, options, recorded):
 
 @pytest.fixture(scope="module")
 def base_run(tmp_path_factory):
-    """A complete run folder, written with --force over an existing folder (checked below)."""
+    """A complete run folder, written with --force over an earlier run folder (checked below)."""
     root = tmp_path_factory.mktemp("base")
     site = write_site(root / "site.geojson", site_text())
     out = root / "run"
     out.mkdir()
+    (out / "manifest.json").write_text(json.dumps({"format": "veerwise-run", "note": "an earlier run"}))
     (out / "earlier.txt").write_text("an earlier run")
     result = invoke("plan", site, "--out", out, "--force", *QUICK)
     return root, out, result

@@ -6,21 +6,62 @@ errors become one line on stderr and exit code 2 here, in one place.
 
 from __future__ import annotations
 
+import contextlib
+import errno
+import signal
 import sys
+import threading
 import warnings
 
 import click
 
 from planner import __version__
-from planner.errors import Interrupted, PlannerError
+from planner.errors import Interrupted, PlannerError, Stopped
+from planner.names import for_terminal
 
-#: Exit codes: 0 success, 1 a bug (traceback), 2 bad input or a refused run, 130 stopped.
+#: Exit codes: 0 success, 1 a bug (traceback), 2 bad input or a refused run, 130 stopped
+#: by SIGINT (Ctrl-C), 143 stopped by SIGTERM (128 + the signal's number, as shells report it).
 EXIT_BAD_INPUT = 2
 EXIT_STOPPED = 130
+#: Operating-system errors that are the machine's state, not a bug: said in one line.
+_MACHINE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM, errno.EMFILE, errno.EFBIG}
+
+
+def _say(kind: str, message) -> None:
+    click.echo(f"veerwise: {kind}: {for_terminal(str(message))}", err=True)
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
-    click.echo(f"veerwise: warning: {message}", err=True)
+    _say("warning", message)
+
+
+def _on_signal(signum, frame):
+    raise Stopped(signum)
+
+
+def _stop_code(err: BaseException) -> int:
+    """128 + the number of the signal that stopped the command (found along the exception chain)."""
+    seen = set()
+    while err is not None and id(err) not in seen:
+        seen.add(id(err))
+        if isinstance(err, Stopped):
+            return 128 + err.signum
+        err = err.__cause__ or err.__context__
+    return EXIT_STOPPED
+
+
+@contextlib.contextmanager
+def _stop_signals():
+    """SIGINT and SIGTERM stop any command the same clean way (only the main thread gets signals)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = {s: signal.signal(s, _on_signal) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, handler)
 
 
 class _Group(click.Group):
@@ -30,21 +71,32 @@ class _Group(click.Group):
         previous = warnings.showwarning
         warnings.showwarning = _show_warning
         try:
-            result = super().main(args=args, prog_name=prog_name or "veerwise", complete_var=complete_var,
-                                  standalone_mode=False, **extra)
+            with _stop_signals():
+                result = super().main(args=args, prog_name=prog_name or "veerwise", complete_var=complete_var,
+                                      standalone_mode=False, **extra)
         except PlannerError as err:
-            click.echo(f"veerwise: error: {err}", err=True)
-            sys.exit(EXIT_STOPPED if isinstance(err, Interrupted) else EXIT_BAD_INPUT)
-        except (click.exceptions.Abort, KeyboardInterrupt):
-            click.echo("veerwise: stopped; nothing was written", err=True)
-            sys.exit(EXIT_STOPPED)
+            _say("error", err)
+            sys.exit(_stop_code(err) if isinstance(err, Interrupted) else EXIT_BAD_INPUT)
+        except (click.exceptions.Abort, KeyboardInterrupt) as err:
+            _say("error", "stopped; nothing was written")
+            sys.exit(_stop_code(err))
         except click.UsageError as err:
             where = f"{err.ctx.command_path}: " if err.ctx is not None else ""
-            click.echo(f"veerwise: error: {where}{err.format_message()}", err=True)
+            _say("error", f"{where}{err.format_message()}")
             sys.exit(EXIT_BAD_INPUT)
         except click.ClickException as err:
-            click.echo(f"veerwise: error: {err.format_message()}", err=True)
+            _say("error", err.format_message())
             sys.exit(err.exit_code or EXIT_BAD_INPUT)
+        except MemoryError as err:
+            _say("error", f"out of memory{f' ({err})' if str(err) else ''}; nothing was written. Use a larger "
+                          "--cell, fewer --episodes, --seeds or --rollouts, or a machine with more memory")
+            sys.exit(EXIT_BAD_INPUT)
+        except OSError as err:
+            if err.errno not in _MACHINE_ERRNOS:
+                raise
+            where = f"{err.filename}: " if err.filename else ""
+            _say("error", f"{where}{err.strerror or err}; nothing was written")
+            sys.exit(EXIT_BAD_INPUT)
         finally:
             warnings.showwarning = previous
         sys.exit(result if isinstance(result, int) else 0)

@@ -104,8 +104,11 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     """
     from planner.grid import rasterise
     from planner.learn import LearnSettings
-    from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, stop_on_sigterm, write_run
+    from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, run_lock, stop_on_sigterm, write_run
 
+    check_out(out, force=force)
+    # Held until the command ends: a second plan to the same folder is refused at once.
+    click.get_current_context().with_resource(run_lock(out))
     check_out(out, force=force)
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)

@@ -36,8 +36,9 @@ def risk(run, fmt, noises, drift_scales, budget, rollouts, policies, seed):
     marks a figure outside its interval.
     """
     from planner.risk import format_table
-    from planner.runfolder import load_run, rebuild_grid, run_risk
+    from planner.runfolder import check_counts, check_seed, load_run, rebuild_grid, run_risk
 
+    check_seed(seed)
     loaded = load_run(run)
     s = loaded.settings
     noise_levels = s.noises if noises is None else float_list(noises, "--noise")
@@ -53,6 +54,7 @@ def risk(run, fmt, noises, drift_scales, budget, rollouts, policies, seed):
     n_rollouts = s.rollouts if rollouts is None else rollouts
     if n_rollouts < 0:
         raise click.BadParameter(f"{n_rollouts} is negative", param_hint="--rollouts")
+    check_counts(rollouts=n_rollouts, budget=budget, noise=len(noise_levels), drift_scales=len(scales))
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid = rebuild_grid(loaded)
     rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget=budget, rollouts=n_rollouts,
@@ -76,14 +78,19 @@ def export(run, fmt, policy, alt_m, output):
     GeoJSON (RFC 7946, lon/lat), CSV or GPX 1.1. Every file states that it is for
     simulation only and not approved for field operation.
     """
-    from planner.export import write_csv, write_geojson, write_gpx
-    from planner.runfolder import load_run, rebuild, run_routes
+    from planner.export import refuse_run_folder_target, write_csv, write_geojson, write_gpx
+    from planner.runfolder import load_run, read_lock, rebuild, run_routes
 
+    out = Path(output)
+    targets = [out] if fmt != "csv" or policy != "both" else [
+        out.with_name(f"{out.stem}-{n}{out.suffix or '.csv'}") for n in ("cautious", "shortest")]
+    for target in targets:
+        refuse_run_folder_target(target, "-o/--output")
+    click.get_current_context().with_resource(read_lock(run))
     loaded = load_run(run)
     site, grid, model = rebuild(loaded)
     routes = run_routes(loaded, site, grid, model)
     chosen = [routes[n] for n in (("cautious", "shortest") if policy == "both" else (policy,))]
-    out = Path(output)
     written = []
     if fmt == "geojson":
         written.append(write_geojson(chosen if len(chosen) > 1 else chosen[0], out, site=site, alt_m=alt_m))
@@ -106,7 +113,7 @@ def brief(run):
     The briefing is rebuilt from the run's manifest, risk table, figures and policies;
     the manifest's file hashes are updated to match.
     """
-    from planner.runfolder import load_run, rewrite_brief
+    from planner.runfolder import rewrite_brief
 
-    html_path, pdf_path = rewrite_brief(load_run(run))
+    html_path, pdf_path = rewrite_brief(run)
     click.echo(f"wrote {html_path} and {pdf_path}")
