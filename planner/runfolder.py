@@ -1252,6 +1252,8 @@ def rebuild_grid(run: Run):
     try:
         site = site_from_bytes(run.blobs["site.geojson"], source=str(run.site_path), crs=s.crs, fix=s.fix)
         grid = rasterise(site, s.grid)
+        check_drift_scales(grid, "settings.dynamics.drift_scale", (s.dynamics.drift_scale,))
+        check_drift_scales(grid, "settings.drift_scales", s.drift_scales)
     except (SettingsError, BudgetError) as err:
         raise RunFolderError(f"{run.folder}: its recorded settings do not rebuild the run ({err}); the manifest "
                              "was changed") from err

@@ -9,6 +9,7 @@ an invalid polygon is an error naming the feature unless ``fix=True``.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import json
 import math
@@ -98,6 +99,18 @@ class Zone:
         return (self.push_m * math.sin(rad), self.push_m * math.cos(rad))
 
 
+@functools.lru_cache(maxsize=16)
+def _transformer_for(crs: str, inverse: bool):
+    """One pyproj transformer per frame and direction (making one costs far more than using it,
+    and a site has a feature per zone)."""
+    from pyproj import CRS, Transformer
+
+    src, dst = CRS.from_epsg(4326), CRS.from_user_input(crs)
+    if inverse:
+        src, dst = dst, src
+    return Transformer.from_crs(src, dst, always_xy=True)
+
+
 @dataclass(frozen=True)
 class Frame:
     """The working frame: pyproj CRS text plus forward/inverse transforms.
@@ -112,12 +125,7 @@ class Frame:
     lat_0: float
 
     def _transformer(self, inverse: bool):
-        from pyproj import CRS, Transformer
-
-        src, dst = CRS.from_epsg(4326), CRS.from_user_input(self.crs)
-        if inverse:
-            src, dst = dst, src
-        return Transformer.from_crs(src, dst, always_xy=True)
+        return _transformer_for(self.crs, inverse)
 
     def to_xy(self, lon, lat) -> tuple[np.ndarray, np.ndarray]:
         """Project lon/lat degrees to east/north metres (arrays in, arrays out)."""
