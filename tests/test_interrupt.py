@@ -45,9 +45,9 @@ def snapshot(folder: Path) -> dict:
 class PlanProcess:
     """``veerwise plan`` in a subprocess, its stderr read from a pseudo-terminal."""
 
-    def __init__(self, args, cwd: Path):
+    def __init__(self, args, cwd: Path, command: str = "plan"):
         master, slave = pty.openpty()
-        self.proc = subprocess.Popen([sys.executable, "-c", ENTRY, "plan", *map(str, args)], cwd=cwd,
+        self.proc = subprocess.Popen([sys.executable, "-c", ENTRY, command, *map(str, args)], cwd=cwd,
                                      stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=slave)
         os.close(slave)
         self.master = master
