@@ -537,8 +537,12 @@ def settings_from_record(record: dict) -> PlanSettings:
         rec["grid"] = GridSpec(**rec["grid"])
         rec["dynamics"] = Dynamics(**rec["dynamics"])
         rec["learn"] = LearnSettings(**rec["learn"])
-        rec["noises"] = tuple(rec["noises"])
-        rec["drift_scales"] = tuple(rec["drift_scales"])
+        for key in ("noises", "drift_scales"):
+            values = rec[key]
+            if not (isinstance(values, list) and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                                     for v in values)):
+                raise RunFolderError(f"manifest settings: {key!r} is not a list of numbers")
+            rec[key] = tuple(values)
         for key, kinds in SETTING_TYPES.items():
             value = rec.get(key)
             if not isinstance(value, kinds) or (isinstance(value, bool) and bool not in kinds):
@@ -548,6 +552,9 @@ def settings_from_record(record: dict) -> PlanSettings:
         raise RunFolderError(f"manifest settings are incomplete or unknown ({err})") from err
     except SettingsError as err:
         raise RunFolderError(f"manifest settings are out of range ({err}); the run folder was changed") from err
+    except (ValueError, OverflowError) as err:
+        raise RunFolderError(f"manifest settings do not make valid settings ({err}); the run folder was "
+                             "changed") from err
 
 
 def versions() -> dict:
@@ -666,10 +673,10 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     if grid is None:
         grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
-    check_plan_size(grid, settings)
     # Every drift scale of the risk table must make a model: find out before training.
     check_drift_scales(grid, "--drift-scale", (settings.dynamics.drift_scale,))
     check_drift_scales(grid, "--drift-scales", settings.drift_scales)
+    check_plan_size(grid, settings)
     model = build_model(grid, settings.dynamics)
     timings["model_s"] = time.perf_counter() - t
     progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
@@ -1205,7 +1212,8 @@ def load_run(folder) -> Run:
             f"({RUN_FORMAT_VERSION}); upgrade veerwise"
         )
     entropy = manifest["seeds"].get("entropy")
-    if not (isinstance(entropy, str) and entropy.isascii() and entropy.isdigit() and int(entropy) <= MAX_SEED):
+    if not (isinstance(entropy, str) and entropy.isascii() and entropy.isdigit() and len(entropy) <= 39
+            and int(entropy) <= MAX_SEED):
         raise RunFolderError(f"{path}: manifest seeds.entropy is missing or not a whole number in [0, 2**128)")
     check_schema(manifest, MANIFEST_SCHEMA, str(path))
     blobs = {}

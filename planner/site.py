@@ -260,7 +260,8 @@ def parse_site_bytes(data: bytes, source: str) -> tuple[Any, str]:
     except UnicodeDecodeError as err:
         raise SiteError(f"{source}: not a text file (byte {err.start} is not UTF-8); expected GeoJSON") from err
     try:
-        obj = json.loads(text, parse_constant=_refuse_constant, object_pairs_hook=_object_pairs)
+        obj = json.loads(text, parse_constant=_refuse_constant, object_pairs_hook=_object_pairs,
+                         parse_int=_whole_number)
     except RecursionError as err:
         raise SiteError(f"{source}: JSON is nested too deeply to be a site file") from err
     except json.JSONDecodeError as err:
@@ -276,6 +277,14 @@ def read_site_text(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> t
     Returns the parsed JSON and the SHA-256 of the file's bytes.
     """
     return parse_site_bytes(read_site_bytes(path, max_bytes=max_bytes), str(path))
+
+
+def _whole_number(text: str) -> int | float:
+    """A JSON integer; one too long to be any coordinate or property becomes an infinity, which
+    the property's own check then refuses naming the feature (``int()`` would fail unnamed)."""
+    if len(text) > 400:
+        return -math.inf if text.startswith("-") else math.inf
+    return int(text)
 
 
 def _refuse_constant(name: str):

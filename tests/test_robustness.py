@@ -167,6 +167,11 @@ def near_pole_site(lat):
         feature("goal", "Point", [10.018, lat + sign * 0.0005], name="G"))
 
 
+def _drawn_twice(site):
+    site["features"].append(dict(site["features"][3], properties={**site["features"][3]["properties"],
+                                                                   "name": "Pond again"}))
+
+
 def _overlap_site(site):
     site["features"].append(feature("hazard", "Polygon", rect(50, 25, 65, 45), name="Mud", ends_run=False))
 
@@ -224,6 +229,26 @@ BAD_SITES = [
      ["feature 4 ('Gust lane')", "'push_m'"], None),
     ("cost_factor of 1e308", site_text(with_property(5, "cost_factor", 1e308)),
      ["feature 5 ('Gravel')", "'cost_factor'"], None),
+    # Strict input: what JSON or a sloppier test would let through silently.
+    ("a key repeated in a feature's properties",
+     lambda: site_text().replace('"buffer_m": 2.0', '"buffer_m": 2.0, "buffer_m": 0.0'),
+     ["feature 3 ('Pond')", "'buffer_m' appears more than once"], None),
+    ("a key repeated in the collection",
+     lambda: site_text().replace('"type": "FeatureCollection"', '"type": "FeatureCollection", "features": []', 1),
+     ["'features' appears more than once"], None),
+    ("the same zone drawn twice", site_text(_drawn_twice), ["feature 6 ('Pond again')", "repeats", "feature 3"],
+     None),
+    ("goal area outside, sharing an edge with the boundary",
+     site_text(with_coordinates(2, rect(100, 20, 110, 40), "Polygon")), ["feature 2 ('Target')", "strictly inside"],
+     None),
+    ("start on the boundary's corner", site_text(with_coordinates(1, rect(0, 0, 100, 60)[0][0])),
+     ["feature 1 ('Launch')", "boundary's edge"], None),
+    ("zone names giving one table column", site_text(with_property(5, "name", "Pond_lo")),
+     ["feature 5 ('Pond_lo')", "same table column"], None),
+    ("a number that overflows", lambda: site_text().replace('"push_m": 3.0', '"push_m": 1e400'),
+     ["feature 4 ('Gust lane')", "'push_m'"], None),
+    ("a whole number of 5,000 digits", lambda: site_text().replace('"push_m": 3.0', '"push_m": ' + "9" * 5000),
+     ["push_m"], None),
 ] + [
     (f"null {key}", site_text(with_property(index, key, None)), [f"feature {index} ('{name}')", f"'{key}'"], None)
     for index, name, key in [(3, "Pond", "buffer_m"), (4, "Gust lane", "toward_deg"), (4, "Gust lane", "push_m"),
@@ -395,6 +420,14 @@ BAD_PLAN_OPTIONS = [
     ("--max-bytes 0", ["--max-bytes", "0"], ["--max-bytes"], None),
     ("--crs geographic", ["--crs", "EPSG:4326"], ["--crs", "not a projected CRS"], None),
     ("--moves 6", ["--moves", "6"], ["--moves"], None),
+    # Limits before work: counts that would run for days or exhaust memory, refused at once.
+    ("--episodes 10**12", ["--episodes", str(10**12)], ["--episodes", "over the limit"], None),
+    ("--seeds a million", ["--seeds", "1000000"], ["--seeds", "over the limit"], None),
+    ("--rollouts 10**12", ["--rollouts", str(10**12)], ["--rollouts", "over the limit"], None),
+    ("--budget 10**9", ["--budget", str(10**9)], ["--budget", "over the limit"], None),
+    ("--max-steps 10**12", ["--max-steps", str(10**12)], ["--max-steps", "over the limit"], None),
+    ("--penalty 1e308", ["--penalty", "1e308"], ["--penalty", "1e+308"], None),
+    ("--noise of 1,000 values", ["--noise", ",".join(["0.1"] * 1000)], ["--noise", "1,000 values"], None),
 ]
 
 
@@ -506,6 +539,13 @@ def _write_manifest_text(text: bytes):
     return change
 
 
+def _manifest_text_edit(edit):
+    def change(folder: Path):
+        path = folder / "manifest.json"
+        path.write_text(edit(path.read_text()))
+    return change
+
+
 def _rehash(folder: Path, name: str):
     """Update the manifest's hash of ``name``: a tamperer who knows the format."""
     path = folder / "manifest.json"
@@ -613,6 +653,30 @@ BAD_RUNS = [
     ("settings of the wrong type", _set("settings", "max_bytes", value="x"), ["manifest", "max_bytes"], None),
     # The user gave no --epsilon: the message must blame the manifest, not an option.
     ("settings out of range", _set("settings", "learn", "epsilon", value=5), ["manifest", "epsilon"], None),
+    # Manifests edited by hand or by an attacker: each one line naming the manifest, never a traceback.
+    ("manifest nested 100,000 deep", _manifest_text_edit(lambda t: t[:-2] + ', "x": ' + "[" * 100_000
+                                                         + "]" * 100_000 + "}\n"), ["manifest", "nested"], None),
+    ("manifest nested 40 deep", _manifest_text_edit(lambda t: t[:-2] + ', "x": ' + "[" * 40 + "]" * 40 + "}\n"),
+     ["manifest", "nested more than 32"], None),
+    ("manifest with a 5,000-digit number", _manifest_text_edit(
+        lambda t: t.replace('"format_version": 1', '"format_version": ' + "9" * 5000)), ["manifest", "digits"], None),
+    ("manifest with a repeated key", _manifest_text_edit(
+        lambda t: t.replace('"format_version": 1', '"format_version": 1, "format_version": 1')),
+     ["manifest", "'format_version' appears more than once"], None),
+    ("manifest with NaN", _manifest_text_edit(lambda t: t.replace('"format_version": 1', '"format_version": NaN')),
+     ["manifest", "NaN"], None),
+    ("manifest with 1e400", _manifest_text_edit(lambda t: t[:-2] + ', "x": 1e400}\n'), ["manifest", "1e400"], None),
+    ("seed entropy of 5,000 digits", _set("seeds", "entropy", value="9" * 5000), ["manifest", "entropy"], None),
+    ("result of the wrong type", _set("results", "cautious", "converged", value="yes"),
+     ["manifest key 'results.cautious.converged'", "expected a bool"], None),
+    ("input site not a string", _set("input", "site", value=5), ["'input.site'"], None),
+    ("versions not strings", _set("versions", "numpy", value=[1]), ["'versions.numpy'"], None),
+    ("warnings not a list", _set("warnings", value="none"), ["'warnings'", "expected a list"], None),
+    ("creation time missing", _set("created_utc", delete=True), ["'created_utc' is missing"], None),
+    ("penalty not a number", _set("model", "boundary_penalty_m", value="high"), ["'model.boundary_penalty_m'"], None),
+    # The user gave no --drift-scale: a drift scale too strong for the grid is the manifest's fault.
+    ("recorded drift scales too strong", _set("settings", "drift_scales", value=[1e6]),
+     ["recorded settings do not rebuild", "the manifest was changed"], None),
 ]
 
 #: Damage that only the briefing reads (risk and export do not open risk.json's rows).
@@ -653,6 +717,10 @@ def test_damaged_run_folder(base_run, tmp_path, damage, fragments, command):
     ("risk", ["--budget", "0"], ["--budget"]),
     ("risk", ["--rollouts", "-1"], ["--rollouts"]),
     ("risk", ["--policy", "bogus"], ["--policy", "'bogus'"]),
+    ("risk", ["--seed", "-1"], ["--seed", "-1"]),
+    ("risk", ["--seed", str(2**128)], ["--seed", "2**128"]),
+    ("risk", ["--rollouts", str(10**12)], ["--rollouts", "over the limit"]),
+    ("risk", ["--budget", str(10**9)], ["--budget", "over the limit"]),
     ("export", ["--alt-m", "-1", "-o", "OUT"], ["--alt-m"]),
     ("export", ["--alt-m", "nan", "-o", "OUT"], ["--alt-m"]),
     ("export", ["--format", "kml", "-o", "OUT"], ["--format"]),
@@ -808,3 +876,99 @@ def test_generated_site_gives_a_sound_model_or_our_error(case):
     model = load_and_build(site, fix=fix, spec=spec, dynamics=dynamics)
     if model is not None:
         assert_model_is_sound(model)
+
+
+# ----------------------------------------------------------------------------- fuzzing the manifest reader
+
+
+def _paths(node, prefix=()):
+    """Every place in a parsed manifest: the keys and indices leading to each value."""
+    yield prefix
+    if isinstance(node, dict):
+        for key, value in node.items():
+            yield from _paths(value, (*prefix, key))
+    elif isinstance(node, list):
+        for index, value in enumerate(node):
+            yield from _paths(value, (*prefix, index))
+
+
+def _load_or_refuse(folder: Path) -> None:
+    """The reader either gives a run or refuses with our error; a run it gives can be read by ``risk``."""
+    from planner.runfolder import load_run
+
+    try:
+        load_run(folder)
+    except PlannerError:
+        return
+    result = invoke("risk", folder, "--rollouts", "0")
+    assert "Traceback" not in result.output and result.exit_code in (0, 2), result.output
+
+
+@pytest.fixture(scope="module")
+def manifest_places(base_run):
+    manifest = json.loads((base_run[1] / "manifest.json").read_text())
+    return manifest, [p for p in _paths(manifest) if p]
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+                                                                  HealthCheck.function_scoped_fixture])
+@given(data=st.data())
+def test_fuzzed_manifest_values_load_or_are_refused(base_run, manifest_places, tmp_path_factory, data):
+    import copy
+
+    manifest, places = manifest_places
+    edited = copy.deepcopy(manifest)
+    for _ in range(data.draw(st.integers(1, 3))):
+        path = data.draw(st.sampled_from(places))
+        node = edited
+        for key in path[:-1]:
+            if not _holds(node, key) or (isinstance(node, dict) and key not in node):
+                break
+            node = node[key]
+        else:
+            if _holds(node, path[-1]) and (not isinstance(node, dict) or path[-1] in node):
+                if data.draw(st.booleans()) and isinstance(node, dict):
+                    del node[path[-1]]
+                else:
+                    node[path[-1]] = data.draw(JSON_VALUES)
+    folder = tmp_path_factory.mktemp("fuzz") / "run"
+    shutil.copytree(base_run[1], folder)
+    try:
+        text = json.dumps(edited)
+    except ValueError:
+        return
+    (folder / "manifest.json").write_text(text)
+    _load_or_refuse(folder)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+                                                                  HealthCheck.function_scoped_fixture])
+@given(cut=st.integers(0, 10_000), junk=st.binary(max_size=40))
+def test_fuzzed_manifest_bytes_load_or_are_refused(base_run, tmp_path_factory, cut, junk):
+    folder = tmp_path_factory.mktemp("fuzz") / "run"
+    shutil.copytree(base_run[1], folder)
+    data = (folder / "manifest.json").read_bytes()
+    cut = cut % (len(data) + 1)
+    (folder / "manifest.json").write_bytes(data[:cut] + junk + data[cut + len(junk) // 2:])
+    _load_or_refuse(folder)
+
+
+@settings(max_examples=200, deadline=None)
+@given(value=st.one_of(st.integers(-10**500, 10**500), st.floats(), st.text(max_size=5), st.booleans()))
+def test_any_number_in_a_site_property_loads_finite_or_is_refused_by_name(value):
+    site = small_site_dict()
+    site["features"][4]["properties"]["push_m"] = value
+    try:
+        text = json.dumps(site, allow_nan=False)  # NaN and infinities are not JSON numbers at all
+    except ValueError:
+        return
+    from planner.site import site_from_bytes
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PlannerWarning)
+        try:
+            loaded = site_from_bytes(text.encode(), source="site.geojson")
+        except PlannerError as err:
+            assert "feature 4 ('Gust lane')" in str(err), err
+            return
+    assert np.isfinite(loaded.drifts[0].push_m) and 0 <= loaded.drifts[0].push_m <= 10_000

@@ -336,8 +336,8 @@ def test_plan_and_risk_agree_on_which_seeds_are_valid(made_run, tmp_path, site, 
 def test_a_site_of_many_zones_is_projected_with_one_transformer(monkeypatch):
     """Making a pyproj transformer costs milliseconds: one per zone made 8,000 zones take minutes."""
     import pyproj
-
     from conftest import feature, rect
+
     from planner.site import site_from_geojson
 
     data = small_site_dict()
