@@ -329,8 +329,8 @@ RUN_FORMAT = "veerwise-run"
 def is_run_folder(folder) -> bool:
     """True when ``folder`` holds a veerwise manifest (a plain file naming our format).
 
-    Only the first few kilobytes are looked at: enough to find the format member,
-    which every manifest writes near its top.
+    The manifest is not parsed, only searched for its format member, so a damaged
+    manifest still marks the folder as a run folder (and protects it).
     """
     try:
         fd = os.open(Path(folder) / RUN_MANIFEST, os.O_RDONLY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0))
@@ -339,7 +339,7 @@ def is_run_folder(folder) -> bool:
     try:
         if not stat.S_ISREG(os.fstat(fd).st_mode):
             return False
-        head = os.read(fd, 65536)
+        head = os.read(fd, 16 * 2**20)
     finally:
         os.close(fd)
     return f'"format": "{RUN_FORMAT}"'.encode() in head

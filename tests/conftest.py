@@ -58,6 +58,29 @@ def site_dict():
 
 
 @pytest.fixture
+def site_file(tmp_path):
+    """The small test site written to ``tmp_path/site.geojson``."""
+    import json
+
+    path = tmp_path / "site.geojson"
+    path.write_text(json.dumps(small_site_dict()))
+    return path
+
+
+@pytest.fixture
+def no_heavy_work(monkeypatch):
+    """``plan`` fails loudly (exit 1, not 2) if it builds the model or trains before refusing bad input."""
+    import planner.learn
+    import planner.model
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("plan started heavy work (model or training) before refusing bad input")
+
+    monkeypatch.setattr(planner.model, "build_model", refuse)
+    monkeypatch.setattr(planner.learn, "train", refuse)
+
+
+@pytest.fixture
 def rng():
     """A seeded generator: tests never touch the global RNG."""
     return np.random.default_rng(20261202)

@@ -21,7 +21,6 @@ import time
 from pathlib import Path
 
 import pytest
-from conftest import small_site_dict
 
 pytestmark = pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals and pseudo-terminals")
 
@@ -106,10 +105,8 @@ def writing(folder: Path, name: str):
 
 
 @pytest.fixture
-def site(tmp_path) -> Path:
-    path = tmp_path / "site.geojson"
-    path.write_text(json.dumps(small_site_dict()))
-    return path
+def site(site_file) -> Path:
+    return site_file
 
 
 def assert_stopped(code, stdout, stderr, signum=signal.SIGINT):

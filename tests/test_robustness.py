@@ -67,19 +67,6 @@ def snapshot(folder: Path) -> dict:
     return {str(p.relative_to(folder)): state(p) for p in sorted(folder.rglob("*"))}
 
 
-@pytest.fixture
-def no_heavy_work(monkeypatch):
-    """``plan`` fails loudly (exit 1, not 2) if it builds the model or trains before refusing bad input."""
-    import planner.learn
-    import planner.model
-
-    def refuse(*args, **kwargs):
-        raise AssertionError("plan started heavy work (model or training) before refusing bad input")
-
-    monkeypatch.setattr(planner.model, "build_model", refuse)
-    monkeypatch.setattr(planner.learn, "train", refuse)
-
-
 def site_text(change=None) -> str:
     site = small_site_dict()
     if change is not None:

@@ -67,10 +67,8 @@ def run_copy(made_run, tmp_path) -> Path:
 
 
 @pytest.fixture
-def site(tmp_path) -> Path:
-    path = tmp_path / "site.geojson"
-    path.write_text(json.dumps(small_site_dict()))
-    return path
+def site(site_file) -> Path:
+    return site_file
 
 
 def rehash(folder: Path, name: str) -> None:
@@ -164,18 +162,6 @@ def test_force_never_leaves_the_folder_missing(run_copy, site, monkeypatch):
     assert result.exit_code == 0, result.output
     assert missing == []
     assert json.loads((run_copy / "manifest.json").read_text())["settings"]["seed"] == 4
-
-
-@pytest.fixture
-def no_heavy_work(monkeypatch):
-    import planner.learn
-    import planner.model
-
-    def refuse(*args, **kwargs):
-        raise AssertionError("plan started heavy work (model or training) before refusing bad input")
-
-    monkeypatch.setattr(planner.model, "build_model", refuse)
-    monkeypatch.setattr(planner.learn, "train", refuse)
 
 
 def test_force_refuses_to_replace_a_folder_of_user_files(tmp_path, site, monkeypatch, no_heavy_work):
