@@ -7,7 +7,7 @@ Run by hand (not part of the test suite)::
     python3 benchmarks/bench_plan.py maps/ground-yard.geojson
 
 Each run is the command line as a user types it, in a subprocess:
-``veerwise plan SITE --out RUN --seed 1 --quiet`` with every other setting at its
+``veerwise plan SITE RUN --root-seed 1 --quiet`` with every other setting at its
 default. The numba compilation cache is pointed at a benchmark-owned folder with
 ``NUMBA_CACHE_DIR`` (numba uses that folder instead of ``__pycache__`` beside the
 sources for every ``cache=True`` kernel), so that:
@@ -85,7 +85,7 @@ def plan_once(site: str, cache: Path, work: Path, tag: str, seed: int) -> dict:
     run = work / f"run-{tag}"
     if run.exists():
         shutil.rmtree(run)
-    argv = veerwise_command() + ["plan", site, "--out", str(run), "--seed", str(seed), "--quiet"]
+    argv = veerwise_command() + ["plan", site, str(run), "--root-seed", str(seed), "--quiet"]
     result = timed(argv, env, work / f"{tag}.log")
     manifest = json.loads((run / "manifest.json").read_text())
     timings = manifest["timings_s"]
@@ -127,8 +127,8 @@ def main(argv=None) -> int:
     parser.add_argument("--json", type=Path, help="also write every measurement to this JSON file")
     args = parser.parse_args(argv)
 
-    print(f"{os.cpu_count()} cores; command: {' '.join(veerwise_command())} plan SITE --out RUN "
-          f"--seed {args.seed} --quiet")
+    print(f"{os.cpu_count()} cores; command: {' '.join(veerwise_command())} plan SITE RUN "
+          f"--root-seed {args.seed} --quiet")
     record = {}
     ok = True
     with tempfile.TemporaryDirectory(prefix="veerwise-bench-") as tmp:

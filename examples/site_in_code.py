@@ -6,10 +6,10 @@ variants of a yard (move the pond, widen the gust lane) and plan each one. The
 script runs the stages one by one - site, grid, model, learners, exact references,
 risk, routes, files - which is what ``veerwise plan`` does for a file.
 
-    python3 examples/site_in_code.py --out yard-routes
+    python3 examples/site_in_code.py yard-routes
 
 writes ``routes.geojson`` (both routes, lon/lat), ``waypoints-cautious.csv``,
-``waypoints-shortest.csv`` and ``routes.gpx`` into the ``--out`` folder.
+``waypoints-shortest.csv`` and ``routes.gpx`` into the folder given.
 
 For simulation and review only: not approved for field operation.
 """
@@ -73,13 +73,14 @@ def make_yard(pond_width_m: float = 30.0) -> dict:
 
 def parse_args(argv=None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--out", type=Path, default=Path("yard-routes"), help="folder for the waypoint files")
+    parser.add_argument("folder", type=Path, nargs="?", default=Path("yard-routes"),
+                        help="folder for the waypoint files; default: %(default)s")
     parser.add_argument("--cell", type=float, default=2.5, help="cell size in metres; default: %(default)s")
     parser.add_argument("--episodes", type=int, default=30_000, help="training episodes per seed; default: %(default)s")
-    parser.add_argument("--seeds", type=int, default=4, help="independent training runs per learner")
+    parser.add_argument("--training-runs", type=int, default=4, help="independent training runs per learner")
     parser.add_argument("--noise", type=float, default=0.1,
                         help="execution noise the cautious route is planned for; default: %(default)s")
-    parser.add_argument("--seed", type=int, default=7, help="root seed, for a reproducible run")
+    parser.add_argument("--root-seed", type=int, default=7, help="root seed, for a reproducible run")
     return parser.parse_args(argv)
 
 
@@ -89,9 +90,9 @@ def main(argv=None) -> int:
         site = site_from_geojson(make_yard(), source="make_yard()")
         grid = rasterise(site, GridSpec(args.cell))
         model = build_model(grid, Dynamics(slip=0.1))
-        learn = LearnSettings(epsilon=args.noise, episodes=args.episodes, n_seeds=args.seeds, start_mode="explore")
+        learn = LearnSettings(epsilon=args.noise, episodes=args.episodes, n_seeds=args.training_runs, start_mode="explore")
         # one root seed for the whole script, one child per learner: reruns give identical routes
-        seed_cautious, seed_shortest = np.random.SeedSequence(args.seed).spawn(2)
+        seed_cautious, seed_shortest = np.random.SeedSequence(args.root_seed).spawn(2)
         learned = {"cautious": train(model, "sarsa", learn, seed=seed_cautious),
                    "shortest": train(model, "qlearning", learn, seed=seed_shortest)}
         exact = {"cautious": on_policy_q(model, args.noise), "shortest": optimal_q(model)}
@@ -116,10 +117,10 @@ def main(argv=None) -> int:
             print(f"            {conv.message}")
             if not route.reached_goal:
                 print(f"            WARNING: the nominal route ends {route.end_event}, not at the goal")
-        args.out.mkdir(parents=True, exist_ok=True)
-        written = [write_geojson(routes, args.out / "routes.geojson", site=site),
-                   *[write_csv(r, args.out / f"waypoints-{r.name}.csv") for r in routes],
-                   write_gpx(routes, args.out / "routes.gpx", name=site.name)]
+        args.folder.mkdir(parents=True, exist_ok=True)
+        written = [write_geojson(routes, args.folder / "routes.geojson", site=site),
+                   *[write_csv(r, args.folder / f"waypoints-{r.name}.csv") for r in routes],
+                   write_gpx(routes, args.folder / "routes.gpx", name=site.name)]
     except PlannerError as err:
         print(f"site_in_code: {err}", file=sys.stderr)
         return 2

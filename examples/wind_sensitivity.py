@@ -6,7 +6,7 @@ and draws them on one chart. The routes stay the ones planned for the forecast: 
 question is what happens to *these* routes on a windier day.
 
     python3 examples/wind_sensitivity.py
-    python3 examples/wind_sensitivity.py --site maps/ground-yard.geojson --scales 1,2,3 --out wind.png
+    python3 examples/wind_sensitivity.py --site maps/ground-yard.geojson --table-drifts 1,2,3 -o wind.png
 
 For simulation and review only: not approved for field operation.
 """
@@ -44,33 +44,34 @@ LOOKS = {
 def parse_args(argv=None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--site", type=Path, default=DEFAULT_SITE, help="site file (GeoJSON); default: %(default)s")
-    parser.add_argument("--out", type=Path, default=Path("wind-sensitivity.png"), help="chart to write (PNG)")
-    parser.add_argument("--scales", default="1,1.25,1.5,2,2.5,3",
+    parser.add_argument("-o", "--output", type=Path, default=Path("wind-sensitivity.png"),
+                        help="chart to write (PNG)")
+    parser.add_argument("--table-drifts", default="1,1.25,1.5,2,2.5,3",
                         help="drift scales to compare, comma-separated (1 = the forecast); default: %(default)s")
     parser.add_argument("--noise", type=float, default=0.1,
                         help="execution noise: share of moves made in a random direction; default: %(default)s")
     parser.add_argument("--episodes", type=int, default=300_000, help="training episodes per seed; default: %(default)s")
-    parser.add_argument("--seeds", type=int, default=4, help="independent training runs per learner")
+    parser.add_argument("--training-runs", type=int, default=4, help="independent training runs per learner")
     parser.add_argument("--cell", type=float, default=5.0, help="cell size in metres; default: %(default)s")
-    parser.add_argument("--seed", type=int, default=2024, help="root seed, for a reproducible run")
+    parser.add_argument("--root-seed", type=int, default=2024, help="root seed, for a reproducible run")
     return parser.parse_args(argv)
 
 
 def main(argv=None) -> int:
     args = parse_args(argv)
     try:
-        scales = tuple(float(s) for s in args.scales.split(",") if s.strip())
+        scales = tuple(float(s) for s in args.table_drifts.split(",") if s.strip())
     except ValueError:
-        print(f"wind_sensitivity: --scales {args.scales!r} is not a comma-separated list of numbers", file=sys.stderr)
+        print(f"wind_sensitivity: --table-drifts {args.table_drifts!r} is not a comma-separated list of numbers", file=sys.stderr)
         return 2
     if 1.0 not in scales:
         scales = (1.0, *scales)  # the forecast is the reference every other row is read against
     try:
         settings = PlanSettings(
             grid=GridSpec(args.cell), dynamics=Dynamics(),
-            learn=LearnSettings(epsilon=args.noise, episodes=args.episodes, n_seeds=args.seeds,
+            learn=LearnSettings(epsilon=args.noise, episodes=args.episodes, n_seeds=args.training_runs,
                                 start_mode="explore"),
-            noises=(args.noise,), drift_scales=scales, rollouts=0, seed=args.seed,
+            noises=(args.noise,), drift_scales=scales, rollouts=0, seed=args.root_seed,
         )
         result = compute_plan(args.site, settings)
     except PlannerError as err:
@@ -84,9 +85,9 @@ def main(argv=None) -> int:
 
     print(f"{result.site.name}: P(incident) per run at execution noise {args.noise:g} (for simulation and "
           "review only)")
-    print(f"{'drift scale':>12s}" + "".join(f"{name:>17s}" for name in table))
+    print(f"{'drift scale':>12s}" + "".join(f"{name:>26s}" for name in table))
     for m in sorted(scales):
-        print(f"{m:12g}" + "".join(f"{format_prob(table[name][m]):>17s}" for name in table))
+        print(f"{m:12g}" + "".join(f"{format_prob(table[name][m]):>26s}" for name in table))
     unconverged = [name for name, conv in result.convergence.items() if not conv.converged]
     for name, conv in result.convergence.items():
         print(f"  {name}: {conv.message}")
@@ -111,9 +112,9 @@ def main(argv=None) -> int:
         note += f"; TRAINING NOT CONVERGED for {' and '.join(unconverged)}: train longer (--episodes)"
     fig.text(0.01, 0.005, note, fontsize=style.FONT_SIZE - 2, color=style.HAZARD if unconverged else "#666666")
     fig.tight_layout(rect=(0, 0.03, 1, 1))
-    fig.savefig(args.out, metadata={"Software": None})
+    fig.savefig(args.output, metadata={"Software": None})
     plt.close(fig)
-    print(f"chart written to {args.out}")
+    print(f"chart written to {args.output}")
     return 0
 
 

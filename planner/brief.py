@@ -21,7 +21,7 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
-from planner import style
+from planner import notation, style
 from planner.errors import RunFolderError
 from planner.risk import find_row, format_prob
 
@@ -147,10 +147,7 @@ def _metres(value) -> str:
 
 def _times(ratio: float) -> str:
     """A ratio rounded to two significant figures, in words a reader takes in at once."""
-    if ratio >= 10:
-        digits = max(0, int(math.floor(math.log10(ratio))) - 1)
-        return f"{round(ratio, -digits):,.0f}"
-    return f"{ratio:.1f}"
+    return notation.times(ratio)
 
 
 def _count(n: int, word: str) -> str:
@@ -263,22 +260,19 @@ def brief_content(inputs: BriefInputs) -> dict:
         ref = find_row(rows, REFERENCE_OF[name], eps, base)
         main = _main_event(row)
         policies.append({
-            "name": name, "method": METHOD[name],
-            "length_m": route.length_m, "moves": route.n_moves, "waypoints": len(route.waypoints),
-            "waypoint_length_m": route.waypoint_length_m,
-            "reached_goal": route.reached_goal, "end_event": route.end_event, "ends": _ends(route),
+            **route_figures(name, route, conv, row),
+            "method": METHOD[name], "moves": route.n_moves, "waypoints": len(route.waypoints),
+            "waypoint_length_m": route.waypoint_length_m, "end_event": route.end_event,
             "min_clearance_m": route.min_clearance_m, "min_clearance_hazard": route.min_clearance_hazard,
-            "p_incident": format_prob(row.p_incident) if row else "-",
             "p_incident_strong": format_prob(row_strong.p_incident) if row_strong else "-",
+            "p_incident_strong_range": _strong_range(conv, strong, row_strong),
             "p_goal": format_prob(row.p_goal) if row else "-",
-            "p_incident_value": row.p_incident if row else math.nan,
             "p_incident_reference": _with_range(ref) if ref else "-",
             "delivered": conv.get("delivered", "learned"),
             "expected_m": row.expected_m if row else math.nan,
             "main_event": f"{main[0]} ({format_prob(main[1])})" if main else "none",
-            "converged": conv["converged"], "message": conv["message"], "agreement": conv["agreement"],
+            "agreement": conv["agreement"],
             "value_gap_m": math.inf if conv["value_gap_m"] is None else conv["value_gap_m"],
-            "seed_routes_matching": conv["seed_routes_matching"], "n_seeds": conv["n_seeds"],
             "episodes": conv.get("episodes", learn.episodes),
         })
     p = {x["name"]: x for x in policies}
@@ -314,8 +308,99 @@ def _with_range(ref) -> str:
     text = format_prob(ref.p_incident)
     rng = ref.p_incident_range
     if rng is not None and rng[1] > rng[0]:
-        text += f" (equally good routes: {format_prob(rng[0])} to {format_prob(rng[1])})"
+        text += f" (equally good routes: {notation.probability_range(*rng)})"
     return text
+
+
+def usable_cells(grid) -> str:
+    """The count of usable cells as ``veerwise check`` prints it: every cell the vehicle can
+    be in, goal cells included."""
+    return f"{int(grid.passable().sum()):,} usable cells, {int(grid.goal.sum()):,} of them goal"
+
+
+def route_figures(name: str, route, conv: dict, row) -> dict:
+    """The headline figures of one policy, as the briefing and the plan summary state them.
+
+    ``conv`` is the policy's entry of the manifest's ``results`` (convergence verdict,
+    seed counts, per-seed P(incident)); ``row`` its risk row at the headline noise and
+    planning drift, or None.
+    """
+    lo, hi = seed_range(conv.get("p_incident_seeds"), row.p_incident if row else None)
+    return {
+        "name": name, "length_m": route.length_m, "reached_goal": route.reached_goal, "ends": _ends(route),
+        "p_incident": format_prob(row.p_incident) if row else "-",
+        "p_incident_value": row.p_incident if row else math.nan,
+        "p_incident_lo": lo, "p_incident_hi": hi, "p_incident_range": notation.probability_range(lo, hi),
+        "seed_routes_matching": conv["seed_routes_matching"], "n_seeds": conv["n_seeds"],
+        "seeds_disagree": conv["seed_routes_matching"] < conv["n_seeds"],
+        "converged": conv["converged"], "message": conv["message"],
+    }
+
+
+def compare_routes(c: dict, s: dict) -> tuple[str, bool]:
+    """How the cautious route compares with the shortest, in one or two sentences, and
+    whether a reviewer must be alerted (the cautious one is not the less risky).
+
+    ``c`` and ``s`` come from :func:`route_figures`; the "N times" ratio is the widest
+    range the two policies' spreads over their training runs allow.
+    """
+    pc, ps = c["p_incident_value"], s["p_incident_value"]
+    extra = c["length_m"] - s["length_m"]
+    share = f" ({abs(100 * extra / s['length_m']):.0f}%)" if s["length_m"] > 0 else ""
+    if not (math.isfinite(pc) and math.isfinite(ps)):
+        return "", False
+    if pc < ps:
+        ratio = notation.ratio_range((c["p_incident_lo"], c["p_incident_hi"]),
+                                     (s["p_incident_lo"], s["p_incident_hi"]))
+        n_seeds = max(c["n_seeds"], s["n_seeds"])
+        if pc == 0:
+            odds = "never ends in an incident in the model"
+        elif ratio is None:
+            odds = (f"is about {_times(ps / pc)} times less likely to end in an incident in the model (some "
+                    "training runs' cautious policy never ends in one)")
+        elif ratio[0] < 1.0:
+            odds = (f"is about {_times(ps / pc)} times less likely to end in an incident in the model; but over "
+                    f"the {n_seeds} training runs of each learner the ratio ranges from {_times(ratio[0])} to "
+                    f"{_times(ratio[1])}, so the runs do not agree that it is the safer route")
+            longer = f"{abs(extra):.1f} m{share} {'longer' if extra >= 0 else 'shorter'}"
+            return f"The cautious route is {longer} and {odds}.", True
+        else:
+            odds = (f"is about {notation.times_range(*ratio)} times less likely to end in an incident in the "
+                    f"model (the range over the {n_seeds} training runs of each learner)")
+        longer = f"{abs(extra):.1f} m{share} {'longer' if extra >= 0 else 'shorter'}"
+        return f"The cautious route is {longer} and {odds}.", False
+    if pc > ps:
+        return (f"In the model the cautious route is NOT the less risky one here ({c['p_incident']} against "
+                f"{s['p_incident']}); check the convergence verdicts before relying on it."), True
+    return "Both have the same incident probability in the model.", False
+
+
+def _strong_range(conv: dict, strong, row) -> str:
+    """P(incident) at the strongest drift over the training runs, or "-" when not recorded."""
+    record = conv.get("p_incident_seeds_strong") or {}
+    if strong is None or row is None or not record or not math.isclose(record.get("drift_scale", -1.0), strong):
+        return "-"
+    return notation.probability_range(*seed_range(record.get("values"), row.p_incident))
+
+
+def seed_range(seed_values, headline) -> tuple[float, float]:
+    """The range of a P(incident) over the training seeds and the exported policy's figure.
+
+    ``seed_values`` are the per-seed figures of the manifest (may be missing in run
+    folders written before they were recorded); ``headline`` the exported policy's.
+    """
+    values = [float(v) for v in (seed_values or ()) if v is not None and math.isfinite(float(v))]
+    if headline is not None and math.isfinite(float(headline)):
+        values.append(float(headline))
+    return (min(values), max(values)) if values else (math.nan, math.nan)
+
+
+def seeds_banner(x: dict) -> str:
+    """The banner raised when the training seeds do not agree on a policy's route."""
+    return (f"SEEDS DISAGREE on the {x['name']} route: only {x['seed_routes_matching']} of {x['n_seeds']} "
+            "training runs keep within 2 cells of the exported route, so the route depends on the seed as much "
+            f"as on the yard. P(incident) over the runs: {x['p_incident_range']}. Re-run with more episodes "
+            "before signing.")
 
 
 def _banners(policies) -> list[str]:
@@ -325,6 +410,7 @@ def _banners(policies) -> list[str]:
         out.append(f"NOT CONVERGED: the learned {x['name']} policy's risk does not agree with its exact reference "
                    f"({x['message']}). The learned {x['name']} route must not be signed; re-run with more "
                    "episodes.")
+    out += [seeds_banner(x) for x in policies if x["seeds_disagree"]]
     for x in policies:
         if not x["reached_goal"]:
             out.append(f"The {x['name']} nominal route does not reach the goal: it ends {x['ends']}.")
@@ -346,36 +432,31 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
     which = (f"Two candidate routes from '{site.start_name}' to '{site.goal_name}': the cautious route, "
              f"{c['length_m']:.1f} m ({clearance(c)}), and the shortest route, {s['length_m']:.1f} m "
              f"({clearance(s)}).")
-    pc, ps = c["p_incident_value"], s["p_incident_value"]
-    extra = c["length_m"] - s["length_m"]
-    share = f" ({abs(100 * extra / s['length_m']):.0f}%)" if s["length_m"] > 0 else ""
-    which_alert = not (c["reached_goal"] and s["reached_goal"])
-    if math.isfinite(pc) and math.isfinite(ps):
-        if pc < ps:
-            odds = "never ends in an incident in the model" if pc == 0 else (
-                f"is about {_times(ps / pc)} times less likely to end in an incident in the model")
-            longer = f"{abs(extra):.1f} m{share} {'longer' if extra >= 0 else 'shorter'}"
-            which += f" The cautious route is {longer} and {odds}."
-        elif pc > ps:
-            which += (f" In the model the cautious route is NOT the less risky one here ({c['p_incident']} against "
-                      f"{s['p_incident']}); check section 3 before relying on it.")
-            which_alert = True
-        else:
-            which += " Both have the same incident probability in the model."
+    compared, worse = compare_routes(c, s)
+    which += f" {compared}" if compared else ""
+    which_alert = worse or not (c["reached_goal"] and s["reached_goal"])
     which += " Choosing between them is the reviewer's decision."
 
     drift_words = "as drawn (the forecast)" if math.isclose(base, 1.0) else f"at {base:g} x the drawn strength"
     risky = (f"P(incident) is the chance, in the model, that one run ends in a hazard or off the boundary before "
              f"the goal. With {100 * eps:g}% of moves made in a random direction and drift {drift_words}: "
-             f"cautious {c['p_incident']}, shortest {s['p_incident']}.")
+             f"cautious {c['p_incident']}, shortest {s['p_incident']}. Over the training runs of each learner: "
+             f"cautious {c['p_incident_range']}, shortest {s['p_incident_range']}.")
     if strong is not None:
         risky += (f" With drift {'twice' if strong == 2 else f'{strong:g} times'} as strong: "
                   f"cautious {c['p_incident_strong']}, "
-                  f"shortest {s['p_incident_strong']}.")
+                  f"shortest {s['p_incident_strong']}")
+        if c["p_incident_strong_range"] != "-":
+            risky += (f"; over the training runs cautious {c['p_incident_strong_range']}, shortest "
+                      f"{s['p_incident_strong_range']}")
+        risky += "."
     risky += " These figures compare routes; they are not field failure rates."
 
     ending = sum(1 for h in site.hazards if h.ends_run)
-    assume = (f"A grid of {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m; {dyn.n_actions} move "
+    width, height = site.extent_m
+    assume = (f"The site: centre {notation.hemisphere(site.centre_lonlat[1], site.centre_lonlat[0])} (WGS 84), "
+              f"{width:.0f} m east-west x {height:.0f} m north-south. "
+              f"A grid of {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m; {dyn.n_actions} move "
               f"directions; a move veers to a neighbouring direction with probability {dyn.slip:g}"
               + (f" and stalls with probability {dyn.stall:g}" if dyn.stall else "")
               + f"; {_count(len(site.drifts), 'drift zone')} as drawn"
@@ -405,10 +486,14 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
     never = max((r.p_never for r in rows if math.isfinite(r.p_never)), default=0.0)
     if never > 0:
         trust += f" Under some settings a run can loop forever (probability up to {format_prob(never)})."
+    split = [x for x in (c, s) if x["seeds_disagree"]]
+    for x in split:
+        trust += (f" But the training runs disagree on the {x['name']} route: only {x['seed_routes_matching']} of "
+                  f"{x['n_seeds']} keep within 2 cells of it, so it is not yet a property of the yard alone.")
     trust += " The figures are exact for the model only (section 6)."
     return [("Which route?", which, which_alert), ("How risky?", risky, False),
             ("Under what assumptions?", assume, False),
-            ("Is the answer trustworthy?", trust, bool(bad) or never > 0)]
+            ("Is the answer trustworthy?", trust, bool(bad) or bool(split) or never > 0)]
 
 
 def _section_routes(content: dict, p: dict) -> list:
@@ -430,9 +515,13 @@ def _section_routes(content: dict, p: dict) -> list:
         ["moves / waypoints", f"{c['moves']} / {c['waypoints']}", f"{s['moves']} / {s['waypoints']}"],
         ["closest approach to a hazard", clearance(c), clearance(s)],
         [f"P(incident), noise {eps:g}, drift x{base:g}", *both("p_incident")],
+        ["P(incident) over the training runs (range)", *both("p_incident_range")],
     ]
     if strong is not None:
         rows.append([f"P(incident), noise {eps:g}, drift x{strong:g}", *both("p_incident_strong")])
+        if c["p_incident_strong_range"] != "-":
+            rows.append([f"P(incident), drift x{strong:g}, over the training runs (range)",
+                         *both("p_incident_strong_range")])
     rows += [
         [f"P(goal), noise {eps:g}, drift x{base:g}", *both("p_goal")],
         ["most likely incident (probability)", *both("main_event")],
@@ -449,8 +538,8 @@ def _section_routes(content: dict, p: dict) -> list:
               f"Drift x1: drift zones as drawn (the forecast); x2: twice as strong. Closest approach: distance "
               f"from the waypoint legs to a hazard as drawn, buffers not included.", small=True),
         _figure("routes.png", "map with both routes",
-                "Site, zones, drift arrows (mean push per move) and both nominal routes with their waypoints; "
-                "shaded cells are where the two policies would choose differently. Distances in metres."),
+                "Site, zones, drift arrows (direction of the mean push, drawn above the routes) and both nominal "
+                "routes with their waypoints; hazards that end the run are hatched. Distances in metres."),
     ]
 
 
@@ -490,7 +579,8 @@ def _section_risk(content: dict, rows) -> list:
         table = []
         for r in learned:
             inc = r.mc.get("incident")
-            mc = f"{format_prob(inc.estimate)} [{format_prob(inc.lo)}, {format_prob(inc.hi)}]" if inc else "-"
+            mc = (f"{format_prob(inc.estimate)} [{notation.percent(inc.lo)} to {notation.percent(inc.hi)}]"
+                  if inc else "-")
             main = _main_event(r)
             check = "not run" if not r.mc else ("! (section 3)" if r.mc_disagrees else "agrees")
             table.append([r.policy, f"{r.noise:g}", format_prob(r.p_goal), format_prob(r.p_incident), mc,
@@ -538,11 +628,13 @@ def _section_risk(content: dict, rows) -> list:
     blocks.append(_para(" ".join(notes), small=True))
     blocks += [
         _figure("sensitivity.png", "sensitivity chart",
-                "P(incident) against execution noise on a log scale; thicker lines and other markers for stronger "
-                "drift; dotted lines for the exact references."),
+                "P(incident) against execution noise on a log scale, the learned policies and the exact references "
+                "in panels of their own; thicker lines for the strongest drift tabulated; values under 1 in 10^12 "
+                "drawn with open markers on a floor line of their own."),
         _figure("riskmap.png", "risk maps",
-                f"P(incident before the goal) from each cell, at noise {content['noise']:g} and drift x{base:g}, "
-                "on a log colour scale, with each policy's nominal route."),
+                f"If the vehicle were here: P(incident before the goal) of a run from each cell, at noise "
+                f"{content['noise']:g} and drift x{base:g}, on a log colour scale, with each policy's nominal route. "
+                "Hazards that end the run are hatched white, apart from the scale."),
     ]
     return blocks
 
@@ -621,8 +713,8 @@ def _section_site(inputs: BriefInputs, content: dict) -> list:
         ["site", site.name],
         ["site file", f"{Path(manifest['input']['site']).name}, sha256 {site.sha256[:16]}... (full hash in "
                       "manifest.json)"],
-        ["extent", f"{width:.0f} m east-west x {height:.0f} m north-south; {int(grid.passable().sum()):,} usable "
-                   f"cells"],
+        ["site centre", f"{notation.hemisphere(site.centre_lonlat[1], site.centre_lonlat[0])} (WGS 84)"],
+        ["extent", f"{width:.0f} m east-west x {height:.0f} m north-south; {usable_cells(grid)}"],
         ["start / goal", f"'{site.start_name}' / '{site.goal_name}'"],
         ["working frame", f"{frame}; largest scale distortion {site.scale_distortion:.1e}"],
     ]

@@ -372,6 +372,46 @@ def fsync_path(path) -> None:
         os.close(fd)
 
 
+#: File formats by file-name extension, as ``-o`` decides them.
+FORMAT_OF_EXTENSION = {".geojson": "geojson", ".json": "geojson", ".csv": "csv", ".gpx": "gpx", ".png": "png"}
+
+
+def output_format(path, allowed, *, fmt: str | None = None, option: str = "-o/--output") -> str:
+    """The format of an output file, read from its extension; a ``fmt`` given too must match it.
+
+    Raises
+    ------
+    SettingsError
+        When the extension names no allowed format, or names another than ``fmt``.
+    """
+    suffix = Path(path).suffix.lower()
+    found = FORMAT_OF_EXTENSION.get(suffix)
+    names = ", ".join(sorted(e for e, f in FORMAT_OF_EXTENSION.items() if f in allowed))
+    if found not in allowed:
+        raise SettingsError(f"{option} {path}: the extension {suffix or '(none)'} names no format this command "
+                            f"writes; use one of {names}")
+    if fmt is not None and fmt != found:
+        raise SettingsError(f"{option} {path}: --format {fmt} does not match the extension {suffix} ({found}); "
+                            "drop --format or change the file name")
+    return found
+
+
+def check_output(path, allowed, *, fmt: str | None = None, force: bool = False,
+                 option: str = "-o/--output") -> str:
+    """Refuse an output file before any work: a wrong extension, a folder, a missing parent
+    folder, or a file already there without ``force``. Returns the format."""
+    found = output_format(path, allowed, fmt=fmt, option=option)
+    target = Path(path)
+    if target.is_dir():
+        raise RunFolderError(f"{option} {target}: is a folder, not a file")
+    if target.exists() and not force:
+        raise RunFolderError(f"{option} {target}: already exists; choose another name or pass --force to replace it")
+    folder = target.parent if str(target.parent) else Path(".")
+    if not folder.is_dir():
+        raise RunFolderError(f"{option} {target}: folder {folder} does not exist")
+    return found
+
+
 @contextlib.contextmanager
 def atomic_output(path, *, guard: bool = True):
     """Yield a temporary path beside ``path``; rename it into place only on success.

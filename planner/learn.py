@@ -125,7 +125,7 @@ class LearnSettings:
         if self.max_steps is not None and not (_is_whole(self.max_steps) and self.max_steps >= 1):
             raise SettingsError(f"--max-steps must be a whole number >= 1 (or unset), got {self.max_steps!r}")
         if not (_is_whole(self.n_seeds) and self.n_seeds >= 1):
-            raise SettingsError(f"--seeds must be a whole number >= 1, got {self.n_seeds!r}")
+            raise SettingsError(f"--training-runs must be a whole number >= 1, got {self.n_seeds!r}")
         if self.start_mode not in ("start", "explore"):
             raise SettingsError(f"--start-mode must be 'start' or 'explore', got {self.start_mode!r}")
         if self.q_init not in ("heuristic", "zeros"):
@@ -504,7 +504,7 @@ def seed_states(seed, n_seeds: int) -> tuple[np.random.SeedSequence, np.ndarray]
     elif seed is None or (isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0):
         root = np.random.SeedSequence(seed)
     else:
-        raise SettingsError(f"--seed must be a whole number >= 0, got {seed!r}")
+        raise SettingsError(f"--root-seed must be a whole number >= 0, got {seed!r}")
     fresh = np.random.SeedSequence(root.entropy, spawn_key=root.spawn_key, pool_size=root.pool_size)
     states = np.array([child.generate_state(1, np.uint64)[0] for child in fresh.spawn(n_seeds)], dtype=np.uint64)
     return root, states

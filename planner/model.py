@@ -795,6 +795,7 @@ def site_summary(site, spec, dynamics: Dynamics = Dynamics()) -> dict:
         "frame": {"kind": site.frame.kind, "crs": site.frame.crs,
                   "largest_scale_distortion": site.scale_distortion},
         "extent_m": {"east": round(width, 3), "north": round(height, 3)},
+        "centre": {"lat": round(site.centre_lonlat[1], 7), "lon": round(site.centre_lonlat[0], 7)},
         "start": site.start_name,
         "goal": site.goal_name,
         "zones": {
@@ -808,6 +809,8 @@ def site_summary(site, spec, dynamics: Dynamics = Dynamics()) -> dict:
             "cell_m": spec.cell_m, "rows": grid.shape[0], "cols": grid.shape[1], "cells": grid.n_cells,
             "inside_cells": int((lab != OUTSIDE).sum()), "hazard_cells": int((lab >= 0).sum()),
             "active_cells": int((grid.passable() & ~grid.goal).sum()),
+            # usable = every cell the vehicle can be in, goal cells included (as the briefing counts)
+            "usable_cells": int(grid.passable().sum()), "goal_cells": int(grid.goal.sum()),
             "hazard_overlap": spec.hazard_overlap, "boundary_cover": spec.boundary_cover,
             "max_cells": spec.max_cells,
         },

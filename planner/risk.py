@@ -30,6 +30,7 @@ from dataclasses import dataclass, field, replace
 import numba
 import numpy as np
 
+from planner import notation
 from planner.errors import SettingsError, SolverError
 from planner.exact import equally_good, safest_among
 from planner.model import (
@@ -59,8 +60,8 @@ SOLVE_TOLERANCE = 1e-8
 SUM_TOLERANCE = 1e-8
 #: Slack when comparing an exact figure with its Monte Carlo interval (round-off only).
 INTERVAL_SLACK = 1e-12
-#: Probabilities below this print as "<1.0e-12": the solves are not that accurate.
-PRINT_FLOOR = 1e-12
+#: Probabilities below this print as "< 1 in 10^12": the solves are not that accurate.
+PRINT_FLOOR = notation.FLOOR
 #: Output formats of :func:`format_table`.
 FORMATS = ("text", "csv", "json", "markdown")
 
@@ -344,6 +345,32 @@ def incident_probability(result: Absorption) -> np.ndarray:
     """P(incident) from every state of a solved chain (NaN on inactive states)."""
     # Summing events may overshoot 1 by round-off; NaN rows stay NaN.
     return np.clip(result.probs[:, EVENT_BOUNDARY:].sum(axis=1), 0.0, 1.0)
+
+
+def seed_incidents(model: Model, seed_policies, noise: float) -> np.ndarray:
+    """Exact P(incident) from the start of every training seed's own policy.
+
+    A learned figure is a property of the yard only when it does not move with the
+    seed; the spread of these values is what the summary and the briefing report as
+    its range.
+
+    Parameters
+    ----------
+    model : the model.
+    seed_policies : one policy per seed: greedy actions ``(n_states,)`` (e.g. with ties
+        broken by safety) or a Q table ``(n_states, n_actions)``.
+    noise : execution noise epsilon of the figure.
+
+    Returns
+    -------
+    numpy.ndarray
+        float64 ``(n_seeds,)``.
+    """
+    out = np.empty(len(seed_policies))
+    for i, policy in enumerate(seed_policies):
+        probs = epsilon_greedy(_policy_actions(model, policy, noise), model.n_actions, noise)
+        out[i] = incident_probability(absorption(model, probs))[model.start]
+    return out
 
 
 def _policy_actions(model: Model, policy, noise: float) -> np.ndarray:
@@ -781,40 +808,14 @@ def clearance_m(path_xy, hazards) -> dict[str, float]:
 
 
 def format_prob(p) -> str:
-    """A probability in a form that keeps small values (and small complements) readable.
-
-    ``0`` and ``1`` print as such; values below ``PRINT_FLOOR`` (1e-12, under the
-    solves' accuracy) as ``<1.0e-12``; values below 0.01 in two-digit scientific form
-    (``1.2e-4``); values above 0.9999 as one minus a small number (``1-3.0e-6``);
-    the rest with four decimals. ``None`` and NaN print as ``-``.
+    """A probability in veerwise's one notation (:func:`planner.notation.probability`).
 
     Examples
     --------
-    >>> [format_prob(p) for p in (0.0, 1.2e-4, 0.25, 0.999997, 1.0)]
-    ['0', '1.2e-4', '0.2500', '1-3.0e-6', '1']
+    >>> [format_prob(p) for p in (0.0, 1.2e-4, 0.25, 0.999997, 3e-13)]
+    ['0', '0.012% (1 in 8,300)', '25% (1 in 4.0)', '99.9997%', '< 1 in 10^12']
     """
-    if p is None or (isinstance(p, float) and math.isnan(p)):
-        return "-"
-    p = float(p)
-    if p == 0.0:
-        return "0"
-    if 0.0 < p < PRINT_FLOOR:
-        # Below the solver's accuracy: digits there would be false precision.
-        return f"<{_short_exp(PRINT_FLOOR)}"
-    if p == 1.0:
-        return "1"
-    if not 0.0 < p < 1.0:
-        return f"{p:.3g}"
-    if p < 0.01:
-        return _short_exp(p)
-    if p > 0.9999:
-        return "1-" + _short_exp(1.0 - p)
-    return f"{p:.4f}"
-
-
-def _short_exp(x: float) -> str:
-    mantissa, exponent = f"{x:.1e}".split("e")
-    return f"{mantissa}e{int(exponent)}"
+    return notation.probability(p)
 
 
 def _num(x, digits: int = 1) -> str:
@@ -831,8 +832,8 @@ def _plain(x):
     return x if math.isfinite(x) else None
 
 
-def format_table(rows: Iterable[RiskRow], fmt: str = "text") -> str:
-    """The risk table as text (80 columns), csv, json or markdown.
+def format_table(rows: Iterable[RiskRow], fmt: str = "text", *, details: bool = False) -> str:
+    """The risk table as text (one line per row, under 100 columns), csv, json or markdown.
 
     Exact figures whose Monte Carlo interval does not contain them are marked ``!``
     in text and markdown, with a footnote; csv and json carry ``mc_disagrees``.
@@ -842,6 +843,8 @@ def format_table(rows: Iterable[RiskRow], fmt: str = "text") -> str:
     ----------
     rows : the rows (from :func:`evaluate` or :func:`sensitivity`).
     fmt : ``"text"``, ``"csv"``, ``"json"`` or ``"markdown"``.
+    details : text only: follow each row with its zones' shares, entries, budget
+        figures and Monte Carlo estimates.
 
     Returns
     -------
@@ -856,7 +859,7 @@ def format_table(rows: Iterable[RiskRow], fmt: str = "text") -> str:
         return _format_csv(rows)
     if fmt == "markdown":
         return _format_markdown(rows)
-    return _format_text(rows)
+    return _format_text(rows, details)
 
 
 def _flat(row: RiskRow) -> dict:
@@ -899,47 +902,68 @@ def _mark(row: RiskRow, key: str, text: str) -> str:
     return text + ("!" if key in row.mc_disagrees else "")
 
 
-_TEXT_HEADER = (
-    f"{'policy':<12} {'noise':>5} {'drift':>5} {'P(goal)':>9} {'P(incid.)':>9} {'P(never)':>9} "
-    f"{'moves|goal':>10} {'m|goal':>9}"
-)
-
-
-def _format_text(rows: list[RiskRow]) -> str:
-    lines = [_TEXT_HEADER, "-" * len(_TEXT_HEADER)]
-    flagged = False
-    wrap = textwrap.TextWrapper(width=80, initial_indent="  ", subsequent_indent="      ", break_on_hyphens=False)
+def _format_text(rows: list[RiskRow], details: bool = False) -> str:
+    """One line per row; with ``details`` each row's incidents by zone, entries, budget
+    figures and Monte Carlo estimates follow it, indented."""
+    with_never = any(r.p_never > 0 for r in rows)
+    with_mc = any(r.mc for r in rows)
+    head = ["policy", "noise", "drift", "P(incident)", "P(goal)"] + (["P(never)"] if with_never else [])
+    head += ["m|goal"] + (["Monte Carlo"] if with_mc else [])
+    right = {"noise", "drift", "m|goal"}
+    table = []
     for r in rows:
-        lines.append(
-            f"{r.policy[:12]:<12} {r.noise:>5.2f} {r.drift_scale:>5.2f} "
-            f"{_mark(r, 'goal', format_prob(r.p_goal)):>9} {_mark(r, 'incident', format_prob(r.p_incident)):>9} "
-            f"{_mark(r, 'never', format_prob(r.p_never)):>9} {_num(r.expected_moves):>10} {_num(r.expected_m):>9}"
-        )
-        details = []
-        if r.p_by_event:
-            parts = [f"{k} {_mark(r, f'event:{k}', format_prob(v))}" for k, v in r.p_by_event.items()]
-            details.append("incidents: " + ", ".join(parts))
-        if r.p_entry:
-            parts = [f"{k} {_mark(r, f'entry:{k}', format_prob(v))}" for k, v in r.p_entry.items()]
-            details.append("entries: " + ", ".join(parts))
-        if r.budget is not None:
-            details.append(
-                f"within {r.budget} moves: goal {_mark(r, 'goal_within_budget', format_prob(r.p_goal_within_budget))}"
-                f", incident {_mark(r, 'incident_within_budget', format_prob(r.p_incident_within_budget))}"
-                f", timeout {_mark(r, 'timeout', format_prob(r.p_timeout))}"
-            )
-        if r.n_trapped_states:
-            details.append(f"{r.n_trapped_states} states can never end the run under this policy")
-        if r.mc:
-            parts = [f"{_short_key(k)} {format_prob(m.estimate)} [{format_prob(m.lo)}, {format_prob(m.hi)}]"
-                     for k, m in r.mc.items()]
-            trunc = f", {r.n_truncated} truncated" if r.n_truncated else ""
-            details.append(f"Monte Carlo ({r.n_rollouts} runs{trunc}): " + "; ".join(parts))
-        flagged = flagged or bool(r.mc_disagrees)
-        lines.extend(wrap.fill(d) for d in details)
-    if flagged:
-        lines.extend(_footnote(rows, 80))
+        cells = [r.policy, f"{r.noise:.2f}", f"{r.drift_scale:.2f}", _mark(r, "incident", format_prob(r.p_incident)),
+                 _mark(r, "goal", notation.percent(r.p_goal))]
+        if with_never:
+            cells.append(_mark(r, "never", format_prob(r.p_never)))
+        cells.append(_num(r.expected_m))
+        if with_mc:
+            cells.append("not run" if not r.mc else ("! differs" if r.mc_disagrees else "agrees"))
+        table.append(cells)
+    widths = [max(len(c) for c in col) for col in zip(head, *table, strict=True)]
+
+    def line(cells):
+        return " ".join(c.rjust(w) if h in right else c.ljust(w)
+                        for h, c, w in zip(head, cells, widths, strict=True)).rstrip()
+
+    header = line(head)
+    lines = [header, "-" * len(header)]
+    wrap = textwrap.TextWrapper(width=98, initial_indent="    ", subsequent_indent="      ",
+                                break_on_hyphens=False)
+    for r, cells in zip(rows, table, strict=True):
+        lines.append(line(cells))
+        if details:
+            lines.extend(wrap.fill(d) for d in _row_details(r))
+    if any(r.mc_disagrees for r in rows):
+        lines.extend(_footnote(rows, 98))
+    if not details:
+        lines.append("(one line per row; --details adds each zone's share, entries and the Monte Carlo estimates)")
     return "\n".join(lines) + "\n"
+
+
+def _row_details(r: RiskRow) -> list[str]:
+    details = []
+    if r.p_by_event:
+        parts = [f"{k} {_mark(r, f'event:{k}', format_prob(v))}" for k, v in r.p_by_event.items()]
+        details.append("incidents: " + ", ".join(parts))
+    if r.p_entry:
+        parts = [f"{k} {_mark(r, f'entry:{k}', format_prob(v))}" for k, v in r.p_entry.items()]
+        details.append("entries: " + ", ".join(parts))
+    if r.budget is not None:
+        details.append(
+            f"within {r.budget} moves: goal {_mark(r, 'goal_within_budget', format_prob(r.p_goal_within_budget))}"
+            f", incident {_mark(r, 'incident_within_budget', format_prob(r.p_incident_within_budget))}"
+            f", timeout {_mark(r, 'timeout', format_prob(r.p_timeout))}"
+        )
+    details.append(f"expected moves given goal {_num(r.expected_moves)}; solve residual {r.residual:.1e}")
+    if r.n_trapped_states:
+        details.append(f"{r.n_trapped_states} states can never end the run under this policy")
+    if r.mc:
+        parts = [f"{_short_key(k)} {notation.percent(m.estimate)} [{notation.percent(m.lo)}, "
+                 f"{notation.percent(m.hi)}]" for k, m in r.mc.items()]
+        trunc = f", {r.n_truncated} truncated" if r.n_truncated else ""
+        details.append(f"Monte Carlo ({r.n_rollouts:,} runs{trunc}, Wilson 95%): " + "; ".join(parts))
+    return details
 
 
 def _footnote(rows: list[RiskRow], width: int | None) -> list[str]:
@@ -985,8 +1009,8 @@ def _format_markdown(rows: list[RiskRow]) -> str:
         cells += [_mark(r, f"entry:{e}", format_prob(r.p_entry.get(e))) for e in entries]
         if with_mc:
             cells += [str(r.n_rollouts)] + [
-                f"{format_prob(r.mc[k].estimate)} [{format_prob(r.mc[k].lo)}, {format_prob(r.mc[k].hi)}]"
-                if k in r.mc else "-" for k in ("goal", "incident")
+                f"{notation.percent(r.mc[k].estimate)} [{notation.percent(r.mc[k].lo)}, "
+                f"{notation.percent(r.mc[k].hi)}]" if k in r.mc else "-" for k in ("goal", "incident")
             ]
         flagged = flagged or bool(r.mc_disagrees)
         lines.append("| " + " | ".join(cells) + " |")
@@ -1006,5 +1030,5 @@ def _union(dicts) -> list[str]:
 __all__ = [
     "DEFAULT_DRIFT_SCALES", "DEFAULT_NOISES", "Z95", "Absorption", "McEstimate", "RiskRow", "absorption",
     "clearance_m", "evaluate", "format_prob", "format_table", "incident_probability",
-    "mc_estimate", "risk_map", "sample_runs", "sensitivity", "wilson_interval",
+    "mc_estimate", "risk_map", "sample_runs", "seed_incidents", "sensitivity", "wilson_interval",
 ]

@@ -54,21 +54,18 @@ TIE_CELLS = 0.25
 #: A learned policy within this share of the exact value at the start (or one cell)
 #: counts as converged on value.
 GAP_SHARE = 0.01
-#: Cells a policy visits at least this often (expected visits per run, under its
-#: execution noise) are where the routes figure shows the policies' differences.
-VISITED_FLOOR = 0.01
 
 
 def resolve_run_path(path) -> Path:
     """The absolute run-folder path ``path`` names (``.`` and symlinks resolved)."""
     resolved = Path(path).resolve()
     if resolved.parent == resolved:
-        raise RunFolderError(f"--out {path}: is the root of the file system; name a folder below it")
+        raise RunFolderError(f"run folder {path}: is the root of the file system; name a folder below it")
     return resolved
 
 
 def check_out(path, *, force: bool = False) -> tuple[Path, Path]:
-    """Refuse an ``--out`` that cannot be written: called before any work and again at the end.
+    """Refuse a run folder that cannot be written: called before any work and again at the end.
 
     ``--force`` replaces only what veerwise made: an existing run folder, or an empty
     folder. Any other folder (the current folder, a folder of the user's files) is
@@ -78,14 +75,15 @@ def check_out(path, *, force: bool = False) -> tuple[Path, Path]:
     path = resolve_run_path(path)
     parent = path.parent
     if not parent.is_dir():
-        raise RunFolderError(f"--out {given}: parent folder {parent} does not exist")
+        raise RunFolderError(f"run folder {given}: parent folder {parent} does not exist")
     if path.exists() and not path.is_dir():
-        raise RunFolderError(f"--out {given}: exists and is not a folder")
+        raise RunFolderError(f"run folder {given}: exists and is not a folder")
     if path.exists() and not force:
-        raise RunFolderError(f"--out {given}: already exists; choose another folder or pass --force to replace it")
+        raise RunFolderError(f"run folder {given}: already exists; choose another folder or pass --force to "
+                             "replace it")
     if path.exists() and not (is_run_folder(path) or not any(path.iterdir())):
-        raise RunFolderError(f"--out {given}: is not a veerwise run folder (no manifest.json of ours); --force "
-                             "replaces only run folders and empty folders, so nothing else is lost")
+        raise RunFolderError(f"run folder {given}: is not a veerwise run folder (no manifest.json of ours); "
+                             "--force replaces only run folders and empty folders, so nothing else is lost")
     return path, parent
 
 
@@ -398,10 +396,10 @@ class PlanSettings:
                                 f"got {self.learn.epsilon}")
         for n in self.noises:
             if not (0.0 <= n < 1.0):
-                raise SettingsError(f"--noise values must be in [0, 1), got {n}")
+                raise SettingsError(f"--table-noises values must be in [0, 1), got {n}")
         for m in self.drift_scales:
             if not (np.isfinite(m) and m >= 0.0):
-                raise SettingsError(f"--drift-scales values must be finite and >= 0, got {m}")
+                raise SettingsError(f"--table-drifts values must be finite and >= 0, got {m}")
         if self.budget is not None and self.budget < 1:
             raise SettingsError(f"--budget must be a whole number of moves >= 1, got {self.budget}")
         if self.rollouts < 0:
@@ -409,10 +407,11 @@ class PlanSettings:
         if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
                 and np.isfinite(self.tie_m) and self.tie_m >= 0):
             raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
-        check_seed(self.seed)
-        check_counts(seeds=self.learn.n_seeds, episodes=max(self.learn.episodes, self.episodes_shortest or 0),
+        check_seed(self.seed, "--root-seed")
+        check_counts(training_runs=self.learn.n_seeds,
+                     episodes=max(self.learn.episodes, self.episodes_shortest or 0),
                      max_steps=self.learn.max_steps, rollouts=self.rollouts, budget=self.budget,
-                     noise=len(self.noises), drift_scales=len(self.drift_scales))
+                     table_noises=len(self.noises), table_drifts=len(self.drift_scales))
         from planner.site import MAX_PENALTY_M
 
         penalty = self.dynamics.hazard_penalty_m
@@ -424,8 +423,8 @@ class PlanSettings:
 #: Upper bounds on counts, checked when the settings are made (before any work): far
 #: beyond any useful plan, and low enough that no setting alone can run for days.
 COUNT_LIMITS = {
-    "--seeds": 100, "--episodes": 100_000_000, "--max-steps": 10_000_000, "--rollouts": 10_000_000,
-    "--budget": 1_000_000, "--noise": 50, "--drift-scales": 50,
+    "--training-runs": 100, "--episodes": 100_000_000, "--max-steps": 10_000_000, "--rollouts": 10_000_000,
+    "--budget": 1_000_000, "--table-noises": 50, "--table-drifts": 50,
 }
 #: Share of the memory the system reports available that one plan may plan to use.
 MEMORY_SHARE = 0.8
@@ -437,7 +436,7 @@ def check_counts(**counts) -> None:
         option = "--" + key.replace("_", "-")
         limit = COUNT_LIMITS[option]
         if value is not None and value > limit:
-            what = f"gives {value:,} values" if option in ("--noise", "--drift-scales") else f"{value:,} is"
+            what = f"gives {value:,} values" if option in ("--table-noises", "--table-drifts") else f"{value:,} is"
             raise SettingsError(f"{option} {what}, over the limit of {limit:,}")
 
 
@@ -490,8 +489,8 @@ def check_plan_size(grid, settings: PlanSettings) -> None:
     if available is None or total <= MEMORY_SHARE * available:
         return
     largest = max(parts, key=parts.get)
-    option = {"model": "a larger --cell", "Q tables": "a larger --cell or fewer --seeds",
-              "learning curves": "fewer --episodes or --seeds", "rollouts": "fewer --rollouts"}[largest]
+    option = {"model": "a larger --cell", "Q tables": "a larger --cell or fewer --training-runs",
+              "learning curves": "fewer --episodes or --training-runs", "rollouts": "fewer --rollouts"}[largest]
     raise BudgetError(f"plan would need about {format_bytes(total)} of memory (most for the {largest}: "
                       f"{format_bytes(parts[largest])}), more than the {format_bytes(available)} available; "
                       f"use {option}")
@@ -627,7 +626,11 @@ class PlanResult:
     risk_rows: list
     root_seed: object
     timings: dict
-    visited: np.ndarray
+    #: policy name -> exact P(incident) of each training seed's own policy at the
+    #: headline noise and planning drift (the range the summary and briefing report)
+    seed_p_incident: dict = field(default_factory=dict)
+    #: policy name -> (drift scale, the same per-seed figures at the table's strongest drift)
+    seed_p_incident_strong: dict = field(default_factory=dict)
 
 
 def check_drift_scales(grid, option: str, scales) -> None:
@@ -652,10 +655,8 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         check_tie_tolerance,
         convergence_report,
         equally_good,
-        occupancy,
         on_policy_q,
         optimal_q,
-        policy_value,
         risk_verdict,
         safest_among,
     )
@@ -674,8 +675,8 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
     # Every drift scale of the risk table must make a model: find out before training.
-    check_drift_scales(grid, "--drift-scale", (settings.dynamics.drift_scale,))
-    check_drift_scales(grid, "--drift-scales", settings.drift_scales)
+    check_drift_scales(grid, "--plan-drift", (settings.dynamics.drift_scale,))
+    check_drift_scales(grid, "--table-drifts", settings.drift_scales)
     check_plan_size(grid, settings)
     model = build_model(grid, settings.dynamics)
     timings["model_s"] = time.perf_counter() - t
@@ -742,11 +743,18 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         for name in POLICIES
     }
     paths = {name: nominal_path(model, greedy[name]) for name in POLICIES}
-    visited = np.zeros(model.n_states, dtype=bool)
-    for name in POLICIES:
-        _, chain, finite = policy_value(model, greedy[name], eps)
-        visited |= occupancy(model, chain, finite) >= VISITED_FLOOR
     routes = _routes(site, grid, model, paths)
+    from planner.risk import seed_incidents
+
+    seed_p_incident = {name: seed_incidents(model, seed_greedy[name], eps) for name in POLICIES}
+    # the same at the strongest drift of the table, for the briefing's stronger-wind figures
+    base = settings.dynamics.drift_scale
+    strong = max(settings.drift_scales, default=base)
+    seed_p_incident_strong = {}
+    if strong > base and not np.isclose(strong, base):
+        windy = build_model(grid, dataclasses.replace(settings.dynamics, drift_scale=float(strong)))
+        seed_p_incident_strong = {name: (float(strong), seed_incidents(windy, seed_greedy[name], eps))
+                                  for name in POLICIES}
     t = time.perf_counter()
     risk_rows = _risk(site, grid, settings, model, greedy, references, seed_risk, progress)
     timings["risk_s"] = time.perf_counter() - t
@@ -762,7 +770,8 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     risk_rows = _with_verdicts(risk_rows, convergence, references, eps, base)
     return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
                       convergence=convergence, references=references, paths=paths, routes=routes,
-                      risk_rows=risk_rows, root_seed=root, timings=timings, visited=visited)
+                      risk_rows=risk_rows, root_seed=root, timings=timings, seed_p_incident=seed_p_incident,
+                      seed_p_incident_strong=seed_p_incident_strong)
 
 
 #: Largest widening of a learned tie set by the seeds' spread, as a share of the cheapest move.
@@ -894,8 +903,7 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     progress("drawing figures")
     plots.plot_learning(result.learned, folder / "learning.png",
                         title=f"{result.site.name} - learning curves")
-    plots.plot_routes(result.site, result.grid, result.routes, result.greedy, folder / "routes.png",
-                      where=result.visited)
+    plots.plot_routes(result.site, result.grid, result.routes, folder / "routes.png")
     noise = settings.learn.epsilon
     maps = {}
     from planner.model import epsilon_greedy
@@ -982,6 +990,10 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
             "delivered": f"learned ({METHOD_NAMES[learned.method]}), "
                          f"{'converged' if conv.converged else 'not converged'}",
             "verdict": _verdict_record(conv.verdict, result.references[name]),
+            "p_incident_seeds": [float(p) for p in result.seed_p_incident.get(name, ())],
+            **({"p_incident_seeds_strong": {"drift_scale": result.seed_p_incident_strong[name][0],
+                                            "values": [float(p) for p in result.seed_p_incident_strong[name][1]]}}
+               if name in result.seed_p_incident_strong else {}),
         }
     exact = {name: {"iterations": sol.iterations, "residual": sol.residual, "epsilon": sol.epsilon}
              for name, sol in result.exact.items()}
@@ -1306,8 +1318,8 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, s
     """The risk table of a run's policies at the given settings (model rebuilt per drift scale)."""
     from planner.risk import sensitivity
 
-    check_seed(seed)
-    check_drift_scales(grid, "--drift-scale", drift_scales)
+    check_seed(seed, "--rollout-seed")
+    check_drift_scales(grid, "--table-drifts", drift_scales)
     chosen = {}
     for name in policies:
         if name not in RISK_POLICIES:

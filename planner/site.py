@@ -14,6 +14,7 @@ import hashlib
 import json
 import math
 import os
+import re
 import stat
 import warnings
 from dataclasses import dataclass, field
@@ -39,6 +40,17 @@ MAX_PENALTY_M = 1e6
 MAX_DISTANCE_M = 10_000.0
 #: Largest number of vertices accepted in one feature.
 MAX_VERTICES_PER_FEATURE = 200_000
+
+#: What a site file in another coordinate system should do.
+REPROJECT_ADVICE = ("reproject the file to WGS 84 longitude/latitude (EPSG:4326) in a GIS editor and save it "
+                    "again; --crs only chooses the working frame")
+#: Names a legacy GeoJSON ``crs`` member may give for WGS 84 lon/lat.
+LONLAT_CRS_NAMES = ("urn:ogc:def:crs:ogc:1.3:crs84", "urn:ogc:def:crs:ogc::crs84", "crs84", "ogc:crs84",
+                    "epsg:4326", "urn:ogc:def:crs:epsg::4326", "urn:ogc:def:crs:epsg:6.6:4326")
+#: Scale distortion of the working frame above which a site warns (1 part in 1000).
+MAX_SCALE_DISTORTION = 1e-3
+#: A site wider or taller than this is no test yard: its coordinates are probably not lon/lat degrees.
+MAX_SITE_M = 50_000.0
 
 #: Outcome names of the risk table; a hazard may not take one.
 RESERVED_NAMES = ("none", "goal", "boundary", "incident", "never")
@@ -192,6 +204,11 @@ class Site:
     @property
     def drifts(self) -> tuple[Zone, ...]:
         return tuple(z for z in self.zones if z.role == "drift")
+
+    @property
+    def centre_lonlat(self) -> tuple[float, float]:
+        """Longitude and latitude (degrees, WGS 84) of the centre of the boundary's lon/lat box."""
+        return (self.frame.lon_0, self.frame.lat_0)
 
     @property
     def extent_m(self) -> tuple[float, float]:
@@ -353,10 +370,7 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         kind = obj.get("type") if isinstance(obj, dict) else type(obj).__name__
         raise SiteError(f"{source}: not a GeoJSON FeatureCollection (found {kind!r})")
     if "crs" in obj:
-        raise SiteError(
-            f"{source}: has a 'crs' member; RFC 7946 GeoJSON is always WGS 84 lon/lat, "
-            "so remove it (use --crs to choose the working frame)"
-        )
+        _check_crs_member(obj["crs"], source)
     _refuse_repeated(obj, source)
     _refuse_repeated(obj.get("properties"), f"{source}: top-level properties")
     features = obj.get("features")
@@ -482,6 +496,8 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         site_warnings.append(f"drift zones {a.label} and {b.label} overlap; their pushes add as vectors")
 
     distortion = frame.scale_distortion(lon_b, lat_b)
+    x0, y0, x1, y1 = boundary.bounds
+    site_warnings += _location_warnings(frame, (x1 - x0, y1 - y0), crs, distortion)
     name = boundary_item["name"]
     for message in site_warnings:
         warnings.warn(message, SiteWarning, stacklevel=2)
@@ -645,10 +661,14 @@ def _check_position(pos, where: str) -> None:
         if not _finite(v):
             raise SiteError(f"{where}: a coordinate is not finite ({v!r:.40})")
     lon, lat = pos[0], pos[1]
+    if abs(lon) > 180.0 and abs(lat) > 90.0:
+        raise SiteError(f"{where}: position [{lon}, {lat}] looks projected (metres, not degrees); "
+                        f"{REPROJECT_ADVICE}")
     if not -180.0 <= lon <= 180.0:
         raise SiteError(f"{where}: longitude {lon} is outside [-180, 180] (positions are lon, lat)")
     if not -90.0 <= lat <= 90.0:
-        raise SiteError(f"{where}: latitude {lat} is outside [-90, 90] (positions are lon, lat)")
+        swapped = " and looks swapped: GeoJSON positions are [lon, lat], not [lat, lon]" if abs(lon) <= 90 else ""
+        raise SiteError(f"{where}: latitude {lat} is outside [-90, 90] (positions are lon, lat){swapped}")
 
 
 def _finite(value) -> bool:
@@ -657,6 +677,54 @@ def _finite(value) -> bool:
         return math.isfinite(float(value))
     except OverflowError:
         return False
+
+
+def _check_crs_member(member, source: str) -> None:
+    """Accept a legacy ``crs`` member naming WGS 84 lon/lat; refuse any other, advising reprojection."""
+    name = member.get("properties", {}).get("name") if isinstance(member, dict) else None
+    if isinstance(name, str) and name.strip().lower() in LONLAT_CRS_NAMES:
+        return
+    named = f" naming {name!r:.80}" if isinstance(name, str) else ""
+    raise SiteError(f"{source}: has a 'crs' member{named}; RFC 7946 GeoJSON positions are WGS 84 lon/lat, so "
+                    f"{REPROJECT_ADVICE}")
+
+
+def _location_warnings(frame: Frame, extent_m: tuple[float, float], named_crs: str | None,
+                       distortion: float = 0.0) -> list[str]:
+    """Warnings when a site's coordinates look swapped, projected or outside its named CRS's
+    area of use, and when the working frame distorts distances by more than 1 in 1000."""
+    from planner.notation import hemisphere
+
+    out = []
+    if distortion > MAX_SCALE_DISTORTION:
+        out.append(f"the working frame distorts distances by up to {100 * distortion:.2g}% over the site (more "
+                   f"than 1 in {1 / MAX_SCALE_DISTORTION:,.0f}); "
+                   + ("name a --crs whose area of use covers the site, or leave --crs out"
+                      if named_crs is not None else "the site is too large for one local frame"))
+    lon, lat = frame.lon_0, frame.lat_0
+    where = hemisphere(lat, lon)
+    if max(extent_m) > MAX_SITE_M:
+        out.append(f"the site is {extent_m[0] / 1000:,.0f} km x {extent_m[1] / 1000:,.0f} km around {where}: "
+                   "far larger than a test yard; are the coordinates projected metres or in another order? "
+                   "GeoJSON positions are [lon, lat] in degrees")
+    if abs(lon) < 1.0 and abs(lat) < 1.0:
+        out.append(f"the site lies at {where}, within a degree of 0 N 0 E: coordinates may be missing, "
+                   "local or projected instead of lon/lat")
+    if named_crs is not None:
+        from pyproj import CRS
+
+        area = CRS.from_user_input(named_crs).area_of_use
+        if area is not None:
+            def inside(x, y):
+                return area.west - 1.0 <= x <= area.east + 1.0 and area.south - 1.0 <= y <= area.north + 1.0
+
+            if not inside(lon, lat):
+                swapped = (" Read as [lat, lon] it would lie inside: the coordinates look swapped."
+                           if inside(lat, lon) else "")
+                box = f"{hemisphere(area.south, area.west, 2)} to {hemisphere(area.north, area.east, 2)}"
+                out.append(f"the site centre {where} lies outside the area of use of --crs "
+                           f"({area.name.rstrip('.')}: {box}).{swapped}")
+    return out
 
 
 def _all_lonlat(geometry: dict) -> tuple[np.ndarray, np.ndarray]:
@@ -718,7 +786,7 @@ def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_war
         parts.append(Polygon(projected[0], projected[1:]))
     geom = parts[0] if kind == "Polygon" else MultiPolygon(parts)
     if not geom.is_valid:
-        reason = shapely.is_valid_reason(geom)
+        reason = _reason_in_lonlat(shapely.is_valid_reason(geom), frame)
         if not fix:
             raise SiteError(f"{where}: invalid polygon ({reason}); fix the drawing or pass --fix to repair it")
         try:
@@ -736,3 +804,20 @@ def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_war
     if geom.area <= MIN_AREA_M2:
         raise SiteError(f"{where}: polygon has zero area (under {MIN_AREA_M2:g} m2; collinear or repeated points?)")
     return geom
+
+
+_REASON_AT = re.compile(r"\[(-?[\d.]+(?:e[-+]?\d+)?) (-?[\d.]+(?:e[-+]?\d+)?)\]")
+
+
+def _reason_in_lonlat(reason: str, frame: Frame) -> str:
+    """A GEOS validity reason with its location (working-frame metres) given as lat/lon."""
+    from planner.notation import hemisphere
+
+    def lonlat(match):
+        try:
+            lon, lat = frame.to_lonlat([float(match.group(1))], [float(match.group(2))])
+        except (SiteError, ValueError):
+            return match.group(0)
+        return f" at {hemisphere(float(lat[0]), float(lon[0]), 7)}"
+
+    return _REASON_AT.sub(lonlat, reason)

@@ -121,7 +121,7 @@ def plan_small_site(root, *args):
     site = root / "site.geojson"
     site.write_text(json.dumps(small_site_dict()))
     out = root / "run"
-    result = CliRunner().invoke(cli, ["plan", str(site), "--out", str(out), *[str(a) for a in args]])
+    result = CliRunner().invoke(cli, ["plan", str(site), str(out), *[str(a) for a in args]])
     return site, out, result
 
 

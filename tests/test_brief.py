@@ -23,11 +23,12 @@ from numpy.testing import assert_allclose
 
 from planner.brief import CAUTIONS, NOTICE, SIGNOFF_FIELDS, BriefInputs, brief_content, render_html
 from planner.errors import RunFolderError
+from planner.notation import probability_range
 from planner.risk import RiskRow, format_prob
 from planner.runfolder import load_run, rebuild, run_routes
 
 #: A plan small enough for a test (a few seconds) that still exercises every section.
-PLAN_ARGS = ("--cell", "2", "--episodes", "2000", "--seeds", "2", "--rollouts", "300", "--seed", "5")
+PLAN_ARGS = ("--cell", "2", "--episodes", "2000", "--training-runs", "2", "--rollouts", "300", "--root-seed", "5")
 FIGURES = ("routes.png", "sensitivity.png", "riskmap.png", "learning.png")
 #: Chromium gets this long to print the page; a hung browser fails the test, never the run.
 CHROMIUM_TIMEOUT_S = 120
@@ -67,7 +68,7 @@ def inputs(planned):
 def summary(planned):
     """Route length and P(incident) of each policy as the ``plan`` summary printed them."""
     found = dict((m[0], (m[1], m[2])) for m in re.findall(
-        r"^\s+(cautious|shortest)\s+([\d.]+) m \(.*P\(incident\) (\S+) at noise", planned[1], re.M))
+        r"^(cautious|shortest)\s+([\d.]+) m \(.*\n\s+P\(incident\) (.+?) at noise", planned[1], re.M))
     assert set(found) == {"cautious", "shortest"}, planned[1]
     return found
 
@@ -360,3 +361,84 @@ def test_browser_prints_the_briefing(planned, inputs, summary, tmp_path):
     images_in_html = sum(1 for tag, _ in _Page(_page_html(inputs)).tags if tag == "img")
     assert len(pdf["images"]) == images_in_html
     _check_printed(pdf, inputs, summary, f"veerwise briefing - {inputs.site.name} - for simulation and review only")
+
+
+# ----------------------------------------------------------------------------- numbers a reviewer reads
+
+#: A probability in the one notation (planner.notation): 0, a percentage with "1 in N"
+#: beside it, a percentage alone above one half, or the floor; '!' marks a Monte Carlo flag.
+ONE_NOTATION = re.compile(r"(0|-|< 1 in 10\^12|(< )?\d[\d.]*% \(1 in [\d.,]+( million| billion| trillion)?\)"
+                          r"|(> )?\d[\d.]*%)( !)?")
+
+
+def test_probabilities_are_written_in_one_notation(inputs):
+    content = brief_content(inputs)
+    text = _Page(render_html(content, inputs)).text
+    assert "<1.0e-12" not in text and not re.search(r"(?<![\w.])1-\d", text)
+    tables = [b for s in content["sections"] for b in s["blocks"] if b["kind"] == "table"]
+    pivot = next(b for b in tables if b["headers"][2:3] == ["drift x1"])
+    for row in pivot["rows"]:
+        for cell in row[2:]:
+            assert ONE_NOTATION.fullmatch(cell), cell
+    for x in content["policies"]:
+        assert ONE_NOTATION.fullmatch(x["p_incident"]), x["p_incident"]
+
+
+def test_site_centre_and_usable_cells_are_those_check_prints(inputs, tmp_path):
+    from click.testing import CliRunner
+
+    from planner.cli import cli
+
+    text = _Page(_page_html(inputs)).text
+    # the centre of the boundary's lon/lat box, read straight from the site file the run copied
+    data = json.loads((inputs.folder / "site.geojson").read_text())
+    ring = next(f for f in data["features"] if f["properties"]["role"] == "boundary")["geometry"]["coordinates"][0]
+    lon = (min(p[0] for p in ring) + max(p[0] for p in ring)) / 2
+    lat = (min(p[1] for p in ring) + max(p[1] for p in ring)) / 2
+    assert f"{lat:.5f} N, {lon:.5f} E (WGS 84)" in text
+    spec = inputs.settings.grid
+    result = CliRunner().invoke(cli, ["check", str(inputs.folder / "site.geojson"), "--cell", f"{spec.cell_m:g}",
+                                      "--json"])
+    grid = json.loads(result.stdout)["grid"]
+    # the count the old check and briefing disagreed on: both count goal cells as usable
+    assert grid["usable_cells"] == int(inputs.grid.passable().sum())
+    assert f"{grid['usable_cells']:,} usable cells, {grid['goal_cells']:,} of them goal" in text
+    printed = CliRunner().invoke(cli, ["check", str(inputs.folder / "site.geojson"), "--cell", f"{spec.cell_m:g}"])
+    assert f"({grid['usable_cells']:,} usable, {grid['goal_cells']:,} of them goal;" in printed.stdout
+    assert f"{lat:.5f} N, {lon:.5f} E" in printed.stdout
+
+
+def test_figures_are_ranges_over_the_training_runs(inputs):
+    content = brief_content(inputs)
+    risky = dict((q, a) for q, a, _ in content["glance"])["How risky?"]
+    rows = {r.policy: r for r in inputs.risk_rows if r.noise == content["noise"] and r.drift_scale == 1.0}
+    for x in content["policies"]:
+        seeds = inputs.manifest["results"][x["name"]]["p_incident_seeds"]
+        assert len(seeds) == x["n_seeds"]
+        lo, hi = min([*seeds, rows[x["name"]].p_incident]), max([*seeds, rows[x["name"]].p_incident])
+        assert (x["p_incident_lo"], x["p_incident_hi"]) == (lo, hi)
+        assert f"{x['name']} {probability_range(lo, hi)}" in risky
+        # and at the table's strongest drift (x2 by default), the same way
+        strong = inputs.manifest["results"][x["name"]]["p_incident_seeds_strong"]
+        assert strong["drift_scale"] == 2.0 and len(strong["values"]) == x["n_seeds"]
+        row = next(r for r in inputs.risk_rows if r.policy == x["name"] and r.noise == content["noise"]
+                   and r.drift_scale == 2.0)
+        values = [*strong["values"], row.p_incident]
+        assert f"{x['name']} {probability_range(min(values), max(values))}" in risky.split("over the training runs")[-1]
+
+
+@pytest.mark.parametrize("matching", [2, 1])
+def test_seeds_banner_exactly_when_the_training_runs_disagree_on_a_route(inputs, matching):
+    manifest = json.loads(json.dumps(inputs.manifest))
+    for name in ("cautious", "shortest"):
+        manifest["results"][name]["seed_routes_matching"] = matching if name == "cautious" else 2
+        manifest["results"][name]["n_seeds"] = 2
+    changed = dataclasses.replace(inputs, manifest=manifest)
+    content = brief_content(changed)
+    text = _Page(render_html(content, changed)).text
+    banner = "SEEDS DISAGREE on the cautious route: only 1 of 2 training runs keep within 2 cells"
+    assert (banner in text) == (matching < 2)
+    assert "SEEDS DISAGREE on the shortest route" not in text
+    trust, alert = next((a, flag) for q, a, flag in content["glance"] if q == "Is the answer trustworthy?")
+    assert ("the training runs disagree on the cautious route" in trust) == (matching < 2)
+    assert alert or matching == 2

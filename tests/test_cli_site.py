@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import copy
 import json
+import re
 from pathlib import Path
 
 import pytest
 from click.testing import CliRunner
 from conftest import feature, point, rect, small_site_dict
+from numpy.testing import assert_allclose
 
 from planner.cli import cli
 
@@ -30,7 +32,15 @@ def test_check_prints_the_summary(tmp_path):
     assert result.exit_code == 0, result.output
     out = result.output
     assert "local transverse Mercator" in out
-    assert "100 m east x 60 m north" in out
+    assert "100 m east-west x 60 m north-south" in out
+    # the site centre as lat/lon with hemisphere letters: the fixture's boundary
+    # (0..100 m east, 0..60 m north of 47.40 N, 9.25 E) has its centre 50 m east and
+    # 30 m north of that origin, i.e. 47.40027 N, 9.25066 E (1 degree of latitude is
+    # about 111.2 km, of longitude at 47.4 N about 75.4 km; common practice)
+    centre = re.search(r"centre\s+(\d+\.\d{5}) N, (\d+\.\d{5}) E \(WGS 84\)", out)
+    assert centre, out
+    assert_allclose([float(centre.group(1)), float(centre.group(2))], [47.40 + 30 / 111_200, 9.25 + 50 / 75_400],
+                    atol=2e-5)
     assert "Pond (ends run" in out and "buffer 2 m" in out
     assert "Gravel (cost x2)" in out
     assert "Gust lane (toward 180 deg, push 3 m/move" in out
@@ -126,8 +136,8 @@ NAN_SITE = json.dumps(small_site_dict()).replace("9.25", "NaN", 1)
 
 
 @pytest.mark.parametrize("args,message", [
-    (["--cell", "0"], "--cell must be a positive number"),
-    (["--cell", "-3"], "--cell must be a positive number"),
+    (["--cell", "0"], "is not in the range x>0"),
+    (["--cell", "-3"], "is not in the range x>0"),
     (["--cell", "1e9"], "larger than the site"),
     (["--cell", "0.01"], "over the --max-cells budget"),
     (["--cell", "abc"], "--cell"),

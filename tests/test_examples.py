@@ -8,6 +8,7 @@ import importlib.util
 import io
 import json
 import math
+import re
 import subprocess
 import sys
 import xml.etree.ElementTree as ET
@@ -29,9 +30,10 @@ EXAMPLES = ROOT / "examples"
 DRONE_RANGE = ROOT / "maps" / "drone-range.geojson"
 #: A script gets this long; the small settings below take a few seconds.
 TIMEOUT_S = 300
-WIND_ARGS = ("--episodes", "3000", "--seeds", "2", "--cell", "10", "--scales", "1,2", "--noise", "0.1", "--seed", "3")
+WIND_ARGS = ("--episodes", "3000", "--training-runs", "2", "--cell", "10", "--table-drifts", "1,2", "--noise", "0.1",
+             "--root-seed", "3")
 YARD_CELL_M = 5.0
-YARD_ARGS = ("--episodes", "3000", "--seeds", "2", "--cell", str(YARD_CELL_M), "--seed", "3")
+YARD_ARGS = ("--episodes", "3000", "--training-runs", "2", "--cell", str(YARD_CELL_M), "--root-seed", "3")
 
 
 def run_script(name: str, *args, cwd: Path) -> subprocess.CompletedProcess:
@@ -40,14 +42,16 @@ def run_script(name: str, *args, cwd: Path) -> subprocess.CompletedProcess:
 
 
 def parse_prob(text: str) -> float:
-    """Inverse of ``planner.risk.format_prob`` (to its printed precision)."""
-    return 1.0 - float(text[2:]) if text.startswith("1-") else float(text)
+    """Inverse of ``planner.risk.format_prob`` (to its printed precision): the percentage."""
+    if text.startswith("< 1 in 10^12"):
+        return 0.0
+    return float(text.split("%")[0].lstrip("<> ")) / 100.0 if "%" in text else float(text)
 
 
 @pytest.fixture(scope="module")
 def wind(tmp_path_factory):
     folder = tmp_path_factory.mktemp("wind")
-    result = run_script("wind_sensitivity.py", "--site", DRONE_RANGE, "--out", folder / "wind.png", *WIND_ARGS,
+    result = run_script("wind_sensitivity.py", "--site", DRONE_RANGE, "-o", folder / "wind.png", *WIND_ARGS,
                         cwd=folder)
     assert result.returncode == 0, result.stderr
     return folder, result.stdout
@@ -68,10 +72,10 @@ def test_wind_sensitivity_table_matches_an_exact_solve(wind):
     lines = out.splitlines()
     header = next(k for k, line in enumerate(lines) if line.strip().startswith("drift scale"))
     columns = ["cautious", "shortest", "exact on-policy", "exact optimal"]
-    assert lines[header].split()[2:] == ["cautious", "shortest", "exact", "on-policy", "exact", "optimal"]
+    assert re.split(r"\s{2,}", lines[header].strip())[1:] == columns
     rows = {}
     for line in lines[header + 1: header + 3]:
-        fields = line.split()
+        fields = re.split(r"\s{2,}", line.strip())
         rows[float(fields[0])] = dict(zip(columns, fields[1:], strict=True))
     assert set(rows) == {1.0, 2.0}
     for values in rows.values():
@@ -93,9 +97,9 @@ def test_wind_sensitivity_table_matches_an_exact_solve(wind):
 
 
 def test_wind_sensitivity_refuses_bad_input_in_one_line(tmp_path):
-    result = run_script("wind_sensitivity.py", "--scales", "one,two", cwd=tmp_path)
+    result = run_script("wind_sensitivity.py", "--table-drifts", "one,two", cwd=tmp_path)
     assert result.returncode == 2
-    assert result.stderr.strip().count("\n") == 0 and "--scales" in result.stderr
+    assert result.stderr.strip().count("\n") == 0 and "--table-drifts" in result.stderr
     result = run_script("wind_sensitivity.py", "--site", tmp_path / "missing.geojson", cwd=tmp_path)
     assert result.returncode == 2 and "missing.geojson" in result.stderr
     assert not (tmp_path / "wind-sensitivity.png").exists()
@@ -104,7 +108,7 @@ def test_wind_sensitivity_refuses_bad_input_in_one_line(tmp_path):
 @pytest.fixture(scope="module")
 def yard(tmp_path_factory):
     folder = tmp_path_factory.mktemp("yard")
-    result = run_script("site_in_code.py", "--out", folder / "out", *YARD_ARGS, cwd=folder)
+    result = run_script("site_in_code.py", folder / "out", *YARD_ARGS, cwd=folder)
     assert result.returncode == 0, result.stderr
     return folder / "out", result.stdout
 

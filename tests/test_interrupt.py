@@ -31,9 +31,9 @@ START_TIMEOUT_S = 240.0
 STOP_TIMEOUT_S = 120.0
 #: Training long enough to be stopped in the middle (a few seconds per learner here),
 #: and short enough that the stop, which waits for the current tenth, comes quickly.
-LONG_TRAINING = ["--cell", "2", "--episodes", "1500000", "--seeds", "2", "--rollouts", "0", "--seed", "1"]
+LONG_TRAINING = ["--cell", "2", "--episodes", "1500000", "--training-runs", "2", "--rollouts", "0", "--root-seed", "1"]
 #: A quick run whose writing phase we catch by its temporary sibling folder.
-QUICK = ["--cell", "2", "--episodes", "2000", "--seeds", "2", "--rollouts", "300", "--seed", "1"]
+QUICK = ["--cell", "2", "--episodes", "2000", "--training-runs", "2", "--rollouts", "300", "--root-seed", "1"]
 
 
 def snapshot(folder: Path) -> dict:
@@ -125,7 +125,7 @@ def assert_stopped(code, stdout, stderr, signum=signal.SIGINT):
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
 def test_stopped_while_training_leaves_no_trace(tmp_path, site, signum):
     before = snapshot(tmp_path)
-    run = PlanProcess([site, "--out", tmp_path / "run", *LONG_TRAINING], tmp_path)
+    run = PlanProcess([site, tmp_path / "run", *LONG_TRAINING], tmp_path)
     run.wait_for(training, "the middle of training")
     assert_stopped(*run.stop(signum), signum)
     assert not (tmp_path / "run").exists()
@@ -135,7 +135,7 @@ def test_stopped_while_training_leaves_no_trace(tmp_path, site, signum):
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM], ids=["SIGINT", "SIGTERM"])
 def test_stopped_while_writing_leaves_no_trace(tmp_path, site, signum):
     before = snapshot(tmp_path)
-    run = PlanProcess([site, "--out", tmp_path / "run", *QUICK], tmp_path)
+    run = PlanProcess([site, tmp_path / "run", *QUICK], tmp_path)
     run.wait_for(writing(tmp_path, "run"), "writing its temporary folder")
     code, stdout, stderr = run.stop(signum)
     assert_stopped(code, stdout, stderr, signum)
@@ -160,7 +160,7 @@ def test_stopped_with_force_leaves_the_previous_folder_byte_identical(tmp_path, 
     _previous_run(out)
     before = snapshot(tmp_path)
     settings = QUICK if phase == "writing" else LONG_TRAINING
-    run = PlanProcess([site, "--out", out, "--force", *settings], tmp_path)
+    run = PlanProcess([site, out, "--force", *settings], tmp_path)
     if phase == "writing":
         run.wait_for(writing(tmp_path, "run"), "writing its temporary folder")
     else:

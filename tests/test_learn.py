@@ -285,7 +285,7 @@ def test_step_cap_ends_episodes(cliff):
     ("step_decay", 0.5, "--step-decay"), ("step_decay", 1.1, "--step-decay"),
     ("gamma", 0.0, "--gamma"), ("gamma", 1.01, "--gamma"),
     ("episodes", 0, "--episodes"), ("episodes", 10.0, "--episodes"), ("episodes", True, "--episodes"),
-    ("max_steps", 0, "--max-steps"), ("n_seeds", 0, "--seeds"),
+    ("max_steps", 0, "--max-steps"), ("n_seeds", 0, "--training-runs"),
     ("start_mode", "random", "--start-mode"), ("q_init", "ones", "--q-init"),
 ])
 def test_settings_name_the_option(field, value, option):
@@ -298,7 +298,7 @@ def test_train_refuses_unknown_method_and_jobs(cliff):
         train(cliff, "montecarlo", LearnSettings(episodes=1, n_seeds=1))
     with pytest.raises(SettingsError, match="--jobs"):
         train(cliff, "sarsa", LearnSettings(episodes=1, n_seeds=1), n_jobs=0)
-    with pytest.raises(SettingsError, match="--seed"):
+    with pytest.raises(SettingsError, match="--root-seed"):
         train(cliff, "sarsa", LearnSettings(episodes=1, n_seeds=1), seed=-3)
 
 

@@ -37,7 +37,7 @@ DATA_FILES = (
 #: Manifest entries that record when and how fast, not what.
 CLOCK_KEYS = ("created_utc", "timings_s")
 #: Small settings on the in-memory test site: a few seconds per run.
-SMALL = ["--cell", "2", "--episodes", "2000", "--seeds", "2", "--rollouts", "300", "--seed", "5"]
+SMALL = ["--cell", "2", "--episodes", "2000", "--training-runs", "2", "--rollouts", "300", "--root-seed", "5"]
 #: The instant the clock is held at (2026-01-02 03:04:05 UTC), and how the manifest writes it.
 FROZEN_INSTANT = 1767323045.0
 FROZEN_UTC = "2026-01-02T03:04:05Z"
@@ -52,7 +52,7 @@ FROZEN_CLOCK_ENTRY = (
 def plan(site, out, *options):
     """``plan`` in this process (CliRunner)."""
     Path(out).parent.mkdir(parents=True, exist_ok=True)
-    result = CliRunner().invoke(cli, ["plan", str(site), "--out", str(out), "-q", *map(str, options)])
+    result = CliRunner().invoke(cli, ["plan", str(site), str(out), "-q", *map(str, options)])
     assert result.exit_code == 0, result.output
     return out
 
@@ -64,7 +64,7 @@ def plan_in_fresh_processes(site, runs, *, frozen_clock=True):
     for out, options in runs:
         Path(out).parent.mkdir(parents=True, exist_ok=True)
         procs.append(subprocess.Popen(
-            [sys.executable, "-c", entry, "plan", str(site), "--out", str(out), "-q", *map(str, options)],
+            [sys.executable, "-c", entry, "plan", str(site), str(out), "-q", *map(str, options)],
             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True))
     for proc in procs:
         _, stderr = proc.communicate(timeout=600)
@@ -131,8 +131,8 @@ def test_same_seed_same_bytes_whatever_the_process_drew_before(small_same_seed, 
 def demo_same_seed(tmp_path_factory):
     """Two moderate runs on the ground-robot demo yard with the same seed (not converged)."""
     root = tmp_path_factory.mktemp("same")
-    options = ["--seed", "7", "--episodes", "20000", "--rollouts", "2000", "--noise", "0,0.1",
-               "--drift-scales", "1,2"]
+    options = ["--root-seed", "7", "--episodes", "20000", "--rollouts", "2000", "--table-noises", "0,0.1",
+               "--table-drifts", "1,2"]
     return plan_in_fresh_processes(MAPS / "ground-yard.geojson",
                                    [(root / "a" / "run", options), (root / "b" / "run", options)], frozen_clock=False)
 
@@ -180,9 +180,9 @@ def demo_two_seeds(tmp_path_factory):
     The risk table is cut to one row per policy: it plays no part in the routes.
     """
     root = tmp_path_factory.mktemp("seeds")
-    options = ["--rollouts", "0", "--noise", "0.1", "--drift-scales", "1"]
+    options = ["--rollouts", "0", "--table-noises", "0.1", "--table-drifts", "1"]
     return plan_in_fresh_processes(MAPS / "ground-yard.geojson",
-                                   [(root / f"seed-{seed}", ["--seed", seed, *options]) for seed in (1, 3)],
+                                   [(root / f"seed-{seed}", ["--root-seed", seed, *options]) for seed in (1, 3)],
                                    frozen_clock=False)
 
 

@@ -214,8 +214,9 @@ def test_trapped_policy_is_reported_not_an_error(rng):
     _, still = corridor(a, z, first="free")
     row = evaluate(still, np.full(still.n_states, WEST), noise=0.0)
     assert row.p_never == 1.0 and row.p_goal == 0.0 and math.isnan(row.expected_moves)
-    text = format_table([row])
-    assert "can never end the run" in text
+    # the one-line table says so in its P(never) column; the details name the trapped states
+    assert "100%" in format_table([row]).splitlines()[2]
+    assert "can never end the run" in format_table([row], details=True)
 
 
 def test_entry_probability_of_a_zone_that_does_not_end_the_run(rng):
@@ -489,12 +490,43 @@ def test_clearance_is_measured_on_the_true_polygon(site_dict):
 
 
 @pytest.mark.parametrize("p, text", [
-    (0.0, "0"), (1.0, "1"), (1.2e-4, "1.2e-4"), (0.0001, "1.0e-4"), (9.96e-3, "1.0e-2"), (0.01, "0.0100"),
-    (0.5, "0.5000"), (0.9999, "0.9999"), (0.999997, "1-3.0e-6"), (1 - 1e-12, "1-1.0e-12"), (3e-300, "<1.0e-12"),
-    (None, "-"), (float("nan"), "-"),
+    # percent to two significant figures with "1 in N" (N = 1/p to two figures) up to one half
+    (0.0, "0"), (1.0, "100%"), (1.2e-4, "0.012% (1 in 8,300)"), (0.0001, "0.010% (1 in 10,000)"),
+    (9.96e-3, "1.0% (1 in 100)"), (0.01, "1.0% (1 in 100)"), (0.2193, "22% (1 in 4.6)"), (0.5, "50% (1 in 2.0)"),
+    # above one half: the percentage alone, with the decimals that show the shortfall from 100%
+    (0.9999, "99.99%"), (0.999997, "99.9997%"), (1 - 1e-12, "> 99.9999%"),
+    # 1 / 1.1e-7 = 9.09 million; below 1e-6 the percentage saturates and "1 in N" carries the value
+    (1.1e-7, "< 0.0001% (1 in 9.1 million)"),
+    # below the solver floor
+    (3e-300, "< 1 in 10^12"), (None, "-"), (float("nan"), "-"),
 ])
 def test_format_prob(p, text):
     assert format_prob(p) == text
+
+
+@pytest.mark.parametrize("lo, hi, text", [
+    (9.1e-4, 1.5e-3, "0.091% to 0.15% (1 in 1,100 to 1 in 670)"),
+    (0.0021, 0.002101, "0.21% (1 in 480)"),
+    (0.0, 0.002, "0 to 0.20% (1 in 500)"),
+    # the same percentage, different odds: 1 / 0.148 = 6.76, 1 / 0.152 = 6.58
+    (0.148, 0.152, "15% (1 in 6.8 to 1 in 6.6)"),
+])
+def test_probability_range(lo, hi, text):
+    from planner.notation import probability_range
+
+    assert probability_range(lo, hi) == text
+    assert probability_range(hi, lo) == text
+
+
+def test_ratio_range_is_the_widest_the_intervals_allow():
+    from planner.notation import ratio_range, times_range
+
+    # riskier 0.1..0.2 over safer 0.001..0.002: 0.1/0.002 = 50 to 0.2/0.001 = 200
+    lo, hi = ratio_range((0.001, 0.002), (0.1, 0.2))
+    assert_allclose([lo, hi], [50.0, 200.0])
+    assert times_range(lo, hi) == "50 to 200"
+    assert times_range(240.4, 241.0) == "240"
+    assert ratio_range((0.0, 0.1), (0.2, 0.3)) is None
 
 
 def hand_row(**changes):
@@ -513,9 +545,15 @@ def test_format_table_text_csv_json_markdown():
     rows = [hand_row(), hand_row(policy="shortest", expected_moves=math.nan, expected_m=math.nan, mc={},
                                  mc_disagrees=(), n_rollouts=0)]
     text = format_table(rows, "text")
-    assert max(len(line) for line in text.splitlines()) <= 80
-    assert "0.9700!" in text and "! exact figure outside" in text
-    assert "1.2e-4" in text
+    lines = text.splitlines()
+    assert max(len(line) for line in lines) < 100
+    # one line per row below the header and its rule, then the footnote and the hint
+    assert lines[2].startswith("cautious ") and lines[3].startswith("shortest ")
+    assert "97%!" in lines[2] and "! exact figure outside" in text
+    assert "3.0% (1 in 33)" in lines[2] and "Pond" not in text
+    detailed = format_table(rows, "text", details=True)
+    assert "Pond 3.0% (1 in 34)" in detailed and "boundary 0.012% (1 in 8,300)" in detailed
+    assert max(len(line) for line in detailed.splitlines()) < 100
     parsed = json.loads(format_table(rows, "json"))
     assert parsed[1]["expected_moves"] is None
     assert parsed[0]["mc"]["goal"]["count"] == 980
@@ -526,7 +564,7 @@ def test_format_table_text_csv_json_markdown():
     assert float(table[0]["p_event:Pond"]) == 0.02978
     assert table[1]["expected_moves"] == "" and table[0]["mc_disagrees"] == "goal"
     md = format_table(rows, "markdown").splitlines()
-    assert md[0].startswith("| policy |") and "0.9700!" in md[2] and md[-1].startswith("! exact figure")
+    assert md[0].startswith("| policy |") and "97%!" in md[2] and md[-1].startswith("! exact figure")
     with pytest.raises(SettingsError):
         format_table(rows, "xml")
 

@@ -31,8 +31,8 @@ from planner.model import EVENT_NONE, Dynamics, build_model
 from planner.site import site_from_geojson
 
 #: Settings small enough that a complete plan takes a few seconds.
-QUICK = ["--cell", "2", "--episodes", "200", "--seeds", "1", "--rollouts", "0", "--noise", "0.1",
-         "--drift-scales", "1", "--seed", "3", "-q"]
+QUICK = ["--cell", "2", "--episodes", "200", "--training-runs", "1", "--rollouts", "0", "--table-noises", "0.1",
+         "--table-drifts", "1", "--root-seed", "3", "-q"]
 
 
 def invoke(*args):
@@ -271,7 +271,7 @@ def run_on_site(command, site, folder, *extra):
     if command == "grid":
         args += ["--cell", "2", "-o", target]
     elif command == "plan":
-        args += ["--out", target, *QUICK]
+        args += [target, *QUICK]
     elif "--cell" not in extra:
         args += ["--cell", "2"]
     return invoke(*args), target
@@ -367,9 +367,9 @@ BAD_PLAN_OPTIONS = [
     ("--episodes 0", ["--episodes", "0"], ["--episodes"], None),
     ("--episodes -5", ["--episodes", "-5"], ["--episodes", "-5"], None),
     ("--episodes 1.5", ["--episodes", "1.5"], ["--episodes"], None),
-    ("--seeds 0", ["--seeds", "0"], ["--seeds"], None),
-    ("--seed -1", ["--seed", "-1"], ["--seed", "-1"], None),
-    ("--seed 2**128", ["--seed", str(2**128)], ["--seed", "2**128"], None),
+    ("--training-runs 0", ["--training-runs", "0"], ["--training-runs"], None),
+    ("--root-seed -1", ["--root-seed", "-1"], ["--root-seed", "-1"], None),
+    ("--root-seed 2**128", ["--root-seed", str(2**128)], ["--root-seed", "2**128"], None),
     ("--cell 1e-9", ["--cell", "1e-9"], ["--cell", "--max-cells"], None),
     ("--cell 1e9", ["--cell", "1e9"], ["--cell", "larger than the site"], None),
     ("--cell 0", ["--cell", "0"], ["--cell"], None),
@@ -378,21 +378,21 @@ BAD_PLAN_OPTIONS = [
     ("--slip -0.1", ["--slip", "-0.1"], ["--slip"], None),
     ("--stall 1.01", ["--stall", "1.01"], ["--stall"], None),
     ("--slip + --stall above 1", ["--slip", "0.6", "--stall", "0.5"], ["--slip + --stall"], None),
-    ("--noise 1.0", ["--noise", "1.0"], ["--noise"], None),
-    ("--noise -0.1", ["--noise", "0,-0.1"], ["--noise"], None),
-    ("--noise nan", ["--noise", "nan"], ["--noise"], None),
-    ("--noise not numbers", ["--noise", "a,b"], ["--noise"], None),
-    ("--noise empty", ["--noise", ","], ["--noise"], None),
-    ("--drift-scales -1", ["--drift-scales", "-1"], ["--drift-scales"], None),
-    ("--drift-scale -1", ["--drift-scale", "-1"], ["--drift-scale"], None),
-    ("--drift-scale 1e9", ["--drift-scale", "1e9"], ["--drift-scale"], None),
-    ("--drift-scales 1e9", ["--drift-scales", "1,1e9"], ["--drift-scales"], None),
-    ("--drift-scale inf", ["--drift-scale", "inf"], ["--drift-scale"], None),
+    ("--table-noises 1.0", ["--table-noises", "1.0"], ["--table-noises"], None),
+    ("--table-noises -0.1", ["--table-noises", "0,-0.1"], ["--table-noises"], None),
+    ("--table-noises nan", ["--table-noises", "nan"], ["--table-noises"], None),
+    ("--table-noises not numbers", ["--table-noises", "a,b"], ["--table-noises"], None),
+    ("--table-noises empty", ["--table-noises", ","], ["--table-noises"], None),
+    ("--table-drifts -1", ["--table-drifts", "-1"], ["--table-drifts"], None),
+    ("--plan-drift -1", ["--plan-drift", "-1"], ["--plan-drift"], None),
+    ("--plan-drift 1e9", ["--plan-drift", "1e9"], ["--plan-drift"], None),
+    ("--table-drifts 1e9", ["--table-drifts", "1,1e9"], ["--table-drifts"], None),
+    ("--plan-drift inf", ["--plan-drift", "inf"], ["--plan-drift"], None),
     ("--rollouts -1", ["--rollouts", "-1"], ["--rollouts"], None),
     ("--budget 0", ["--budget", "0"], ["--budget"], None),
     ("--step-size 0", ["--step-size", "0"], ["--step-size"], None),
     ("--step-size 1.5", ["--step-size", "1.5"], ["--step-size"], None),
-    ("--step-decay 0.5", ["--step-decay", "0.5"], ["--step-decay", "(0.5, 1]"], None),
+    ("--step-decay 0.5", ["--step-decay", "0.5"], ["--step-decay", "0.5<x<=1"], None),
     ("--step-decay 1.01", ["--step-decay", "1.01"], ["--step-decay"], None),
     ("--gamma 0", ["--gamma", "0"], ["--gamma"], None),
     ("--gamma 1.01", ["--gamma", "1.01"], ["--gamma"], None),
@@ -426,21 +426,21 @@ BAD_PLAN_OPTIONS = [
 def test_plan_refuses_an_option_out_of_bounds_before_any_work(tmp_path, no_heavy_work, options, fragments):
     site = write_site(tmp_path / "site.geojson", site_text())
     before = snapshot(tmp_path)
-    result = invoke("plan", site, "--out", tmp_path / "run", *QUICK, *options)
+    result = invoke("plan", site, tmp_path / "run", *QUICK, *options)
     assert_refused(result, *fragments)
     assert snapshot(tmp_path) == before
 
 
 @pytest.mark.parametrize("options,recorded", [
-    pytest.param(["--epsilon", "0", "--episodes", "1", "--seeds", "1", "--seed", "0", "--step-size", "1",
-                  "--gamma", "1", "--max-steps", "1", "--budget", "1", "--rollouts", "0", "--noise", "0",
-                  "--drift-scales", "0", "--alt-m", "0", "--slip", "0", "--stall", "0", "--drift-scale", "0"],
+    pytest.param(["--epsilon", "0", "--episodes", "1", "--training-runs", "1", "--root-seed", "0", "--step-size", "1",
+                  "--gamma", "1", "--max-steps", "1", "--budget", "1", "--rollouts", "0", "--table-noises", "0",
+                  "--table-drifts", "0", "--alt-m", "0", "--slip", "0", "--stall", "0", "--plan-drift", "0"],
                  {("learn", "epsilon"): 0.0, ("learn", "episodes"): 1, ("seed",): 0, ("learn", "step_size"): 1.0,
                   ("learn", "max_steps"): 1, ("budget",): 1, ("noises",): [0.0], ("drift_scales",): [0.0],
                   ("alt_m",): 0.0, ("dynamics", "slip"): 0.0, ("dynamics", "drift_scale"): 0.0},
                  id="lower bounds"),
-    pytest.param(["--epsilon", "0.99", "--step-decay", "1", "--seed", str(2**128 - 1), "--slip", "0.5",
-                  "--stall", "0.5", "--noise", "0.99", "--alt-m", "10000", "--hazard-overlap", "0.99",
+    pytest.param(["--epsilon", "0.99", "--step-decay", "1", "--root-seed", str(2**128 - 1), "--slip", "0.5",
+                  "--stall", "0.5", "--table-noises", "0.99", "--alt-m", "10000", "--hazard-overlap", "0.99",
                   "--boundary-cover", "1"],
                  {("learn", "epsilon"): 0.99, ("learn", "step_decay"): 1.0, ("seed",): 2**128 - 1,
                   ("dynamics", "slip"): 0.5, ("dynamics", "stall"): 0.5, ("noises",): [0.99], ("alt_m",): 10000.0},
@@ -449,7 +449,7 @@ def test_plan_refuses_an_option_out_of_bounds_before_any_work(tmp_path, no_heavy
 def test_plan_accepts_options_at_their_bounds(tmp_path, options, recorded):
     site = write_site(tmp_path / "site.geojson", site_text())
     out = tmp_path / "run"
-    result = invoke("plan", site, "--out", out, *QUICK, *options)
+    result = invoke("plan", site, out, *QUICK, *options)
     assert result.exit_code == 0, result.output
     settings = json.loads((out / "manifest.json").read_text())["settings"]
     for path, value in recorded.items():
@@ -459,7 +459,7 @@ def test_plan_accepts_options_at_their_bounds(tmp_path, options, recorded):
         assert node == value, path
 
 
-# ----------------------------------------------------------------------------- plan --out
+# ----------------------------------------------------------------------------- plan's run folder
 
 
 @pytest.fixture(scope="module")
@@ -471,7 +471,7 @@ def base_run(tmp_path_factory):
     out.mkdir()
     (out / "manifest.json").write_text(json.dumps({"format": "veerwise-run", "note": "an earlier run"}))
     (out / "earlier.txt").write_text("an earlier run")
-    result = invoke("plan", site, "--out", out, "--force", *QUICK)
+    result = invoke("plan", site, out, "--force", *QUICK)
     return root, out, result
 
 
@@ -489,7 +489,7 @@ def test_plan_refuses_an_existing_folder_without_force(tmp_path, no_heavy_work):
     out.mkdir()
     (out / "mine.txt").write_text("keep me")
     before = snapshot(tmp_path)
-    assert_refused(invoke("plan", site, "--out", out, *QUICK), f"--out {out}", "already exists", "--force")
+    assert_refused(invoke("plan", site, out, *QUICK), f"run folder {out}", "already exists", "--force")
     assert snapshot(tmp_path) == before
 
 
@@ -499,12 +499,12 @@ def test_plan_refuses_an_out_it_cannot_write(tmp_path, no_heavy_work, kind):
     if kind == "a file":
         out = tmp_path / "taken"
         out.write_text("a file")
-        fragments = ["--out", "is a file"]
+        fragments = ["run folder", "is not a folder"]
     else:
         out = tmp_path / "missing" / "run"
-        fragments = ["--out", "does not exist"]
+        fragments = ["run folder", "does not exist"]
     before = snapshot(tmp_path)
-    assert_refused(invoke("plan", site, "--out", out, "--force", *QUICK), *fragments)
+    assert_refused(invoke("plan", site, out, "--force", *QUICK), *fragments)
     assert snapshot(tmp_path) == before
 
 
@@ -698,9 +698,9 @@ def test_damaged_run_folder(base_run, tmp_path, damage, fragments, command):
 
 
 @pytest.mark.parametrize("command,options,fragments", [
-    ("risk", ["--noise", "1"], ["--noise"]),
-    ("risk", ["--noise", "x"], ["--noise"]),
-    ("risk", ["--drift-scale", "-1"], ["--drift-scale"]),
+    ("risk", ["--table-noises", "1"], ["--table-noises"]),
+    ("risk", ["--table-noises", "x"], ["--table-noises"]),
+    ("risk", ["--table-drifts", "-1"], ["--table-drifts"]),
     ("risk", ["--budget", "0"], ["--budget"]),
     ("risk", ["--rollouts", "-1"], ["--rollouts"]),
     ("risk", ["--policy", "bogus"], ["--policy", "'bogus'"]),

@@ -369,8 +369,9 @@ BAD_CONTENT = [
     ("not-a-collection", set_top("type", "GeometryCollection"),
      SiteError, r"not a GeoJSON FeatureCollection \(found 'GeometryCollection'\)"),
     ("features-not-a-list", set_top("features", {}), SiteError, r"'features' must be a list"),
-    ("crs-member", set_top("crs", {"type": "name", "properties": {"name": "EPSG:4326"}}),
-     SiteError, r"has a 'crs' member; RFC 7946 GeoJSON is always WGS 84 lon/lat"),
+    ("crs-member", set_top("crs", {"type": "name", "properties": {"name": "EPSG:32632"}}),
+     SiteError, r"has a 'crs' member naming 'EPSG:32632'; RFC 7946 GeoJSON positions are WGS 84 lon/lat, so "
+                r"reproject the file to WGS 84 longitude/latitude \(EPSG:4326\)"),
     ("no-boundary", drop_feature(0), SiteError, r"no feature with role 'boundary' \(exactly one is required\)"),
     ("two-boundaries", add_feature("boundary", "Polygon", rect(0, 0, 50, 50), name="Second yard"),
      SiteError, r"2 features with role 'boundary' \(feature 0 \('Test yard'\) and feature 6 \('Second yard'\)\)"),
@@ -420,7 +421,11 @@ BAD_CONTENT = [
     ("latitude-out-of-range", set_position(1, [9.25, -91.0]),
      SiteError, r"feature 1 \('Launch'\): latitude -91.0 is outside \[-90, 90\]"),
     ("lat-lon-swapped", set_position(1, [47.4, 109.25]),
-     SiteError, r"feature 1 \('Launch'\): latitude 109.25 is outside"),
+     SiteError, r"feature 1 \('Launch'\): latitude 109.25 is outside \[-90, 90\] \(positions are lon, lat\) and "
+                r"looks swapped: GeoJSON positions are \[lon, lat\]"),
+    ("projected-metres", set_position(1, [512345.0, 5250000.0]),
+     SiteError, r"feature 1 \('Launch'\): position \[512345.0, 5250000.0\] looks projected \(metres, not "
+                r"degrees\); reproject the file to WGS 84 longitude/latitude"),
     ("coordinate-not-a-number", set_position(1, ["9.25", 47.4]),
      SiteError, r"feature 1 \('Launch'\): a coordinate is not a number"),
     ("four-numbers", set_position(1, point(10, 30) + [0.0, 1.0]),
@@ -610,3 +615,79 @@ def test_site_geometry_is_in_metres_of_the_drawing(site_dict):
     # A 2 m buffer around a 20 m square: 400 + 4 * 20 * 2 + pi * 2^2 (round corners, polygonal).
     assert_allclose(pond.buffered.area, 400.0 + 160.0 + math.pi * 4.0, rtol=1e-3)
     assert re.fullmatch(r"[0-9a-f]{64}", site.sha256)
+
+
+# ----------------------------------------------------------------------------- where on Earth
+
+
+def test_self_intersection_is_located_in_lat_lon(site_dict):
+    # the bow-tie's edges (40, 20)-(60, 40) and (60, 20)-(40, 40) cross at (50, 30) m
+    # from the test origin; its lon/lat comes from the same local tmerc as the fixture
+    lon, lat = to_lonlat([(50.0, 30.0)])[0]
+    set_geometry(3, "Polygon", BOW_TIE)(site_dict)
+    with pytest.raises(SiteError) as info:
+        site_from_geojson(site_dict)
+    found = re.search(r"Self-intersection at (\d+\.\d+) N, (\d+\.\d+) E", str(info.value))
+    assert found, str(info.value)
+    # 1e-6 degrees is about 0.1 m here: the site frame is centred on the boundary, not
+    # on the fixture's origin, so the two projections agree to round-off only
+    assert_allclose([float(found.group(1)), float(found.group(2))], [lat, lon], atol=1e-6)
+
+
+def test_legacy_crs_member_naming_lon_lat_is_accepted(site_dict):
+    site_dict["crs"] = {"type": "name", "properties": {"name": "urn:ogc:def:crs:OGC:1.3:CRS84"}}
+    assert site_from_geojson(site_dict).name == "Test yard"
+
+
+def _swapped(data):
+    def walk(node):
+        if node and isinstance(node[0], (int, float)):
+            return [node[1], node[0], *node[2:]]
+        return [walk(n) for n in node]
+
+    for f in data["features"]:
+        f["geometry"]["coordinates"] = walk(f["geometry"]["coordinates"])
+    return data
+
+
+def test_swapped_coordinates_are_named_against_the_crs_area_of_use(site_dict):
+    # UTM zone 32N is used from 6 to 12 degrees east (EPSG registry, area of use of
+    # EPSG:32632); the test site sits at 9.25 E, 47.40 N, so [lat, lon] puts it at 47.40 E
+    with pytest.warns(SiteWarning) as caught:
+        site = site_from_geojson(_swapped(site_dict), crs="EPSG:32632")
+    text = " ".join(site.warnings)
+    assert "the site centre 9.25" in text and "47.40" in text and "lies outside the area of use of --crs" in text
+    assert "the coordinates look swapped" in text
+    # 38 degrees of longitude off the zone's central meridian (9 E), transverse Mercator's
+    # scale is far above 1 + 1e-3 (k grows as 1 + x^2 / 2R^2; common practice)
+    assert "the working frame distorts distances by up to" in text
+    assert any("look swapped" in str(w.message) for w in caught)
+
+
+def test_the_right_way_round_raises_no_location_warning(site_dict):
+    site = site_from_geojson(site_dict, crs="EPSG:32632")
+    assert not [w for w in site.warnings if "area of use" in w or "0 N 0 E" in w or "test yard" in w]
+    lon, lat = site.centre_lonlat
+    # the fixture's boundary is 100 m x 60 m with its south-west corner at the origin
+    centre = to_lonlat([(50.0, 30.0)])[0]
+    assert_allclose([lon, lat], centre, atol=1e-6)
+
+
+def test_a_site_at_null_island_or_of_continental_size_is_warned_about(site_dict):
+    near_zero = copy.deepcopy(site_dict)
+
+    def shift(node):
+        if node and isinstance(node[0], (int, float)):
+            return [node[0] - 9.25, node[1] - 47.40]
+        return [shift(n) for n in node]
+
+    for f in near_zero["features"]:
+        f["geometry"]["coordinates"] = shift(f["geometry"]["coordinates"])
+    with pytest.warns(SiteWarning, match=r"within a degree of 0 N 0 E"):
+        site_from_geojson(near_zero)
+    # local drawing coordinates read as degrees: 0..0.9 "degrees" is about 100 km
+    local = {"type": "FeatureCollection", "features": [
+        feature("boundary", "Polygon", [[[0, 0], [0.9, 0], [0.9, 0.6], [0, 0.6], [0, 0]]], name="Local"),
+        feature("start", "Point", [0.1, 0.3], name="S"), feature("goal", "Point", [0.8, 0.3], name="G")]}
+    with pytest.warns(SiteWarning, match=r"far larger than a test yard"):
+        site_from_geojson(local)

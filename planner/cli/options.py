@@ -1,34 +1,100 @@
-"""Options shared by several commands, defined once."""
+"""Options shared by several commands, defined once, and the help layout in sections.
+
+Names follow two rules a person can hold in mind: what shapes the plan starts with
+``--plan-`` (``--plan-drift``) and what only fills the risk table with ``--table-``
+(``--table-noises``, ``--table-drifts``); a run folder is always the positional RUN
+and ``-o`` always names the one file a command writes.
+"""
 
 from __future__ import annotations
+
+import math
 
 import click
 
 from planner.grid import DEFAULT_MAX_CELLS
 from planner.site import DEFAULT_MAX_BYTES
 
+#: Help sections, in the order ``--help`` shows them, and the parameters in each.
+SECTIONS = {
+    "Output": ("output", "fmt", "force", "as_json", "strict", "details", "quiet", "policy", "policies", "alt_m"),
+    "Site file": ("crs", "fix", "max_bytes"),
+    "Grid": ("cell_m", "hazard_overlap", "boundary_cover", "max_cells"),
+    "Vehicle and motion": ("n_actions", "headings", "move_m", "slip", "stall", "drift_scale", "edge", "penalty_m"),
+    "Learning": ("epsilon", "step_size", "step_decay", "gamma", "episodes", "max_steps", "n_seeds", "start_mode",
+                 "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
+    "Risk table": ("noises", "drift_scales", "budget", "rollouts", "rollout_seed"),
+}
+_SECTION_OF = {name: title for title, names in SECTIONS.items() for name in names}
+_ORDER = {name: k for k, name in enumerate(n for names in SECTIONS.values() for n in names)}
+
+
+class SectionedCommand(click.Command):
+    """A command whose ``--help`` lists its options in the sections of :data:`SECTIONS`."""
+
+    def format_options(self, ctx, formatter):
+        groups: dict[str, list] = {}
+        for param in self.get_params(ctx):
+            record = param.get_help_record(ctx)
+            if record is not None:
+                title = _SECTION_OF.get(param.name, "Other options")
+                groups.setdefault(title, []).append((_ORDER.get(param.name, len(_ORDER)), record))
+        for title in [*SECTIONS, "Other options"]:
+            if title in groups:
+                with formatter.section(title):
+                    formatter.write_dl([record for _, record in sorted(groups[title], key=lambda x: x[0])])
+
+
+class Finite(click.FloatRange):
+    """A float in a range that is also finite (``nan`` and ``inf`` are refused, naming the option)."""
+
+    name = "number"
+
+    def convert(self, value, param, ctx):
+        number = click.FLOAT.convert(value, param, ctx)
+        if not math.isfinite(number):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
+        return super().convert(number, param, ctx)
+
+
+def finite(low=None, high=None, *, low_open: bool = False, high_open: bool = False) -> Finite:
+    return Finite(low, high, min_open=low_open, max_open=high_open)
+
+
 site_argument = click.argument("site", type=click.Path(dir_okay=False, path_type=str))
+run_argument = click.argument("run", type=click.Path(path_type=str))
+
+
+def output_option(help_text: str, *, required: bool = True):
+    """``-o/--output FILE``: the one file a command writes (every command means the same by it)."""
+    return click.option("-o", "--output", required=required, metavar="FILE",
+                        type=click.Path(dir_okay=False, path_type=str), help=help_text)
+
+
+force_option = click.option("--force", is_flag=True, help="Replace what is already at the output path.")
 
 
 def site_options(f):
     """Options that control how a site file is read and projected."""
     f = click.option("--crs", default=None, metavar="CRS",
-                     help="Projected metric CRS to work in (e.g. EPSG:32632); default: local transverse Mercator.")(f)
+                     help="Projected metric CRS to work in (e.g. EPSG:32632); the site file itself is always "
+                          "lon/lat.", show_default="local transverse Mercator centred on the site")(f)
     f = click.option("--fix", is_flag=True, help="Repair invalid polygons (with a warning) instead of refusing them.")(f)
-    f = click.option("--max-bytes", type=int, default=DEFAULT_MAX_BYTES, show_default=True,
+    f = click.option("--max-bytes", type=click.IntRange(1), metavar="N", default=DEFAULT_MAX_BYTES, show_default=True,
                      help="Refuse site files larger than this many bytes before reading them.")(f)
     return f
 
 
 def grid_options(f):
     """Options that control rasterising."""
-    f = click.option("--cell", "cell_m", type=float, default=None, metavar="M",
-                     help="Cell size in metres (default: about 1/100 of the site's longer side, rounded to 0.5 m).")(f)
-    f = click.option("--hazard-overlap", type=float, default=0.0, show_default=True,
+    f = click.option("--cell", "cell_m", type=finite(0, low_open=True), default=None, metavar="M",
+                     show_default="about 1/100 of the site's longer side, rounded to 0.5 m",
+                     help="Cell size in metres: how finely the site is drawn.")(f)
+    f = click.option("--hazard-overlap", type=finite(0, 1, high_open=True), default=0.0, show_default=True,
                      help="A cell is hazard when a buffered hazard covers more than this fraction of it.")(f)
-    f = click.option("--boundary-cover", type=float, default=1.0, show_default=True,
+    f = click.option("--boundary-cover", type=finite(0, 1, low_open=True), default=1.0, show_default=True,
                      help="A cell is inside when the boundary covers at least this fraction of it.")(f)
-    f = click.option("--max-cells", type=int, default=DEFAULT_MAX_CELLS, show_default=True,
+    f = click.option("--max-cells", type=click.IntRange(1), metavar="N", default=DEFAULT_MAX_CELLS, show_default=True,
                      help="Refuse grids with more cells than this.")(f)
     return f
 
@@ -37,14 +103,79 @@ def dynamics_options(f):
     """Options of the transition model."""
     f = click.option("--moves", "n_actions", type=click.Choice(["8", "4"]), default="8", show_default=True,
                      help="King moves (8) or rook moves (4).")(f)
-    f = click.option("--slip", type=float, default=0.1, show_default=True,
+    f = click.option("--slip", type=finite(0, 1), default=0.1, show_default=True,
                      help="Probability a move veers to a neighbouring direction.")(f)
-    f = click.option("--stall", type=float, default=0.0, show_default=True,
+    f = click.option("--stall", type=finite(0, 1), default=0.0, show_default=True,
                      help="Probability a move does not happen (drift still acts).")(f)
-    f = click.option("--drift-scale", type=float, default=1.0, show_default=True,
-                     help="Multiplies every drift push and spread (1 = as forecast).")(f)
+    f = click.option("--plan-drift", "drift_scale", type=finite(0), default=1.0, show_default=True,
+                     help="Drift scale the routes are planned for: multiplies every drift push and spread "
+                          "(1 = as forecast). The risk table's scales are --table-drifts.")(f)
     f = click.option("--edge", type=click.Choice(["boundary", "wall"]), default="boundary", show_default=True,
                      help="Leaving the boundary is an incident (boundary) or blocked (wall).")(f)
-    f = click.option("--penalty", "penalty_m", type=float, default=None, metavar="M",
-                     help="Hazard penalty in metres-equivalent for hazards without penalty_m (default: derived).")(f)
+    f = click.option("--penalty", "penalty_m", type=finite(0, low_open=True), default=None, metavar="M",
+                     show_default="twice the longest cheapest route to the goal, rounded up to 10 m",
+                     help="Hazard penalty in metres-equivalent for hazards without their own penalty_m.")(f)
     return f
+
+
+def learn_options(f):
+    """Options of the two learners."""
+    f = click.option("--epsilon", type=finite(0, 1, high_open=True), default=0.1, show_default=True,
+                     help="Execution noise the cautious policy is planned for (share of moves made at random); "
+                          "also the noise of the headline figures.")(f)
+    f = click.option("--step-size", type=finite(0, 1, low_open=True), default=0.1, show_default=True,
+                     help="Constant step size.")(f)
+    f = click.option("--step-decay", type=finite(0.5, 1, low_open=True), default=None, metavar="W",
+                     help="Use step size 1/n(s,a)^W instead of a constant.")(f)
+    f = click.option("--gamma", type=finite(0, 1, low_open=True), default=1.0, show_default=True,
+                     help="Discount (1 = none).")(f)
+    f = click.option("--episodes", type=click.IntRange(1), metavar="N", default=None,
+                     show_default="50 per usable cell, 20,000 to 500,000",
+                     help="Training episodes per training run.")(f)
+    f = click.option("--max-steps", type=click.IntRange(1), metavar="N", default=None,
+                     show_default="10 x the fewest moves to the goal", help="Episode step cap.")(f)
+    f = click.option("--training-runs", "n_seeds", type=click.IntRange(1), metavar="N", default=8, show_default=True,
+                     help="Independent training runs per learner (each from its own seed spawned from "
+                          "--root-seed); figures are reported as a range over them.")(f)
+    f = click.option("--start-mode", type=click.Choice(["start", "explore"]), default="explore",
+                     show_default=True, help="Episodes begin at the start, or also near the start-goal corridor.")(f)
+    f = click.option("--q-init", type=click.Choice(["heuristic", "zeros"]), default="heuristic", show_default=True,
+                     help="Initial Q: from a shortest-path heuristic, or zeros.")(f)
+    f = click.option("--root-seed", "seed", type=click.IntRange(0), default=None, metavar="N",
+                     show_default="fresh entropy, recorded in the manifest",
+                     help="Root seed of the whole run; every training run and the Monte Carlo rollouts get "
+                          "seeds spawned from it.")(f)
+    return f
+
+
+def risk_table_options(f, *, defaults_from_run: bool = False):
+    """Options of the risk table: its noise levels and drift scales, budget and rollouts."""
+    run_default = "the run's" if defaults_from_run else None
+    f = click.option("--table-noises", "noises", default=None if defaults_from_run else "0,0.05,0.1,0.2",
+                     metavar="LIST", show_default=run_default or True,
+                     help="Execution noise levels of the risk table, comma-separated, each in [0, 1).")(f)
+    f = click.option("--table-drifts", "drift_scales", default=None if defaults_from_run else "1,1.5,2",
+                     metavar="LIST", show_default=run_default or True,
+                     help="Drift scales of the risk table, comma-separated, each >= 0 (2 = drift twice the "
+                          "forecast). The planning scale is --plan-drift.")(f)
+    f = click.option("--budget", type=click.IntRange(1), default=None, metavar="MOVES",
+                     help="Also report risk within this many moves, and P(timeout).")(f)
+    f = click.option("--rollouts", type=click.IntRange(0), metavar="N", default=None if defaults_from_run else 20000,
+                     show_default=run_default or True,
+                     help="Monte Carlo rollouts per row of the risk table (0 = none).")(f)
+    return f
+
+
+def float_list(text: str, option: str, *, low: float = 0.0, high: float | None = None) -> tuple[float, ...]:
+    """Parse "0,0.05,0.1" into finite floats in ``[low, high)``, naming the option when they are not."""
+    try:
+        values = tuple(float(v) for v in text.split(",") if v.strip())
+    except ValueError as err:
+        raise click.BadParameter(f"{text!r} is not a comma-separated list of numbers", param_hint=option) from err
+    if not values:
+        raise click.BadParameter("needs at least one number", param_hint=option)
+    for v in values:
+        if not (math.isfinite(v) and v >= low and (high is None or v < high)):
+            where = f"in [{low:g}, {high:g})" if high is not None else f"a finite number >= {low:g}"
+            raise click.BadParameter(f"{v:g} is not {where}", param_hint=option)
+    return values

@@ -2,60 +2,30 @@
 
 from __future__ import annotations
 
+import json
+import math
 import sys
+import time
+from pathlib import Path
 
 import click
 
 from planner.cli import cli
-from planner.cli.options import dynamics_options, grid_options, site_argument, site_options
+from planner.cli.options import (
+    SectionedCommand,
+    dynamics_options,
+    finite,
+    float_list,
+    force_option,
+    grid_options,
+    learn_options,
+    risk_table_options,
+    run_argument,
+    site_argument,
+    site_options,
+)
 from planner.cli.site_commands import load_site_and_spec, make_dynamics
 from planner.errors import Interrupted
-
-
-def float_list(text: str, option: str) -> tuple[float, ...]:
-    """Parse "0,0.05,0.1" into floats, naming the option when it is not that."""
-    try:
-        values = tuple(float(v) for v in text.split(",") if v.strip())
-    except ValueError as err:
-        raise click.BadParameter(f"{text!r} is not a comma-separated list of numbers", param_hint=option) from err
-    if not values:
-        raise click.BadParameter("needs at least one number", param_hint=option)
-    return values
-
-
-def learn_options(f):
-    """Options of the two learners."""
-    f = click.option("--epsilon", type=float, default=0.1, show_default=True,
-                     help="Execution noise the cautious policy is trained for (share of random moves).")(f)
-    f = click.option("--step-size", type=float, default=0.1, show_default=True, help="Constant step size.")(f)
-    f = click.option("--step-decay", type=float, default=None, metavar="W",
-                     help="Use step size 1/n(s,a)^W instead of a constant (0.5 < W <= 1).")(f)
-    f = click.option("--gamma", type=float, default=1.0, show_default=True, help="Discount (1 = none).")(f)
-    f = click.option("--episodes", type=int, default=None,
-                     help="Training episodes per seed (default: sized from the grid).")(f)
-    f = click.option("--max-steps", type=int, default=None,
-                     help="Episode step cap (default: 10 x the fewest moves to the goal).")(f)
-    f = click.option("--seeds", "n_seeds", type=int, default=8, show_default=True,
-                     help="Independent training runs per learner.")(f)
-    f = click.option("--start-mode", type=click.Choice(["start", "explore"]), default="explore",
-                     show_default=True, help="Episodes begin at the start, or also near the start-goal corridor.")(f)
-    f = click.option("--q-init", type=click.Choice(["heuristic", "zeros"]), default="heuristic", show_default=True,
-                     help="Initial Q: from a shortest-path heuristic, or zeros.")(f)
-    f = click.option("--seed", type=int, default=None,
-                     help="Root seed of the run (default: fresh entropy, recorded in the manifest).")(f)
-    return f
-
-
-def risk_options(f):
-    f = click.option("--noise", "noises", default="0,0.05,0.1,0.2", show_default=True,
-                     help="Execution noise levels of the risk table (comma-separated).")(f)
-    f = click.option("--drift-scales", default="1,1.5,2", show_default=True,
-                     help="Drift scales of the risk table (comma-separated; 2 = wind twice the forecast).")(f)
-    f = click.option("--budget", type=int, default=None, metavar="MOVES",
-                     help="Also report risk within this many moves, and P(timeout).")(f)
-    f = click.option("--rollouts", type=int, default=20000, show_default=True,
-                     help="Monte Carlo rollouts per row of the risk table (0 = none).")(f)
-    return f
 
 
 def default_episodes(n_active: int) -> int:
@@ -67,32 +37,39 @@ def default_episodes(n_active: int) -> int:
     return int(min(500_000, max(20_000, 50 * n_active)))
 
 
-@cli.command()
+#: Exit code of ``plan --strict`` when the run was written but is not ready to sign.
+EXIT_NOT_READY = 3
+
+
+@cli.command(cls=SectionedCommand)
 @site_argument
-@click.option("--out", "-o", "out", required=True, type=click.Path(file_okay=False, path_type=str),
-              help="Run folder to create.")
-@click.option("--force", is_flag=True, help="Replace an existing run folder (only once the new one is complete).")
+@run_argument
+@force_option
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON instead of text.")
+@click.option("--strict", is_flag=True,
+              help=f"Exit with code {EXIT_NOT_READY} (after writing the run) when any policy is not converged or "
+                   "its training runs disagree on the route: for scripted campaigns and CI.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress display.")
 @site_options
 @grid_options
 @dynamics_options
 @learn_options
-@risk_options
-@click.option("--alt-m", type=float, default=None, metavar="M",
+@risk_table_options
+@click.option("--alt-m", type=finite(0, 10_000), default=None, metavar="M",
               help="Constant altitude above ground written into the waypoint files (aerial simulators).")
-@click.option("--tie-m", type=float, default=0.01, show_default=True, metavar="M",
+@click.option("--tie-m", type=finite(0, low_open=True), default=0.01, show_default=True, metavar="M",
               help="Actions within this many metres-equivalent of the best are equally good; among them the "
                    "safest is taken (must stay below the shortest move).")
 @click.option("--shortest-schedule", type=click.Choice(["sweeps", "episodes"]), default="sweeps", show_default=True,
               help="How Q-learning samples: sweeps over every state-action pair (stopping when its risk verdict "
                    "passes), or episodes from the start like SARSA.")
-@click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), default=512, show_default=True,
+@click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), metavar="N", default=512, show_default=True,
               help="Update budget of the sweeps schedule, in sweeps.")
-@click.option("--quiet", "-q", is_flag=True, help="No progress display.")
-def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions,
-         slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay, gamma, episodes, max_steps,
-         n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m, tie_m, shortest_schedule,
-         max_sweeps, quiet):
-    """Plan the cautious and the shortest route across SITE and write the run folder OUT.
+def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
+         max_cells, n_actions, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay, gamma,
+         episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m,
+         tie_m, shortest_schedule, max_sweeps):
+    """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
     shortest with Q-learning, checks both against exact value iteration, computes the
@@ -101,28 +78,34 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
     risk.csv/json, figures and the briefing. The folder appears only when complete.
 
     For simulation and review only: not approved for field operation.
+
+    \b
+    Examples:
+      veerwise plan maps/ground-yard.geojson run-yard --root-seed 1
+      veerwise plan maps/drone-range.geojson run-wind --plan-drift 1.5 --table-drifts 1,2,3
+      veerwise plan site.geojson run-ci --training-runs 4 --strict --json
     """
     from planner.grid import rasterise
     from planner.learn import LearnSettings
     from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, run_lock, stop_on_sigterm, write_run
 
-    check_out(out, force=force)
+    started = time.perf_counter()
+    check_out(run, force=force)
     # Held until the command ends: a second plan to the same folder is refused at once.
-    click.get_current_context().with_resource(run_lock(out))
-    check_out(out, force=force)
+    click.get_current_context().with_resource(run_lock(run))
+    check_out(run, force=force)
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
     dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m)
     labelled = rasterise(loaded, spec)
     if episodes is None:
         episodes = default_episodes(int((labelled.passable() & ~labelled.goal).sum()))
-    if alt_m is not None and not (0.0 <= alt_m <= 10_000.0):
-        raise click.BadParameter(f"{alt_m:g} is not an altitude in [0, 10000] m", param_hint="--alt-m")
     learn = LearnSettings(epsilon=epsilon, step_size=step_size, step_decay=step_decay, gamma=gamma,
                           episodes=episodes, max_steps=max_steps, n_seeds=n_seeds, start_mode=start_mode,
                           q_init=q_init, max_sweeps=max_sweeps)
-    settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn, noises=float_list(noises, "--noise"),
-                            drift_scales=float_list(drift_scales, "--drift-scales"), budget=budget,
+    settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn,
+                            noises=float_list(noises, "--table-noises", high=1.0),
+                            drift_scales=float_list(drift_scales, "--table-drifts"), budget=budget,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
                             tie_m=tie_m, shortest_schedule=shortest_schedule)
     show = not quiet and sys.stderr.isatty()
@@ -131,24 +114,104 @@ def plan(site, out, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary
         try:
             result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
         except KeyboardInterrupt as err:
-            raise Interrupted(f"stopped while planning (before writing); nothing was written to {out}") from err
-        write_run(result, settings, site, out, force=force, progress=progress)
-    click.echo(format_plan_summary(result, settings, out))
+            raise Interrupted(f"stopped while planning (before writing); nothing was written to {run}") from err
+        write_run(result, settings, site, run, force=force, progress=progress)
+    summary = plan_summary(result, settings, run, time.perf_counter() - started)
+    click.echo(json.dumps(_plain(summary), indent=2, sort_keys=True, allow_nan=False) if as_json
+               else format_plan_summary(summary))
+    if strict and not summary["ready_to_sign"]:
+        raise click.exceptions.Exit(EXIT_NOT_READY)
 
 
-def format_plan_summary(result, settings, out) -> str:
-    from planner.risk import find_row, format_prob
+def plan_summary(result, settings, out, elapsed_s: float) -> dict:
+    """What ``plan`` reports when it is done, as plain data (``--json`` prints it as is)."""
+    from planner.brief import compare_routes, route_figures, seeds_banner
+    from planner.risk import find_row
     from planner.runfolder import METHOD_NAMES
 
-    eps = settings.learn.epsilon
-    lines = [f"{result.site.name}: run folder {out} (for simulation and review only)"]
+    eps, base = settings.learn.epsilon, settings.dynamics.drift_scale
+    figures = {}
     for name in ("cautious", "shortest"):
         route, conv = result.routes[name], result.convergence[name]
-        row = find_row(result.risk_rows, name, eps, 1.0)
-        risk = f", P(incident) {format_prob(row.p_incident)} at noise {eps:g}" if row is not None else ""
-        end = "reaches the goal" if route.reached_goal else f"ENDS AT {route.end_event.upper()}"
-        lines.append(f"  {name:9s} {route.length_m:7.1f} m ({route.waypoint_length_m:.1f} m by waypoints), "
-                     f"{route.n_moves:3d} moves, {end}{risk}")
-        delivered = f"learned ({METHOD_NAMES[result.learned[name].method]})"
-        lines.append(f"            delivered: {delivered}; {conv.message}")
+        record = {"converged": conv.converged, "message": conv.message, "n_seeds": conv.n_seeds,
+                  "seed_routes_matching": conv.seed_routes_matching,
+                  "p_incident_seeds": [float(p) for p in result.seed_p_incident.get(name, ())]}
+        figures[name] = {**route_figures(name, route, record, find_row(result.risk_rows, name, eps, base)),
+                         "waypoint_length_m": route.waypoint_length_m, "moves": route.n_moves,
+                         "delivered": f"learned ({METHOD_NAMES[result.learned[name].method]})"}
+    comparison, _ = compare_routes(figures["cautious"], figures["shortest"])
+    lon, lat = result.site.centre_lonlat
+    width, height = result.site.extent_m
+    banners = [seeds_banner(x) for x in figures.values() if x["seeds_disagree"]]
+    warnings = list(result.site.warnings) + list(result.grid.warnings) + list(result.model.warnings)
+    policies = {name: {
+        "length_m": x["length_m"], "waypoint_length_m": x["waypoint_length_m"], "moves": x["moves"],
+        "reached_goal": x["reached_goal"], "ends": x["ends"], "p_incident": x["p_incident_value"],
+        "p_incident_seeds_range": [x["p_incident_lo"], x["p_incident_hi"]], "converged": x["converged"],
+        "message": x["message"], "seed_routes_matching": x["seed_routes_matching"], "n_seeds": x["n_seeds"],
+        "seeds_disagree": x["seeds_disagree"], "delivered": x["delivered"],
+        "text": {"p_incident": x["p_incident"], "p_incident_seeds_range": x["p_incident_range"]},
+    } for name, x in figures.items()}
+    return {
+        "site": result.site.name, "run_folder": str(out), "briefing": str(Path(out) / "brief.html"),
+        "notice": "for simulation and review only; not approved for field operation",
+        "centre": {"lat": lat, "lon": lon}, "extent_m": {"east": width, "north": height},
+        "noise": eps, "drift_scale": base, "policies": policies, "comparison": comparison,
+        "banners": banners, "warnings": warnings, "elapsed_s": round(elapsed_s, 1),
+        "ready_to_sign": all(x["converged"] and not x["seeds_disagree"] for x in figures.values()),
+    }
+
+
+def _plain(value):
+    """JSON-ready data: NaN and infinities become null."""
+    if isinstance(value, dict):
+        return {k: _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+#: The plan summary stays narrower than this many columns.
+SUMMARY_WIDTH = 99
+
+
+def format_plan_summary(summary: dict) -> str:
+    """The summary ``plan`` prints: under 100 columns, warnings and banners on lines of their own."""
+    import textwrap
+
+    from planner.notation import hemisphere
+
+    def wrapped(text, first, rest="              "):
+        # "1 in 480" is one figure: never broken across lines
+        kept = text.replace("1 in ", "1\u00a0in\u00a0")
+        return [line.replace("\u00a0", " ") for line in textwrap.wrap(
+            kept, SUMMARY_WIDTH, initial_indent=first, subsequent_indent=rest, break_on_hyphens=False,
+            break_long_words=False)]
+
+    s = summary
+    lines = wrapped(f"{s['site']}: run folder {s['run_folder']} (for simulation and review only)", "", "  ")
+    lines += wrapped(f"{hemisphere(s['centre']['lat'], s['centre']['lon'])} (WGS 84); "
+                     f"{s['extent_m']['east']:.0f} m east-west x {s['extent_m']['north']:.0f} m north-south",
+                     "site centre   ")
+    for name, x in s["policies"].items():
+        end = "reaches the goal" if x["reached_goal"] else f"ENDS {x['ends']}"
+        lines.append(f"{name:<13} {x['length_m']:.1f} m ({x['waypoint_length_m']:.1f} m by waypoints), "
+                     f"{x['moves']} moves, {end}")
+        lines += wrapped(f"P(incident) {x['text']['p_incident']} at noise {s['noise']:g}; over the "
+                         f"{x['n_seeds']} training runs {x['text']['p_incident_seeds_range']}", " " * 14)
+        lines += wrapped(f"delivered: {x['delivered']}; {x['message']}", " " * 14)
+    if s["comparison"]:
+        lines += wrapped(s["comparison"], "comparison    ")
+    lines.append(f"briefing      {s['briefing']}")
+    lines.append(f"elapsed       {s['elapsed_s']:.1f} s")
+    for banner in s["banners"]:
+        lines += wrapped(banner, "! ", "  ")
+    if s["warnings"]:
+        lines.append(f"warnings      {len(s['warnings'])}")
+        for w in s["warnings"]:
+            lines += wrapped(w, "  - ", "    ")
+    else:
+        lines.append("warnings      none")
     return "\n".join(lines)

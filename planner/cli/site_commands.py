@@ -7,7 +7,15 @@ import json
 import click
 
 from planner.cli import cli
-from planner.cli.options import dynamics_options, grid_options, site_argument, site_options
+from planner.cli.options import (
+    SectionedCommand,
+    dynamics_options,
+    force_option,
+    grid_options,
+    output_option,
+    site_argument,
+    site_options,
+)
 
 
 def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells):
@@ -31,19 +39,26 @@ def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):
                     hazard_penalty_m=penalty_m)
 
 
-@cli.command()
+@cli.command(cls=SectionedCommand)
 @site_argument
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
 @site_options
 @grid_options
 @dynamics_options
-@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
 def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions, slip, stall,
           drift_scale, edge, penalty_m, as_json):
     """Validate SITE and print its summary.
 
-    Reports the working frame and its largest scale distortion, the extent in metres,
-    the zones by role, the grid size at --cell, the model's memory estimate and any
-    warnings. Exit code 2 and one line naming the feature when the site is invalid.
+    Reports where on Earth the site is (its centre in lat/lon), the working frame and
+    its largest scale distortion, the extent in metres, the zones by role, the grid
+    size at --cell, the model's memory estimate and any warnings (coordinates that look
+    swapped or projected among them). Exit code 2 and one line naming the feature when
+    the site is invalid.
+
+    \b
+    Examples:
+      veerwise check maps/ground-yard.geojson
+      veerwise check maps/drone-range.geojson --cell 5 --json
     """
     from planner.model import site_summary
 
@@ -57,6 +72,8 @@ def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max
 
 
 def format_summary(s: dict) -> str:
+    from planner.notation import hemisphere
+
     g, m, z = s["grid"], s["model"], s["zones"]
     frame = s["frame"]
     kind = "local transverse Mercator" if frame["kind"] == "local-tmerc" else "named CRS"
@@ -64,7 +81,8 @@ def format_summary(s: dict) -> str:
         f"site        {s['site']}  ({s['source']})",
         f"sha256      {s['sha256'][:16]}...",
         f"frame       {kind}; largest scale distortion {frame['largest_scale_distortion']:.1e}",
-        f"extent      {s['extent_m']['east']:.0f} m east x {s['extent_m']['north']:.0f} m north",
+        f"centre      {hemisphere(s['centre']['lat'], s['centre']['lon'])} (WGS 84); site "
+        f"{s['extent_m']['east']:.0f} m east-west x {s['extent_m']['north']:.0f} m north-south",
         f"start/goal  {s['start']} -> {s['goal']}",
         f"hazards     {len(z['hazard'])}",
     ]
@@ -81,7 +99,8 @@ def format_summary(s: dict) -> str:
                      f"spread {d['spread_m']:g} m{chance})")
     lines += [
         f"grid        {g['cols']} x {g['rows']} cells of {g['cell_m']:g} m = {g['cells']:,} cells "
-        f"({g['active_cells']:,} usable, {g['hazard_cells']:,} hazard; budget {g['max_cells']:,})",
+        f"({g['usable_cells']:,} usable, {g['goal_cells']:,} of them goal; {g['hazard_cells']:,} hazard; "
+        f"budget {g['max_cells']:,})",
         f"model       {m['moves']} moves, slip {m['slip']:g}, stall {m['stall']:g}, drift x{m['drift_scale']:g}, "
         f"edge {m['edge']}; about {m['estimated_bytes'] / 2**20:.0f} MiB",
     ]
@@ -93,24 +112,28 @@ def format_summary(s: dict) -> str:
     return "\n".join(lines)
 
 
-@cli.command()
+@cli.command(cls=SectionedCommand)
 @site_argument
+@output_option("PNG file to write.")
+@force_option
 @site_options
 @grid_options
-@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=str),
-              help="PNG file to write.")
-def grid(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, output):
+def grid(site, output, force, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells):
     """Draw the labelled grid of SITE to a PNG.
 
     Shows hazards (with buffers), rough ground, drift arrows, start, goal, a legend, a
-    metre scale bar and a north arrow. Nothing is written when the site is invalid.
+    metre scale bar and a north arrow. Nothing is written when the site is invalid, and
+    an existing file is replaced only with --force.
+
+    \b
+    Example:
+      veerwise grid maps/drone-range.geojson --cell 5 -o drone-range.png
     """
-    from planner.export import atomic_output
+    from planner.export import atomic_output, check_output
     from planner.grid import rasterise
     from planner.plots import plot_grid
 
-    if not output.lower().endswith(".png"):
-        raise click.BadParameter(f"{output!r} must end in .png", param_hint="-o/--output")
+    check_output(output, ("png",), force=force)
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
     labelled = rasterise(loaded, spec)
