@@ -398,9 +398,8 @@ def seed_range(seed_values, headline) -> tuple[float, float]:
 def seeds_banner(x: dict) -> str:
     """The banner raised when the training seeds do not agree on a policy's route."""
     return (f"SEEDS DISAGREE on the {x['name']} route: only {x['seed_routes_matching']} of {x['n_seeds']} "
-            "training runs keep within 2 cells of the exported route, so the route depends on the seed as much "
-            f"as on the yard. P(incident) over the runs: {x['p_incident_range']}. Re-run with more episodes "
-            "before signing.")
+            "training runs keep within 2 cells of it, so it depends on the seed, not only on the yard "
+            f"(P(incident) over the runs {x['p_incident_range']}). Re-run with more episodes before signing.")
 
 
 def _banners(policies) -> list[str]:
