@@ -469,6 +469,13 @@ def _sweep_panel(ax, swept: dict, title: str | None) -> None:
                       + ("stopped when its verdict passed" if result.stopped_by_rule else "whole budget used"))
     ax.set_xscale("log")
     ax.set_yscale("log")
+    from matplotlib.ticker import FuncFormatter
+
+    from planner.notation import percent
+
+    # probabilities in the one notation on both major and minor ticks
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: percent(v)))
+    ax.yaxis.set_minor_formatter(FuncFormatter(lambda v, _: percent(v)))
     ax.set_xlabel("updates (one sampled transition each, all seeds)")
     ax.set_ylabel("P(incident) of the\ngreedy policy (exact)")
     ax.grid(alpha=0.3)
