@@ -23,8 +23,8 @@ from planner.errors import SiteError
 from planner.names import MAX_NAME_CHARS, check_unique, clean_name, csv_cell, for_terminal
 from planner.site import site_from_geojson
 
-QUICK = ["--cell", "2", "--episodes", "200", "--seeds", "1", "--rollouts", "0", "--noise", "0.1",
-         "--drift-scales", "1", "--seed", "3", "-q"]
+QUICK = ["--cell", "2", "--episodes", "200", "--training-runs", "1", "--rollouts", "0", "--table-noises", "0.1",
+         "--table-drifts", "1", "--root-seed", "3", "-q"]
 #: Characters that must never pass: control, line breaks, direction controls, zero-width.
 FORBIDDEN = ["\x1b", "\n", "\r", "\t", "\x00", "\x7f", "\u0085", "\u2028", "\u2029", "\u202e", "\u202d",
              "\u2066", "\u2067", "\u2069", "\u200e", "\u200f", "\u061c", "\u200b", "\u200c", "\u200d",
@@ -122,7 +122,7 @@ def test_terminal_text_is_one_printable_line(text):
 def test_a_hostile_name_is_refused_in_one_safe_line(tmp_path, name, fragment, command):
     site = tmp_path / "site.geojson"
     site.write_text(json.dumps(site_named(name)))  # json.dumps escapes: the file is plain ASCII
-    args = [command, site, "--cell", "2"] if command == "check" else [command, site, "--out", tmp_path / "run",
+    args = [command, site, "--cell", "2"] if command == "check" else [command, site, tmp_path / "run",
                                                                       *QUICK]
     result = invoke(*args)
     assert result.exit_code == 2, result.output
@@ -146,7 +146,7 @@ def test_formula_names_reach_csv_as_text(tmp_path):
     path = tmp_path / "site.geojson"
     path.write_text(json.dumps(site_named('=HYPERLINK("http://example.invalid","x")')))
     out = tmp_path / "run"
-    result = invoke("plan", path, "--out", out, *QUICK)
+    result = invoke("plan", path, out, *QUICK)
     assert result.exit_code == 0, result.output
     for name in ("waypoints-cautious.csv", "waypoints-shortest.csv"):
         rows = [r for r in csv.reader(io.StringIO((out / name).read_text())) if r and not r[0].startswith("#")]

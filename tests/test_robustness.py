@@ -409,12 +409,12 @@ BAD_PLAN_OPTIONS = [
     ("--moves 6", ["--moves", "6"], ["--moves"], None),
     # Limits before work: counts that would run for days or exhaust memory, refused at once.
     ("--episodes 10**12", ["--episodes", str(10**12)], ["--episodes", "over the limit"], None),
-    ("--seeds a million", ["--seeds", "1000000"], ["--seeds", "over the limit"], None),
+    ("--training-runs a million", ["--training-runs", "1000000"], ["--training-runs", "over the limit"], None),
     ("--rollouts 10**12", ["--rollouts", str(10**12)], ["--rollouts", "over the limit"], None),
     ("--budget 10**9", ["--budget", str(10**9)], ["--budget", "over the limit"], None),
     ("--max-steps 10**12", ["--max-steps", str(10**12)], ["--max-steps", "over the limit"], None),
     ("--penalty 1e308", ["--penalty", "1e308"], ["--penalty", "1e+308"], None),
-    ("--noise of 1,000 values", ["--noise", ",".join(["0.1"] * 1000)], ["--noise", "1,000 values"], None),
+    ("--table-noises of 1,000 values", ["--table-noises", ",".join(["0.1"] * 1000)], ["--table-noises", "1,000 values"], None),
 ]
 
 
@@ -704,8 +704,8 @@ def test_damaged_run_folder(base_run, tmp_path, damage, fragments, command):
     ("risk", ["--budget", "0"], ["--budget"]),
     ("risk", ["--rollouts", "-1"], ["--rollouts"]),
     ("risk", ["--policy", "bogus"], ["--policy", "'bogus'"]),
-    ("risk", ["--seed", "-1"], ["--seed", "-1"]),
-    ("risk", ["--seed", str(2**128)], ["--seed", "2**128"]),
+    ("risk", ["--rollout-seed", "-1"], ["--rollout-seed", "-1"]),
+    ("risk", ["--rollout-seed", str(2**128)], ["--rollout-seed", "2**128"]),
     ("risk", ["--rollouts", str(10**12)], ["--rollouts", "over the limit"]),
     ("risk", ["--budget", str(10**9)], ["--budget", "over the limit"]),
     ("export", ["--alt-m", "-1", "-o", "OUT"], ["--alt-m"]),

@@ -27,9 +27,9 @@ from planner.cli import cli
 
 pytestmark = pytest.mark.skipif(sys.platform == "win32", reason="POSIX signals, locks and renames")
 
-QUICK = ["--cell", "2", "--episodes", "200", "--seeds", "1", "--rollouts", "0", "--noise", "0.1",
-         "--drift-scales", "1", "--seed", "3", "-q"]
-UNSEEDED = [o for o in QUICK if o not in ("--seed", "3")]
+QUICK = ["--cell", "2", "--episodes", "200", "--training-runs", "1", "--rollouts", "0", "--table-noises", "0.1",
+         "--table-drifts", "1", "--root-seed", "3", "-q"]
+UNSEEDED = [o for o in QUICK if o not in ("--root-seed", "3")]
 
 
 def invoke(*args):
@@ -54,7 +54,7 @@ def made_run(tmp_path_factory):
     root = tmp_path_factory.mktemp("made")
     site = root / "site.geojson"
     site.write_text(json.dumps(small_site_dict()))
-    result = invoke("plan", site, "--out", root / "run", *QUICK)
+    result = invoke("plan", site, root / "run", *QUICK)
     assert result.exit_code == 0, result.output
     return root / "run"
 
@@ -83,9 +83,9 @@ def rehash(folder: Path, name: str) -> None:
 
 def test_a_second_plan_to_the_same_folder_is_refused_while_the_first_runs(tmp_path, site):
     out = tmp_path / "run"
-    first = PlanProcess([site, "--out", out, *LONG_TRAINING], tmp_path)
+    first = PlanProcess([site, out, *LONG_TRAINING], tmp_path)
     first.wait_for(training, "the middle of training")
-    line = one_error_line(invoke("plan", site, "--out", out, "--force", *QUICK))
+    line = one_error_line(invoke("plan", site, out, "--force", *QUICK))
     assert "in use by another veerwise command" in line and f"pid {first.proc.pid}" in line, line
     assert_stopped(*first.stop(signal.SIGINT))
     assert not out.exists()
@@ -119,13 +119,13 @@ def test_a_stopped_brief_leaves_the_run_folder_as_it_was(run_copy, tmp_path, sig
 
 def test_a_killed_run_is_cleaned_up_by_the_next_with_notes(tmp_path, site):
     out = tmp_path / "run"
-    killed = PlanProcess([site, "--out", out, *QUICK[:-1]], tmp_path)
+    killed = PlanProcess([site, out, *QUICK[:-1]], tmp_path)
     killed.wait_for(writing(tmp_path, "run"), "writing its temporary folder")
     killed.proc.kill()
     killed.proc.wait(timeout=60)
     left = sorted(p.name for p in tmp_path.iterdir() if p.name.startswith("."))
     assert any(n.startswith(".run.partial-") for n in left) and ".run.lock" in left, left
-    result = invoke("plan", site, "--out", out, *QUICK)
+    result = invoke("plan", site, out, *QUICK)
     assert result.exit_code == 0, result.output
     notes = warnings_of(result)
     assert any("took over the lock" in n and f"pid {killed.proc.pid}" in n for n in notes), notes
@@ -157,7 +157,7 @@ def test_force_never_leaves_the_folder_missing(run_copy, site, monkeypatch):
                 missing.append((src, dst))
 
         monkeypatch.setattr(os, name, spy)
-    result = invoke("plan", site, "--out", run_copy, "--force", *UNSEEDED, "--seed", "4")
+    result = invoke("plan", site, run_copy, "--force", *UNSEEDED, "--root-seed", "4")
     monkeypatch.undo()
     assert result.exit_code == 0, result.output
     assert missing == []
@@ -168,7 +168,7 @@ def test_force_refuses_to_replace_a_folder_of_user_files(tmp_path, site, monkeyp
     (tmp_path / "notes.txt").write_text("mine")
     monkeypatch.chdir(tmp_path)
     before = snapshot(tmp_path)
-    line = one_error_line(invoke("plan", site, "--out", ".", "--force", *QUICK))
+    line = one_error_line(invoke("plan", site, ".", "--force", *QUICK))
     assert "not a veerwise run folder" in line, line
     assert snapshot(tmp_path) == before
 
@@ -180,7 +180,7 @@ def test_a_full_disk_is_one_line_and_leaves_nothing(tmp_path, site, monkeypatch)
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
 
     monkeypatch.setattr(planner.runfolder, "_save_npz", full)
-    line = one_error_line(invoke("plan", site, "--out", tmp_path / "run", *QUICK))
+    line = one_error_line(invoke("plan", site, tmp_path / "run", *QUICK))
     assert os.strerror(errno.ENOSPC) in line and "nothing was written" in line, line
     assert sorted(p.name for p in tmp_path.iterdir()) == ["site.geojson"]
 
@@ -198,7 +198,7 @@ def test_a_read_only_folder_is_one_line(tmp_path, site):
         else:
             probe.unlink()
             pytest.skip("this user can write into a read-only folder (root): nothing to test")
-        line = one_error_line(invoke("plan", site, "--out", folder / "run", *QUICK))
+        line = one_error_line(invoke("plan", site, folder / "run", *QUICK))
         assert "nothing was written" in line, line
         assert list(folder.iterdir()) == []
     finally:
@@ -212,7 +212,7 @@ def test_memory_running_out_anywhere_is_one_line(tmp_path, site, monkeypatch):
         raise MemoryError
 
     monkeypatch.setattr(planner.model, "build_model", exhausted)
-    line = one_error_line(invoke("plan", site, "--out", tmp_path / "run", *QUICK))
+    line = one_error_line(invoke("plan", site, tmp_path / "run", *QUICK))
     assert "out of memory" in line and "--cell" in line, line
     assert sorted(p.name for p in tmp_path.iterdir()) == ["site.geojson"]
 
@@ -221,7 +221,7 @@ def test_a_plan_larger_than_the_memory_is_refused_with_its_estimate(tmp_path, si
     import planner.runfolder
 
     monkeypatch.setattr(planner.runfolder, "available_memory_bytes", lambda: 2**20, raising=False)
-    line = one_error_line(invoke("plan", site, "--out", tmp_path / "run", *QUICK[:2], "--episodes", "5000000",
+    line = one_error_line(invoke("plan", site, tmp_path / "run", *QUICK[:2], "--episodes", "5000000",
                                  *QUICK[4:]))
     assert "would need about" in line and "learning curves" in line and "--episodes" in line, line
 
@@ -242,7 +242,7 @@ def test_the_site_copy_is_the_bytes_that_were_hashed(tmp_path, site, monkeypatch
 
     monkeypatch.setattr(planner.runfolder, "compute_plan", edited_meanwhile)
     out = tmp_path / "run"
-    result = invoke("plan", site, "--out", out, *QUICK)
+    result = invoke("plan", site, out, *QUICK)
     assert result.exit_code == 0, result.output
     manifest = json.loads((out / "manifest.json").read_text())
     copied = (out / "site.geojson").read_bytes()
@@ -292,9 +292,9 @@ def test_brief_keeps_the_files_a_user_added(run_copy):
 def test_a_run_made_without_a_seed_can_be_made_again_from_its_manifest(tmp_path, site):
     quick = UNSEEDED
     first, second = tmp_path / "first", tmp_path / "second"
-    assert invoke("plan", site, "--out", first, *quick).exit_code == 0
+    assert invoke("plan", site, first, *quick).exit_code == 0
     entropy = json.loads((first / "manifest.json").read_text())["seeds"]["entropy"]
-    result = invoke("plan", site, "--out", second, *quick, "--seed", entropy)
+    result = invoke("plan", site, second, *quick, "--root-seed", entropy)
     assert result.exit_code == 0, result.output
     for name in ("policies.npz", "risk.json", "waypoints-cautious.csv", "routes-shortest.geojson"):
         assert (first / name).read_bytes() == (second / name).read_bytes(), name
@@ -305,15 +305,15 @@ def test_a_run_made_without_a_seed_can_be_made_again_from_its_manifest(tmp_path,
 @pytest.mark.parametrize("seed,accepted", [(-1, False), (0, True), (2**100, True), (2**128 - 1, True),
                                            (2**128, False)])
 def test_plan_and_risk_agree_on_which_seeds_are_valid(made_run, tmp_path, site, seed, accepted, no_heavy_work):
-    risk = invoke("risk", made_run, "--rollouts", "0", "--seed", seed)
-    plan = invoke("plan", site, "--out", tmp_path / "run", *UNSEEDED, "--seed", seed)
+    risk = invoke("risk", made_run, "--rollouts", "0", "--rollout-seed", seed)
+    plan = invoke("plan", site, tmp_path / "run", *UNSEEDED, "--root-seed", seed)
     if accepted:
         assert risk.exit_code == 0, risk.output
         assert "heavy work" in repr(plan.exception)  # got past every check of the settings
     else:
         for result in (risk, plan):
             line = one_error_line(result)
-            assert "--seed" in line and "2**128" in line, line
+            assert ("--root-seed" in line or "--rollout-seed" in line) and "2**128" in line, line
 
 
 # ----------------------------------------------------------------------------- no quadratic steps

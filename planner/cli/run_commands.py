@@ -93,7 +93,14 @@ def export(run, output, force, fmt, policy, alt_m):
       veerwise export run-yard -o routes.gpx --alt-m 30
       veerwise export run-yard -o cautious.geojson --policy cautious
     """
-    from planner.export import check_output, output_format, refuse_run_folder_target, write_csv, write_geojson, write_gpx
+    from planner.export import (
+        check_output,
+        output_format,
+        refuse_run_folder_target,
+        write_csv,
+        write_geojson,
+        write_gpx,
+    )
     from planner.runfolder import load_run, read_lock, rebuild, run_routes
 
     out = Path(output)
