@@ -1,5 +1,4 @@
-"""The briefing: one self-contained HTML page (and a PDF of the same content) that a
-safety reviewer reads and signs before a field trial.
+"""The briefing a safety reviewer reads and signs before a field trial (HTML and PDF).
 
 This stage owns the briefing's content and layout. It takes finished results (no
 computation of its own beyond formatting), embeds every figure as a data URI so the
@@ -7,15 +6,22 @@ page needs no network and no other file, and prints well on A4.
 
 The content is built once (:func:`brief_content`) as plain data: a box of short
 answers, then numbered sections made of blocks (paragraphs, tables, figures, lists,
-the sign-off). :func:`render_html` and :func:`write_pdf` both walk those same blocks,
-so the two files cannot say different things. The PDF is drawn with matplotlib, so
-no browser is needed at run time.
+the sign-off). :func:`render_html` renders them through Jinja2 templates (package data
+under ``planner/templates``: one base page, one partial per block kind, autoescaping
+on), and :func:`write_pdf` prints that same HTML with WeasyPrint, so the two files
+cannot say different things. Page layout (A4, footers, what may not break across a
+page) is the templates' CSS, not code.
+
+Why one module of about 800 lines: about 650 of them are the briefing's own sentences
+and tables, one function per section, each reading the same few results; kept together,
+a statement and the figure it quotes are found in one place. Rendering is the last
+180 lines and can move out whole.
 """
 
 from __future__ import annotations
 
 import base64
-import html
+import functools
 import math
 import re
 from dataclasses import dataclass
@@ -50,95 +56,30 @@ CAUTIONS = (
     "yard as it is today before any trial.",
 )
 
-#: The sign-off block: each field's label and the height (mm) left blank for it.
+#: The reviewer's decisions. None approves field operation on this tool's word: a
+#: supervised trial is the site's decision, under its own rules and operators.
+DECISIONS = (
+    "approve for simulation",
+    "approve for a supervised trial under the site's rules and certified operators",
+    "refuse",
+)
+
+#: The sign-off's blank fields: each label and the height (mm) left blank for it.
 SIGNOFF_FIELDS = (
-    ("Reviewed by (name, role)", 11),
-    ("Date", 11),
-    ("Decision (approve for simulation / approve for field trial under site rules / refuse)", 13),
-    ("Conditions and remarks", 24),
+    ("Site file checked against the yard on (date, by whom)", 10),
+    ("Rehearsed in a simulator on (date, simulator)", 10),
+    ("Reviewed by (name, role)", 10),
+    ("Date", 9),
+    ("Conditions and remarks", 20),
     ("Signature", 13),
 )
 
 NOTICE = ("FOR SIMULATION AND REVIEW ONLY - not approved for field operation. The site's safety rules, "
           "certified operators and local regulations take precedence.")
 
-_HEADER_FILL = "#f1efe9"
-_RULE = "#cccccc"
-_MUTED = "#555555"
-_NOTICE_FILL = "#fbeee9"
-_BANNER_FILL = "#f3ebf8"
-_GLANCE_FILL = "#f6f5f1"
-
-_CSS = f"""
-@page {{ size: A4; margin: 13mm 13mm 16mm 13mm;
-  @bottom-left {{ content: FOOTER; font: 7.5pt "DejaVu Sans", Arial, sans-serif; color: #666; }}
-  @bottom-right {{ content: "page " counter(page) " of " counter(pages);
-                   font: 7.5pt "DejaVu Sans", Arial, sans-serif; color: #666; }} }}
-* {{ -webkit-print-color-adjust: exact; print-color-adjust: exact; box-sizing: border-box; }}
-body {{ font-family: "DejaVu Sans", Arial, sans-serif; font-size: 9.5pt; color: {style.TEXT}; max-width: 184mm;
-       margin: 0 auto; line-height: 1.35; }}
-h1 {{ font-size: 16pt; margin: 0 0 1.5mm 0; }}
-h2 {{ font-size: 12pt; margin: 5mm 0 2mm 0; border-bottom: 1px solid #bbb; padding-bottom: 1mm;
-     break-after: avoid; page-break-after: avoid; }}
-h3 {{ font-size: 10pt; margin: 3.5mm 0 1.5mm 0; break-after: avoid; page-break-after: avoid; }}
-p {{ margin: 1.5mm 0; orphans: 3; widows: 3; }}
-h2 + p, h3 + p {{ break-after: avoid; page-break-after: avoid; }}
-.notice {{ border: 2px solid {style.HAZARD}; background: {_NOTICE_FILL}; padding: 2mm 3mm; font-weight: bold;
-          margin: 2.5mm 0; break-inside: avoid; }}
-.banner {{ border: 2px solid {style.DISAGREE}; background: {_BANNER_FILL}; padding: 2mm 3mm; font-weight: bold;
-          margin: 2.5mm 0; break-inside: avoid; }}
-.glance {{ border: 1px solid #bbb; background: {_GLANCE_FILL}; padding: 1mm 3mm 2mm 3mm; margin: 3mm 0;
-          break-inside: avoid; }}
-.glance h2 {{ border: none; margin: 1.5mm 0 1mm 0; }}
-.glance dt {{ font-weight: bold; margin-top: 1.8mm; }}
-.glance dd {{ margin: 0.3mm 0 0 0; }}
-.alert {{ color: {style.HAZARD}; font-weight: bold; }}
-table {{ border-collapse: collapse; width: 100%; margin: 1.5mm 0 2.5mm 0; font-size: 8.5pt; }}
-table.keep {{ break-inside: avoid; page-break-inside: avoid; }}
-table.small {{ font-size: 7.8pt; }}
-thead {{ display: table-header-group; }}
-tr {{ break-inside: avoid; page-break-inside: avoid; }}
-th, td {{ border: 1px solid {_RULE}; padding: 0.7mm 1.4mm; text-align: left; vertical-align: top; }}
-th {{ background: {_HEADER_FILL}; }}
-td.num, th.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
-figure {{ margin: 2mm 0 3mm 0; break-inside: avoid; page-break-inside: avoid; }}
-figure img {{ max-width: 100%; max-height: 150mm; display: block; margin: 0 auto; }}
-figcaption {{ font-size: 8pt; color: {_MUTED}; margin-top: 1mm; }}
-ul {{ margin: 1mm 0; padding-left: 5mm; }}
-li {{ margin: 0.6mm 0; }}
-.small {{ font-size: 8pt; color: {_MUTED}; }}
-.nw {{ white-space: nowrap; }}
-table.narrow {{ width: auto; min-width: 55%; }}
-ul.keep, section.keep, div.keep {{ break-inside: avoid; page-break-inside: avoid; }}
-.signoff {{ break-inside: avoid; page-break-inside: avoid; }}
-.signoff th {{ width: 40%; }}
-"""
-
-
-def _esc(value) -> str:
-    return html.escape(str(value))
-
-
-#: Numbers a browser must not break at their minus sign (``1.2e-4``, ``1-3.0e-6``, ``-180.3``).
-_NUMBER = re.compile(r"-?\d[\d.,]*(?:e-\d+)?(?:-\d[\d.]*e-\d+)?")
-
-
-def _text(value) -> str:
-    """Escaped text whose numbers are kept whole on one line."""
-    out, last = [], 0
-    text = str(value)
-    for m in _NUMBER.finditer(text):
-        if "-" in m.group(0):
-            out += [html.escape(text[last:m.start()]), f"<span class='nw'>{html.escape(m.group(0))}</span>"]
-            last = m.end()
-    out.append(html.escape(text[last:]))
-    return "".join(out)
-
-
-def _css_string(text: str) -> str:
-    """``text`` as a CSS string literal, safe inside a ``<style>`` element."""
-    safe = "".join(ch if ch.isalnum() or ch in " .,-_()" else f"\\{ord(ch):x} " for ch in text)
-    return f'"{safe}"'
+#: Numbers a browser must not break at their minus sign (``1.2e-4``, ``1-3.0e-6``, ``-180.3``);
+#: not inside words or dates (``2026-12-03T06:35:29Z`` is left as it is).
+_NUMBER = re.compile(r"(?<![\w.-])-?\d[\d.,]*(?:e-\d+)?(?:-\d[\d.]*e-\d+)?")
 
 
 def _metres(value) -> str:
@@ -241,7 +182,8 @@ def brief_content(inputs: BriefInputs) -> dict:
         ``planner.risk.format_prob``); ``converged``; ``assumptions`` and ``warnings``;
         ``notice`` and ``banners`` (strings); ``glance`` (question, answer, alert)
         triples; ``sections``: each a ``title`` and a list of ``blocks`` (dicts with a
-        ``kind`` of ``para``, ``subhead``, ``table``, ``figure``, ``list`` or ``signoff``).
+        ``kind`` of ``para``, ``subhead``, ``table``, ``figure``, ``list``, ``signed``
+        (what the sign-off binds to) or ``signoff``).
     """
     settings, manifest = inputs.settings, inputs.manifest
     site = inputs.site
@@ -277,7 +219,8 @@ def brief_content(inputs: BriefInputs) -> dict:
         })
     p = {x["name"]: x for x in policies}
     content = {
-        "site": site.name, "created": manifest["created_utc"], "run_name": inputs.run_name or inputs.folder.name,
+        "site": site.name, "site_sha256": site.sha256, "version": manifest["versions"]["veerwise"],
+        "run_id": manifest["run_id"], "created": manifest["created_utc"], "run_name": inputs.run_name or inputs.folder.name,
         "noise": eps, "drift_scale": base, "strong_drift": strong, "policies": policies,
         "converged": all(x["converged"] for x in policies),
         "assumptions": _assumptions(inputs, eps), "warnings": list(manifest.get("warnings", [])),
@@ -292,13 +235,8 @@ def brief_content(inputs: BriefInputs) -> dict:
         {"title": "4. Waypoints and clearances", "blocks": _section_waypoints(inputs)},
         {"title": "5. Site and assumptions", "blocks": _section_site(inputs, content)},
         {"title": "6. Cautions (from SAFETY.md, in short)", "blocks": [_list(CAUTIONS, keep=True)]},
-        {"title": "7. Sign-off", "blocks": [
-            *([_para("NOT CONVERGED: the learned " + " and ".join(
-                x["name"] for x in policies if not x["converged"]) + " route must not be signed; this briefing "
-                "is not ready for review.", alert=True)] if not content["converged"] else []),
-            _para("To be completed by the person responsible for the trial. A briefing with a training-not-"
-                  "converged banner is not ready for review.", small=True),
-            {"kind": "signoff", "fields": list(SIGNOFF_FIELDS)}]},
+        # one piece, never split across pages: what is signed, then the signature
+        {"title": "7. Sign-off", "keep": True, "blocks": _section_signoff(inputs, content)},
     ]
     return content
 
@@ -313,8 +251,10 @@ def _with_range(ref) -> str:
 
 
 def usable_cells(grid) -> str:
-    """The count of usable cells as ``veerwise check`` prints it: every cell the vehicle can
-    be in, goal cells included."""
+    """The count of usable cells as ``veerwise check`` prints it.
+
+    Every cell the vehicle can be in, goal cells included.
+    """
     return f"{int(grid.passable().sum()):,} usable cells, {int(grid.goal.sum()):,} of them goal"
 
 
@@ -338,8 +278,10 @@ def route_figures(name: str, route, conv: dict, row) -> dict:
 
 
 def compare_routes(c: dict, s: dict) -> tuple[str, bool]:
-    """How the cautious route compares with the shortest, in one or two sentences, and
-    whether a reviewer must be alerted (the cautious one is not the less risky).
+    """How the cautious route compares with the shortest, and whether to alert.
+
+    One or two sentences, and whether a reviewer must be alerted (the cautious one is
+    not the less risky).
 
     ``c`` and ``s`` come from :func:`route_figures`; the "N times" ratio is the widest
     range the two policies' spreads over their training runs allow.
@@ -400,6 +342,47 @@ def seeds_banner(x: dict) -> str:
     return (f"SEEDS DISAGREE on the {x['name']} route: only {x['seed_routes_matching']} of {x['n_seeds']} "
             "training runs keep within 2 cells of it, so it depends on the seed, not only on the yard "
             f"(P(incident) over the runs {x['p_incident_range']}). Re-run with more episodes before signing.")
+def _section_signoff(inputs: BriefInputs, content: dict) -> list:
+    """What is signed (run, site file, routes with their files' hashes), then the fields to fill in."""
+    manifest, files = inputs.manifest, inputs.manifest.get("files", {})
+    eps, base = content["noise"], content["drift_scale"]
+    routes = []
+    for x in content["policies"]:
+        name = x["name"]
+        digest = files.get(f"routes-{name}.geojson")
+        routes.append([f"{name} route", f"{x['waypoint_length_m']:.1f} m, {x['waypoints']} waypoints, ends {x['ends']}",
+                       x["p_incident"], x["delivered"],
+                       f"routes-{name}.geojson" + (f" (sha256 {digest[:16]}...)" if digest else "")])
+    alerts = [(k, 3) for k, x in enumerate(content["policies"]) if not x["converged"]]
+    signed = {
+        "kind": "signed", "title": "What is signed",
+        "items": [
+            ("Run", f"run id {content['run_id']}: folder {content['run_name']}, made {content['created']} by "
+                    f"veerwise {content['version']}", False),
+            ("Site file", f"{Path(manifest['input']['site']).name} ('{content['site']}'), sha256", False),
+            ("", content["site_sha256"], True),
+            ("Figures for", f"execution noise {eps:g}, drift x{base:g}; every setting in section 5 and "
+                            "manifest.json", False),
+        ],
+        "routes": _table(["delivered route", "as flown by its waypoints", f"P(incident), noise {eps:g}",
+                          "policy delivered", "waypoint file"], routes, alerts=alerts, small=True),
+    }
+    blocks = []
+    if not content["converged"]:
+        blocks.append(_para("NOT CONVERGED: the learned " + " and ".join(
+            x["name"] for x in content["policies"] if not x["converged"]) + " route must not be signed; this "
+            "briefing is not ready for review.", alert=True))
+    blocks += [
+        _para("To be completed by the person responsible for the trial. This tool approves nothing for field "
+              "operation: a decision below is the reviewer's, under the site's safety rules, with its certified "
+              "operators and within local regulations.", small=True),
+        signed,
+        {"kind": "signoff",
+         "choices": [("Route (tick one)", [r[0] + f" ({r[1].split(',')[0]})" for r in routes]),
+                     ("Decision (tick one)", list(DECISIONS))],
+         "fields": list(SIGNOFF_FIELDS)},
+    ]
+    return blocks
 
 
 def _banners(policies) -> list[str]:
@@ -567,8 +550,8 @@ def _section_risk(content: dict, rows) -> list:
         "P(incident): probability, in the model, that one run ends in a hazard that ends the run or by leaving "
         "the boundary before it reaches the goal. Noise: share of moves made in a uniformly random direction "
         "instead of the planned one. Drift xN: every drift zone pushes N times as hard as drawn. Exact figures "
-        "come from the absorbing Markov chain of each policy; Monte Carlo estimates (simulated runs, Wilson 95% "
-        "interval) check the computation.", small=True)]
+        "come from the absorbing Markov chain of each policy; Monte Carlo estimates (simulated runs, shown with "
+        "their Wilson 95% interval) check the computation.", small=True)]
 
     def mark(row):
         return " !" if row.mc_disagrees else ""
@@ -612,8 +595,8 @@ def _section_risk(content: dict, rows) -> list:
                      "has converged.")
     if any(r.mc_disagrees for r in rows):
         notes.append("'!' marks a row where some exact figure (P(incident), P(goal) or one hazard's share) lies "
-                     "outside its Monte Carlo interval, checked at a 95% level for the whole table; section 3 "
-                     "names it.")
+                     "outside the Clopper-Pearson interval of its Monte Carlo count, at the level that keeps the "
+                     "whole table's checks at 95% together; section 3 names it.")
     never = [r for r in rows if r.p_never > 0]
     if never:
         worst = max(never, key=lambda r: r.p_never)
@@ -667,8 +650,10 @@ def _section_trust(content: dict, rows) -> list:
     text = []
     if checked:
         text.append(f"Monte Carlo: {len(checked)} rows checked with {checked[0].n_rollouts:,} simulated runs each; "
-                    + ("every exact figure lies inside its interval." if not flagged else
-                       f"{len(flagged)} row(s) have an exact figure outside its interval: "
+                    + ("every exact figure lies inside the Clopper-Pearson interval of its count at the "
+                       "table's level." if not flagged else
+                       f"{len(flagged)} row(s) have an exact figure outside the Clopper-Pearson interval of its "
+                       "count at the table's level: "
                        + "; ".join(f"{r.policy}, noise {r.noise:g}, drift x{r.drift_scale:g} ({_disagreements(r)})"
                                    for r in flagged)
                        + ". Where an exact figure is far below 1 / (simulated runs), a single simulated event is "
@@ -767,14 +752,31 @@ def _assumptions(inputs: BriefInputs, eps: float) -> list[tuple[str, str]]:
                      + (f" (1/n^{learn.step_decay:g})" if learn.step_decay else "")
                      + f", gamma {learn.gamma:g}, starts '{learn.start_mode}', Q init '{learn.q_init}'"),
         ("Seed", f"root entropy {manifest['seeds']['entropy']}"),
-        ("Monte Carlo", f"{settings.rollouts:,} simulated runs per risk row, Wilson 95% intervals"),
+        ("Monte Carlo", f"{settings.rollouts:,} simulated runs per risk row; Wilson 95% intervals shown, "
+                        "checks against the exact figures with Clopper-Pearson intervals at the table's level"),
         # a fixed order: the manifest read back from disk has its keys sorted, the one in memory not
         ("Versions", ", ".join(f"{k} {manifest['versions'][k]}" for k in sorted(
             manifest["versions"], key=lambda k: (k != "veerwise", k)) if k != "platform")),
     ]
 
 
-# ----------------------------------------------------------------------------- HTML
+# ----------------------------------------------------------------------------- HTML and PDF
+
+#: Figures are never shown larger than this many pixels per inch, so the PDF carries
+#: them at print resolution (the figures are drawn at ``style.FIGURE_DPI``).
+PRINT_PPI = 300
+#: The page's text width and the tallest a figure may be drawn (A4 less margins).
+TEXT_WIDTH_MM = 184.0
+FIGURE_MAX_HEIGHT_MM = 150.0
+
+#: What to install when WeasyPrint cannot find its system libraries.
+PDF_LIBRARIES = ("Pango >= 1.44 (Debian/Ubuntu: apt-get install libpango-1.0-0 libpangoft2-1.0-0 "
+                 "libharfbuzz-subset0)")
+
+#: Colours of the page furniture; the colours of meaning come from ``planner.style``.
+_COLOURS = {"text": style.TEXT, "hazard": style.HAZARD, "disagree": style.DISAGREE, "rule": "#cccccc",
+            "muted": "#555555", "header_fill": "#f1efe9", "notice_fill": "#fbeee9", "banner_fill": "#f3ebf8",
+            "glance_fill": "#f6f5f1"}
 
 
 def _figure_path(folder: Path, name: str) -> Path:
@@ -784,75 +786,56 @@ def _figure_path(folder: Path, name: str) -> Path:
     return path
 
 
-def _html_table(block: dict) -> str:
-    numeric, alerts = block["numeric"], block["alerts"]
+def _keep_numbers_whole(value):
+    """Escaped text whose numbers with a minus sign (``1.2e-4``, ``-180.3``) never break."""
+    from markupsafe import Markup, escape
 
-    def cell(tag, i, v, r=None):
-        cls = []
-        if i in numeric:
-            cls.append("num")
-        if r is not None and (r, i) in alerts:
-            cls.append("alert")
-        attr = f' class="{" ".join(cls)}"' if cls else ""
-        return f"<{tag}{attr}>{_text(v)}</{tag}>"
-
-    classes = " ".join(c for c in ("keep", "small", "narrow") if block.get(c))
-    head = ""
-    if any(block["headers"]):
-        head = "<thead><tr>" + "".join(cell("th", i, h) for i, h in enumerate(block["headers"])) + "</tr></thead>"
-    body = "".join("<tr>" + "".join(cell("th" if i == 0 and not any(block["headers"]) else "td", i, v, r)
-                                    for i, v in enumerate(row)) + "</tr>"
-                   for r, row in enumerate(block["rows"]))
-    cls = f' class="{classes}"' if classes else ""
-    return f"<table{cls}>{head}<tbody>{body}</tbody></table>"
+    text, out, last = str(value), [], 0
+    for m in _NUMBER.finditer(text):
+        if "-" in m.group(0):
+            out += [escape(text[last:m.start()]), Markup('<span class="nw">%s</span>') % m.group(0)]
+            last = m.end()
+    out.append(escape(text[last:]))
+    return Markup("").join(out)
 
 
-def _unbreakable(block: dict) -> bool:
-    return block["kind"] in ("figure", "signoff") or bool(block.get("keep"))
+def _css_string(text: str):
+    """``text`` as a CSS string literal, safe inside a ``<style>`` element (a newline starts a line)."""
+    from markupsafe import Markup
+
+    safe = "".join(ch if ch.isalnum() and ch.isascii() or ch in " .,-_()" else f"\\{ord(ch):x} " for ch in text)
+    return Markup(f'"{safe}"')
 
 
-def _html_blocks(blocks: list, folder: Path) -> list[str]:
-    """Blocks as HTML; a heading is grouped with what follows it up to the first block that
-    must not be split, since browsers do not keep a heading with such a block on their own."""
-    out, k = [], 0
-    while k < len(blocks):
-        if blocks[k]["kind"] in ("title", "subhead"):
-            end = k + 1
-            while end < len(blocks) and blocks[end]["kind"] in ("para", "subhead"):
-                end += 1
-            if end < len(blocks) and _unbreakable(blocks[end]):
-                out.append("<div class='keep'>" + "".join(_html_block(b, folder) for b in blocks[k:end + 1])
-                           + "</div>")
-                k = end + 1
-                continue
-        out.append(_html_block(blocks[k], folder))
-        k += 1
-    return out
+@functools.cache
+def _templates():
+    """The briefing's Jinja2 templates (package data under ``planner/templates``), autoescaping on."""
+    from jinja2 import Environment, PackageLoader, StrictUndefined
+
+    env = Environment(loader=PackageLoader("planner", "templates"), autoescape=True, undefined=StrictUndefined,
+                      trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True)
+    env.filters["numbers"] = _keep_numbers_whole
+    env.filters["css_string"] = _css_string
+    return env
 
 
-def _html_block(block: dict, folder: Path) -> str:
-    kind = block["kind"]
-    if kind == "title":
-        return f"<h2>{_esc(block['text'])}</h2>"
-    if kind == "para":
-        cls = " ".join(c for c in ("small", "alert") if block.get(c))
-        return f"<p class='{cls}'>{_text(block['text'])}</p>" if cls else f"<p>{_text(block['text'])}</p>"
-    if kind == "subhead":
-        return f"<h3>{_text(block['text'])}</h3>"
-    if kind == "table":
-        return _html_table(block)
-    if kind == "list":
-        cls = " class='keep'" if block.get("keep") else ""
-        return f"<ul{cls}>" + "".join(f"<li>{_text(i)}</li>" for i in block["items"]) + "</ul>"
-    if kind == "figure":
-        data = base64.b64encode(_figure_path(folder, block["file"]).read_bytes()).decode("ascii")
-        return (f'<figure><img alt="{_esc(block["alt"])}" src="data:image/png;base64,{data}">'
-                f"<figcaption>{_esc(block['caption'])}</figcaption></figure>")
-    if kind == "signoff":
-        rows = "".join(f"<tr><th>{_esc(label)}</th><td style='height:{mm}mm'></td></tr>"
-                       for label, mm in block["fields"])
-        return f"<table class='signoff'><tbody>{rows}</tbody></table>"
-    raise ValueError(f"unknown briefing block kind {kind!r}")
+def _figure_width_mm(path: Path) -> float:
+    """Display width of a figure, millimetres.
+
+    The text width, less if that would show it below ``PRINT_PPI`` or taller than
+    ``FIGURE_MAX_HEIGHT_MM``.
+    """
+    from PIL import Image
+
+    with Image.open(path) as image:
+        w_px, h_px = image.size
+    return min(TEXT_WIDTH_MM, 25.4 * w_px / PRINT_PPI, FIGURE_MAX_HEIGHT_MM * w_px / h_px)
+
+
+def footer_text(content: dict) -> str:
+    """What every printed page carries at its foot: the run, the site file's full hash, the version."""
+    return (f"veerwise {content['version']} briefing - run {content['run_id']} - {content['site']} - for "
+            f"simulation and review only\nsite file sha256 {content['site_sha256']}")
 
 
 def render_html(content: dict, inputs: BriefInputs) -> str:
@@ -860,43 +843,85 @@ def render_html(content: dict, inputs: BriefInputs) -> str:
 
     Parameters
     ----------
-    content : from :func:`brief_content`.
-    inputs : the same inputs; only ``folder`` (where the figures are) is read.
+    content : dict
+        From :func:`brief_content`.
+    inputs : BriefInputs
+        The same inputs; only ``folder`` (where the figures are) is read.
 
     Returns
     -------
     str
-        A complete HTML document, styled for A4 printing.
+        A complete HTML document, styled for A4 printing (``@page`` rules, footers).
     """
-    footer = _css_string(f"veerwise briefing - {content['site']} - for simulation and review only")
-    css = _CSS.replace("FOOTER", footer)
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-             f"<title>veerwise briefing - {_esc(content['site'])}</title><style>{css}</style></head><body>",
-             f"<h1>Pre-trial briefing: {_esc(content['site'])}</h1>",
-             f"<p class='small'>Generated by veerwise on {_esc(content['created'])}. "
-             f"Run folder: {_esc(content['run_name'])}.</p>",
-             f"<div class='notice'>{_esc(content['notice'])}</div>"]
-    parts += [f"<div class='banner'>{_text(b)}</div>" for b in content["banners"]]
-    parts.append("<div class='glance'><h2>At a glance</h2><dl>" + "".join(
-        f"<dt>{_esc(q)}</dt><dd{' class=alert' if alert else ''}>{_text(a)}</dd>"
-        for q, a, alert in content["glance"]) + "</dl></div>")
+    folder = Path(inputs.folder)
+
+    def figure_src(name: str) -> str:
+        data = base64.b64encode(_figure_path(folder, name).read_bytes()).decode("ascii")
+        return f"data:image/png;base64,{data}"
+
+    sections = []
     for section in content["sections"]:
-        # the sign-off is signed as one piece: never split it from its heading
-        keep = any(b["kind"] == "signoff" for b in section["blocks"])
-        parts.append(f"<section{' class=keep' if keep else ''}>")
-        parts += _html_blocks([{"kind": "title", "text": section["title"]}, *section["blocks"]], inputs.folder)
-        parts.append("</section>")
-    parts.append("</body></html>")
-    return "\n".join(parts)
+        blocks = [dict(b, width_mm=_figure_width_mm(_figure_path(folder, b["file"]))) if b["kind"] == "figure"
+                  else b for b in section["blocks"]]
+        sections.append(dict(section, blocks=blocks))
+    return _templates().get_template("base.html.j2").render(
+        c=dict(content, sections=sections), colour=_COLOURS, footer=footer_text(content), figure_src=figure_src)
 
 
-def write_brief(inputs: BriefInputs, html_path, pdf_path) -> tuple[Path, Path]:
-    """Write the briefing as HTML and as PDF (each atomically).
+def _weasyprint():
+    """The WeasyPrint module, or None when its system libraries (Pango) cannot be loaded."""
+    try:
+        import weasyprint
+    except (ImportError, OSError):
+        return None
+    return weasyprint
+
+
+def pdf_unavailable() -> str | None:
+    """Why this machine cannot write ``brief.pdf`` (one line naming what to install), or None."""
+    if _weasyprint() is not None:
+        return None
+    from importlib.util import find_spec
+
+    if find_spec("weasyprint") is None:
+        return "brief.pdf not written: the Python package weasyprint is not installed (pip install weasyprint)"
+    return f"brief.pdf not written: WeasyPrint cannot load its system libraries; install {PDF_LIBRARIES}"
+
+
+def write_pdf(path, page: str) -> Path:
+    """Print the briefing's HTML ``page`` to the PDF ``path`` with WeasyPrint.
+
+    Parameters
+    ----------
+    path : path-like
+        The PDF to write.
+    page : str
+        From :func:`render_html`; self-contained, so nothing is fetched.
 
     Returns
     -------
-    (Path, Path)
-        The HTML and PDF paths.
+    Path
+    """
+    weasyprint = _weasyprint()
+    if weasyprint is None:
+        raise RunFolderError(pdf_unavailable())
+    # the page embeds everything it shows: nothing but data URIs is ever fetched
+    fetcher = weasyprint.URLFetcher(allowed_protocols={"data"})
+    weasyprint.HTML(string=page, url_fetcher=fetcher).write_pdf(Path(path))
+    return Path(path)
+
+
+def write_brief(inputs: BriefInputs, html_path, pdf_path) -> tuple[Path, Path | None]:
+    """Write the briefing as HTML and, where WeasyPrint can run, as PDF (each atomically).
+
+    The PDF is printed from the same HTML, so the two cannot say different things.
+    Where the PDF cannot be made (see :func:`pdf_unavailable`), a stale ``pdf_path``
+    from an earlier rendering is removed rather than left disagreeing with the HTML.
+
+    Returns
+    -------
+    (Path, Path or None)
+        The HTML path, and the PDF path or None when no PDF was written.
     """
     from planner.export import atomic_output
 
@@ -904,407 +929,9 @@ def write_brief(inputs: BriefInputs, html_path, pdf_path) -> tuple[Path, Path]:
     page = render_html(content, inputs)
     with atomic_output(html_path) as tmp:
         tmp.write_text(page, encoding="utf-8")
+    if pdf_unavailable() is not None:
+        Path(pdf_path).unlink(missing_ok=True)
+        return Path(html_path), None
     with atomic_output(pdf_path) as tmp:
-        write_pdf(tmp, inputs.folder, content)
+        write_pdf(tmp, page)
     return Path(html_path), Path(pdf_path)
-
-
-# ----------------------------------------------------------------------------- PDF
-
-#: A4 in points (1/72 inch), and the page margins of the PDF.
-_A4_PT = (595.28, 841.89)
-_MARGIN_PT = {"left": 37.0, "right": 37.0, "top": 38.0, "bottom": 46.0}
-_MM = 72.0 / 25.4
-
-
-class _Flow:
-    """Blocks laid out top to bottom on A4 matplotlib figures, a new page when one is full.
-
-    Positions are in points from the page's top-left corner. Text is wrapped with
-    per-character advance widths of DejaVu Sans (measured once per character), which
-    is what the PDF embeds.
-    """
-
-    def __init__(self, folder: Path):
-        import matplotlib.pyplot as plt
-        from matplotlib.font_manager import FontProperties
-        from matplotlib.textpath import TextToPath
-
-        self.plt = plt
-        self.folder = Path(folder)
-        self.pages = []
-        self.width = _A4_PT[0] - _MARGIN_PT["left"] - _MARGIN_PT["right"]
-        self._measure = TextToPath()
-        self._props = {w: FontProperties(family="DejaVu Sans", weight=w, size=10.0) for w in ("normal", "bold")}
-        self._advance = {}
-        self.new_page()
-
-    # -- geometry
-    def new_page(self) -> None:
-        self.fig = self.plt.figure(figsize=(_A4_PT[0] / 72.0, _A4_PT[1] / 72.0))
-        self.pages.append(self.fig)
-        self.y = _MARGIN_PT["top"]
-
-    @property
-    def room(self) -> float:
-        return _A4_PT[1] - _MARGIN_PT["bottom"] - self.y
-
-    @property
-    def full_height(self) -> float:
-        return _A4_PT[1] - _MARGIN_PT["bottom"] - _MARGIN_PT["top"]
-
-    def need(self, height: float) -> None:
-        """Start a new page unless ``height`` points fit (a fresh page always takes what it can)."""
-        if height > self.room and self.y > _MARGIN_PT["top"] + 0.5:
-            self.new_page()
-
-    def _fx(self, x: float) -> float:
-        return x / _A4_PT[0]
-
-    def _fy(self, y: float) -> float:
-        return 1.0 - y / _A4_PT[1]
-
-    # -- text
-    def text_width(self, text: str, size: float, bold: bool = False) -> float:
-        weight = "bold" if bold else "normal"
-        total = 0.0
-        for ch in text:
-            key = (ch, weight)
-            if key not in self._advance:
-                w, _, _ = self._measure.get_text_width_height_descent(ch if ch != " " else "a a", self._props[weight],
-                                                                      ismath=False)
-                if ch == " ":
-                    w -= 2 * self._measure.get_text_width_height_descent("a", self._props[weight], ismath=False)[0]
-                self._advance[key] = w / 10.0
-            total += self._advance[key]
-        # kerning and rounding make real lines a little narrower or wider; keep slack
-        return total * 1.02 * size
-
-    def wrap(self, text: str, size: float, width: float, bold: bool = False) -> list[str]:
-        lines = []
-        for paragraph in str(text).split("\n"):
-            current = ""
-            for word in paragraph.split(" "):
-                candidate = word if not current else f"{current} {word}"
-                if self.text_width(candidate, size, bold) <= width:
-                    current = candidate
-                    continue
-                if current:
-                    lines.append(current)
-                current = word
-                while self.text_width(current, size, bold) > width and len(current) > 1:
-                    cut = len(current) - 1
-                    while cut > 1 and self.text_width(current[:cut], size, bold) > width:
-                        cut -= 1
-                    lines.append(current[:cut])
-                    current = current[cut:]
-            lines.append(current)
-        return lines
-
-    def put(self, x: float, y: float, text: str, size: float, *, bold: bool = False, color: str = style.TEXT,
-            ha: str = "left") -> None:
-        self.fig.text(self._fx(x), self._fy(y), text, fontsize=size, fontweight="bold" if bold else "normal",
-                      color=color, ha=ha, va="top", family="DejaVu Sans")
-
-    def rect(self, x: float, y: float, w: float, h: float, *, fill: str | None = None, edge: str | None = _RULE,
-             lw: float = 0.5) -> None:
-        from matplotlib.patches import Rectangle
-
-        self.fig.add_artist(Rectangle((self._fx(x), self._fy(y + h)), w / _A4_PT[0], h / _A4_PT[1],
-                                      transform=self.fig.transFigure, facecolor=fill or "none",
-                                      edgecolor=edge or "none", linewidth=lw if edge else 0))
-
-    def hline(self, y: float, *, color: str = "#bbbbbb", lw: float = 0.6) -> None:
-        from matplotlib.lines import Line2D
-
-        left = _MARGIN_PT["left"]
-        self.fig.add_artist(Line2D([self._fx(left), self._fx(left + self.width)], [self._fy(y)] * 2,
-                                   transform=self.fig.transFigure, color=color, lw=lw))
-
-    # -- blocks
-    def paragraph(self, text: str, size: float = 9.0, *, bold: bool = False, color: str = style.TEXT,
-                  indent: float = 0.0, after: float = 4.0) -> None:
-        line_h = size * 1.32
-        lines = self.wrap(text, size, self.width - indent, bold)
-        if len(lines) * line_h <= self.full_height / 3:
-            self.need(len(lines) * line_h)
-        for line in lines:
-            self.need(line_h)
-            self.put(_MARGIN_PT["left"] + indent, self.y, line, size, bold=bold, color=color)
-            self.y += line_h
-        self.y += after
-
-    def heading(self, text: str, size: float = 12.0, *, keep: float = 90.0) -> None:
-        lines = self.wrap(text, size, self.width, bold=True)
-        self.need(len(lines) * size * 1.35 + 8.0 + keep)
-        self.y += 4.0
-        for line in lines:
-            self.put(_MARGIN_PT["left"], self.y, line, size, bold=True)
-            self.y += size * 1.35
-        if size >= 11:
-            self.hline(self.y)
-            self.y += 4.0
-
-    def box(self, items: list[tuple[str | None, str, bool]], *, edge: str, fill: str, size: float = 9.0,
-            lw: float = 1.5, title: str | None = None) -> None:
-        """A framed box of optional bold labels and wrapped texts."""
-        pad = 6.0
-        inner = self.width - 2 * pad
-        line_h = size * 1.32
-        laid = []
-        height = 2 * pad
-        if title:
-            height += 12 * 1.6
-        for label, text, alert in items:
-            label_lines = self.wrap(label, size, inner, bold=True) if label else []
-            text_lines = self.wrap(text, size, inner, bold=alert or not label)
-            laid.append((label_lines, text_lines, alert or not label))
-            height += (len(label_lines) + len(text_lines)) * line_h + (4.0 if label else 0.0)
-        self.need(height)
-        left = _MARGIN_PT["left"]
-        self.rect(left, self.y, self.width, height, fill=fill, edge=edge, lw=lw)
-        y = self.y + pad
-        if title:
-            self.put(left + pad, y, title, 12, bold=True)
-            y += 12 * 1.6
-        for label_lines, text_lines, strong in laid:
-            for line in label_lines:
-                self.put(left + pad, y, line, size, bold=True)
-                y += line_h
-            color = style.HAZARD if strong and label_lines else style.TEXT
-            for line in text_lines:
-                self.put(left + pad, y, line, size, bold=strong, color=color)
-                y += line_h
-            if label_lines:
-                y += 4.0
-        self.y += height + 6.0
-
-    _TABLE_PAD = (3.0, 2.2)
-
-    def table_layout(self, block: dict):
-        """Column widths, and the wrapped header and rows of a table with their heights."""
-        size = 7.0 if block["small"] else 7.6
-        pad_x, pad_y = self._TABLE_PAD
-        line_h = size * 1.3
-        headers, rows = block["headers"], block["rows"]
-        has_head = any(headers)
-        n_cols = len(headers)
-        cells = ([headers] if has_head else []) + rows
-        natural = [max(self.text_width(r[i], size, bold=True) for r in cells) + 2 * pad_x for i in range(n_cols)]
-        minimal = [max(max((self.text_width(w, size, bold=True) for w in r[i].split(" ")), default=0.0)
-                       for r in cells) + 2 * pad_x for i in range(n_cols)]
-        total = self.width
-        if block.get("narrow"):
-            total = min(self.width, max(0.55 * self.width, sum(natural)))
-        widths = _column_widths(natural, minimal, total)
-
-        def laid(row, bold):
-            wrapped = [self.wrap(v, size, widths[i] - 2 * pad_x, bold) for i, v in enumerate(row)]
-            return wrapped, max(len(w) for w in wrapped) * line_h + 2 * pad_y
-
-        head = laid(headers, True) if has_head else None
-        body = [laid(r, False) for r in rows]
-        return size, widths, head, body
-
-    def table(self, block: dict) -> None:
-        size, widths, head, body = self.table_layout(block)
-        pad_x, pad_y = self._TABLE_PAD
-        line_h = size * 1.3
-        has_head = head is not None
-        lefts = [_MARGIN_PT["left"] + sum(widths[:i]) for i in range(len(widths))]
-        if block["keep"]:
-            self.need((head[1] if head else 0.0) + sum(h for _, h in body))
-        else:
-            self.need((head[1] if head else 0.0) + (body[0][1] if body else 0.0) * min(3, len(body)))
-
-        def draw(wrapped, height, *, header, r=None):
-            for i, lines in enumerate(wrapped):
-                first_col_head = not has_head and i == 0
-                fill = _HEADER_FILL if header or first_col_head else None
-                self.rect(lefts[i], self.y, widths[i], height, fill=fill)
-                right = i in block["numeric"] and not first_col_head
-                color = style.HAZARD if r is not None and (r, i) in block["alerts"] else style.TEXT
-                bold = header or first_col_head or color == style.HAZARD
-                for k, line in enumerate(lines):
-                    x = lefts[i] + widths[i] - pad_x if right else lefts[i] + pad_x
-                    self.put(x, self.y + pad_y + k * line_h, line, size, bold=bold, color=color,
-                             ha="right" if right else "left")
-            self.y += height
-
-        if head:
-            draw(*head, header=True)
-        for r, (wrapped, height) in enumerate(body):
-            if height > self.room:
-                self.new_page()
-                if head:
-                    draw(*head, header=True)
-            draw(wrapped, height, header=False, r=r)
-        self.y += 6.0
-
-    def figure(self, block: dict) -> None:
-        import matplotlib.image as mpimg
-
-        image = mpimg.imread(_figure_path(self.folder, block["file"]))
-        h_px, w_px = image.shape[:2]
-        caption = self.wrap(block["caption"], 7.5, self.width)
-        cap_h = len(caption) * 7.5 * 1.3 + 4.0
-        width = self.width
-        height = width * h_px / w_px
-        limit = min(150 * _MM, self.full_height - cap_h)
-        if height > limit:
-            height, width = limit, limit * w_px / h_px
-        self.need(height + cap_h)
-        left = _MARGIN_PT["left"] + (self.width - width) / 2
-        ax = self.fig.add_axes([self._fx(left), self._fy(self.y + height), width / _A4_PT[0], height / _A4_PT[1]])
-        # 'none' hands the pixels to the PDF unresampled, so the figure keeps its full
-        # resolution; rows flipped and drawn from the bottom, so the PDF stores them top
-        # row first, exactly as the PNG does
-        ax.imshow(image[::-1], origin="lower", interpolation="none")
-        ax.set_axis_off()
-        self.y += height + 3.0
-        for line in caption:
-            self.put(_MARGIN_PT["left"], self.y, line, 7.5, color=_MUTED)
-            self.y += 7.5 * 1.3
-        self.y += 6.0
-
-    def bullets(self, items, size: float = 8.6, *, keep: bool = False) -> None:
-        if keep:
-            self.need(sum(len(self.wrap(i, size, self.width - 12.0)) * size * 1.32 + 1.5 for i in items))
-        for item in items:
-            lines = self.wrap(item, size, self.width - 12.0)
-            self.need(len(lines) * size * 1.32)
-            self.put(_MARGIN_PT["left"] + 3.0, self.y, "-", size)
-            for line in lines:
-                self.put(_MARGIN_PT["left"] + 12.0, self.y, line, size)
-                self.y += size * 1.32
-            self.y += 1.5
-        self.y += 3.0
-
-    def signoff(self, fields) -> None:
-        size = 8.6
-        label_w = 0.4 * self.width
-        laid = [(self.wrap(label, size, label_w - 6.0, bold=True), mm * _MM) for label, mm in fields]
-        heights = [max(mm, len(lines) * size * 1.32 + 6.0) for lines, mm in laid]
-        self.need(sum(heights))
-        for (lines, _), h in zip(laid, heights, strict=True):
-            self.rect(_MARGIN_PT["left"], self.y, label_w, h, fill=_HEADER_FILL)
-            self.rect(_MARGIN_PT["left"] + label_w, self.y, self.width - label_w, h)
-            for k, line in enumerate(lines):
-                self.put(_MARGIN_PT["left"] + 3.0, self.y + 3.0 + k * size * 1.32, line, size, bold=True)
-            self.y += h
-        self.y += 6.0
-
-    def estimate(self, block: dict) -> float:
-        """Height (points) of a block, or of what of it must stay with a heading above it."""
-        kind = block["kind"]
-        if kind == "para":
-            size = 7.8 if block["small"] else 9.0
-            return len(self.wrap(block["text"], size, self.width)) * size * 1.32 + 4.0
-        if kind == "signoff":
-            return sum(mm * _MM for _, mm in block["fields"]) + 20.0
-        if kind == "list":
-            lines = sum(len(self.wrap(i, 8.6, self.width - 12.0)) for i in block["items"])
-            return lines * 8.6 * 1.32 + 1.5 * len(block["items"]) if block.get("keep") else 40.0
-        if kind == "figure":
-            return 0.25 * self.full_height
-        _, _, head, body = self.table_layout(block)
-        heights = ([head[1]] if head else []) + [h for _, h in body]
-        return sum(heights if block["keep"] else heights[:4]) + 6.0
-
-    def section(self, section: dict) -> None:
-        blocks = section["blocks"]
-        if any(b["kind"] == "signoff" for b in blocks):
-            # the sign-off is signed as one piece: never split it from its heading
-            self.need(30.0 + sum(self.estimate(b) for b in blocks))
-        first = self.estimate(blocks[0]) if blocks else 0.0
-        if blocks and blocks[0]["kind"] == "subhead" and len(blocks) > 1:
-            first += self.estimate(blocks[1])
-        self.heading(section["title"], keep=min(first, 0.4 * self.full_height))
-        for k, block in enumerate(blocks):
-            if block["kind"] == "subhead":
-                following = self.estimate(blocks[k + 1]) if k + 1 < len(blocks) else 0.0
-                self.heading(block["text"], 9.5, keep=min(following, 0.4 * self.full_height))
-            else:
-                self.block(block)
-
-    def block(self, block: dict) -> None:
-        kind = block["kind"]
-        if kind == "para":
-            color = style.HAZARD if block.get("alert") else _MUTED if block["small"] else style.TEXT
-            self.paragraph(block["text"], 7.8 if block["small"] else 9.0, color=color, bold=bool(block.get("alert")))
-        elif kind == "subhead":
-            self.heading(block["text"], 9.5, keep=60.0)
-        elif kind == "table":
-            self.table(block)
-        elif kind == "figure":
-            self.figure(block)
-        elif kind == "list":
-            self.bullets(block["items"], keep=bool(block.get("keep")))
-        elif kind == "signoff":
-            self.signoff(block["fields"])
-        else:
-            raise ValueError(f"unknown briefing block kind {kind!r}")
-
-    def footers(self, text: str) -> None:
-        n = len(self.pages)
-        for k, fig in enumerate(self.pages, start=1):
-            y = 1.0 - (_A4_PT[1] - 24.0) / _A4_PT[1]
-            fig.text(self._fx(_MARGIN_PT["left"]), y, text, fontsize=7, color="#666666", va="bottom")
-            fig.text(self._fx(_A4_PT[0] - _MARGIN_PT["right"]), y, f"page {k} of {n}", fontsize=7, color="#666666",
-                     ha="right", va="bottom")
-
-
-def _column_widths(natural: list[float], minimal: list[float], total: float) -> list[float]:
-    """Column widths that fill ``total``: natural widths stretched, or squeezed toward the minima."""
-    if sum(natural) <= total:
-        extra = total - sum(natural)
-        return [w + extra * w / sum(natural) for w in natural]
-    if sum(minimal) >= total:
-        return [w * total / sum(minimal) for w in minimal]
-    slack = [n - m for n, m in zip(natural, minimal, strict=True)]
-    share = (total - sum(minimal)) / sum(slack)
-    return [m + s * share for m, s in zip(minimal, slack, strict=True)]
-
-
-def write_pdf(path: Path, folder: Path, content: dict) -> Path:
-    """The same content as the HTML, laid out on A4 pages with matplotlib (no browser needed).
-
-    Parameters
-    ----------
-    path : the PDF to write.
-    folder : where the figures named in ``content`` are.
-    content : from :func:`brief_content`.
-
-    Returns
-    -------
-    Path
-    """
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    from matplotlib.backends.backend_pdf import PdfPages
-
-    # TrueType fonts keep the text searchable and extractable (pdftotext, screen readers)
-    with matplotlib.rc_context({"pdf.fonttype": 42, "font.family": "DejaVu Sans", "text.usetex": False,
-                                "text.parse_math": False}):
-        flow = _Flow(folder)
-        try:
-            flow.paragraph(f"Pre-trial briefing: {content['site']}", 16, bold=True, after=2.0)
-            flow.paragraph(f"Generated by veerwise on {content['created']}. Run folder: {content['run_name']}.", 7.8,
-                           color=_MUTED)
-            flow.box([(None, content["notice"], True)], edge=style.HAZARD, fill=_NOTICE_FILL)
-            for banner in content["banners"]:
-                flow.box([(None, banner, True)], edge=style.DISAGREE, fill=_BANNER_FILL)
-            flow.box(content["glance"], edge="#bbbbbb", fill=_GLANCE_FILL, lw=0.8, title="At a glance")
-            for section in content["sections"]:
-                flow.section(section)
-            flow.footers(f"veerwise briefing - {content['site']} - for simulation and review only")
-            with PdfPages(path, metadata={"Title": f"veerwise briefing - {content['site']}", "Creator": "veerwise",
-                                          "CreationDate": None, "ModDate": None}) as pdf:
-                for fig in flow.pages:
-                    pdf.savefig(fig)
-        finally:
-            for fig in flow.pages:
-                plt.close(fig)
-    return Path(path)

@@ -146,8 +146,11 @@ def cost_only(model: Model) -> Model:
 
 
 def _adjacent(a: TradeoffPoint, b: TradeoffPoint, m: TradeoffPoint, lam: float) -> bool:
-    """Whether the solve ``m`` at the intersection ``lam`` of ``a`` and ``b`` found
-    nothing below their lines (so they are neighbours on the hull)."""
+    """Whether ``a`` and ``b`` are neighbours on the hull.
+
+    They are when the solve ``m`` at the intersection ``lam`` of their lines found
+    nothing below those lines.
+    """
     line = a.lagrangian(lam)
     return m.lagrangian(lam) >= line - HULL_TOLERANCE * max(1.0, abs(line))
 

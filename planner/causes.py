@@ -195,8 +195,11 @@ def _ends_by_zone(model: Model, chain, ends) -> dict[str, float]:
 
 
 def _likeliest_landing(model: Model, greedy: np.ndarray) -> np.ndarray:
-    """Per state, the most probable next cell of its greedy action (-1 when that outcome
-    ends the run); ties go to the outcome listed first, which only labels a move."""
+    """Per state, the most probable next cell of its greedy action.
+
+    -1 when that outcome ends the run; ties go to the outcome listed first, which only
+    labels a move.
+    """
     out = np.full(model.n_states, -1, dtype=np.int64)
     for s in np.flatnonzero(model.active):
         k = s * model.n_actions + int(greedy[s])
@@ -208,8 +211,11 @@ def _likeliest_landing(model: Model, greedy: np.ndarray) -> np.ndarray:
 
 
 def legs_of_route(route) -> np.ndarray:
-    """The leg of each cell of a route's cell path: leg ``j`` runs from waypoint ``j`` to
-    waypoint ``j + 1`` (waypoints are cells of the path; the last cell joins the last leg)."""
+    """The leg of each cell of a route's cell path.
+
+    Leg ``j`` runs from waypoint ``j`` to waypoint ``j + 1`` (waypoints are cells of the
+    path; the last cell joins the last leg).
+    """
     path = np.asarray(route.path_m, dtype=float)
     marks = np.zeros(len(path), dtype=np.int64)
     at = 0

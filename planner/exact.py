@@ -226,8 +226,11 @@ def _state_value(offsets, next_state, prob, reward, event, n_actions, gamma, eps
 
 @numba.njit(cache=True)
 def _value_iteration(offsets, next_state, prob, reward, event, n_actions, gamma, epsilon, tol, max_iter, orders, v):
-    """In-place sweeps until one sweep changes no value by more than ``tol`` and a
-    synchronous Bellman update confirms it; returns (sweeps, residual)."""
+    """Value iteration in place; returns (sweeps, residual).
+
+    Sweeps until one sweep changes no value by more than ``tol`` and a synchronous
+    Bellman update confirms it.
+    """
     n_orders = orders.shape[0]
     residual = np.inf
     sweeps = 0
@@ -535,8 +538,10 @@ def check_tie_tolerance(model: Model, tie_m: float, setting: str = "tie_m") -> N
 
 @numba.njit(cache=True, inline="always")
 def _action_reach(offsets, next_state, prob, event, target, u, k):
-    """P(the run ends with a ``target`` event: 1 the goal, 2 an incident) after taking
-    block ``k`` once, given ``u`` from every next state."""
+    """P(the run ends with a ``target`` event: 1 the goal, 2 an incident) after block ``k``.
+
+    Block ``k`` is taken once, given ``u`` from every next state.
+    """
     r = 0.0
     for j in range(offsets[k], offsets[k + 1]):
         e = event[j]
@@ -588,10 +593,12 @@ def _reach_iteration(offsets, next_state, prob, event, target, n_actions, epsilo
 
 @numba.njit(cache=True)
 def _pick(offsets, next_state, prob, event, target, n_actions, allowed, sense, u, rank, active, current):
-    """Per state, the allowed action of least (``sense`` 1) or greatest (-1) ``R(s, a)``;
-    among equal ones the one of highest ``rank`` (value), then the first. Where
+    """Per state, the allowed action of least (``sense`` 1) or greatest (-1) ``R(s, a)``.
+
+    Among equal ones the one of highest ``rank`` (value), then the first. Where
     ``current`` (a policy, or -1s) is already equally safe it is kept, so that policy
-    improvement never swaps between actions that differ only by round-off."""
+    improvement never swaps between actions that differ only by round-off.
+    """
     n_s = active.size
     out = np.zeros(n_s, np.int64)
     r = np.empty(n_actions, np.float64)
@@ -747,10 +754,12 @@ class Convergence:
     verdict: RiskVerdict | None = None
 
     def judged_by(self, verdict: RiskVerdict, *, used: str = "", advice: str = "") -> Convergence:
-        """This report with the risk verdict as its verdict: converged only when the
-        risk agrees; the action agreement stays as a diagnostic. ``used`` says what
-        training took (e.g. "2.6e+06 updates"), ``advice`` what to try when the verdict
-        fails."""
+        """The report with the risk verdict as its verdict.
+
+        Converged only when the risk agrees; the action agreement stays as a
+        diagnostic. ``used`` says what training took (e.g. "2.6e+06 updates"),
+        ``advice`` what to try when the verdict fails.
+        """
         message = f"{verdict.message}; {100 * self.agreement:.0f}% of visited states agree with the reference"
         if used:
             message += f"; {used}"

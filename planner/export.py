@@ -398,8 +398,11 @@ def output_format(path, allowed, *, fmt: str | None = None, option: str = "-o/--
 
 def check_output(path, allowed, *, fmt: str | None = None, force: bool = False,
                  option: str = "-o/--output") -> str:
-    """Refuse an output file before any work: a wrong extension, a folder, a missing parent
-    folder, or a file already there without ``force``. Returns the format."""
+    """Refuse an output file before any work, and return its format.
+
+    Refused: a wrong extension, a folder, a missing parent folder, or a file already
+    there without ``force``.
+    """
     found = output_format(path, allowed, fmt=fmt, option=option)
     target = Path(path)
     if target.is_dir():

@@ -114,14 +114,17 @@ class Grid:
 
     @property
     def shape(self) -> tuple[int, int]:
+        """``(n_rows, n_cols)``."""
         return tuple(self.label.shape)
 
     @property
     def n_cells(self) -> int:
+        """Number of cells, inside the boundary or not."""
         return int(self.label.size)
 
     @property
     def start_index(self) -> int:
+        """State index of the start cell."""
         return int(np.ravel_multi_index(self.start, self.shape))
 
     def centres(self) -> tuple[np.ndarray, np.ndarray]:
@@ -210,7 +213,7 @@ def axis_distribution(mean: float, sd: float) -> tuple[np.ndarray, np.ndarray]:
     Examples
     --------
     >>> offsets, probs = axis_distribution(0.25, 0.0)
-    >>> offsets.tolist(), [round(p, 2) for p in probs]
+    >>> offsets.tolist(), [round(float(p), 2) for p in probs]
     ([0, 1], [0.75, 0.25])
     """
     k = int(round(mean))
@@ -561,8 +564,10 @@ def cost_to_goal(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_
 
 
 def descend(grid: Grid, n_actions: int = 8, *, hazard_penalty_m=None, unit_cost: bool = False) -> np.ndarray:
-    """The deterministic cheapest-path policy: in each cell, the move that goes down
-    :func:`cost_to_goal` fastest (ties to the lowest action index; 0 where no move helps).
+    """The deterministic cheapest-path policy.
+
+    In each cell, the move that goes down :func:`cost_to_goal` fastest (ties to the
+    lowest action index; 0 where no move helps).
 
     Returns int64 ``(n_cells,)`` actions, usable wherever a greedy policy is.
     """

@@ -198,10 +198,12 @@ class Learned:
 
     @property
     def n_seeds(self) -> int:
+        """Independent training runs."""
         return int(self.q.shape[0])
 
     @property
     def steps_per_second(self) -> float:
+        """Training moves per second of wall-clock time, all seeds together."""
         return self.steps_total / self.seconds if self.seconds > 0 else float("inf")
 
 
@@ -899,9 +901,10 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
 
 @numba.njit(cache=True, nogil=True)
 def _sweep_seed(offsets, table, n_actions, q, method, epsilon, gamma, decay, order, done, n_sweeps, rng_state):
-    """Sweeps ``done + 1`` to ``done + n_sweeps`` over the (state, action) blocks in
-    ``order``: one transition sampled from the model per block and sweep, one TD update
-    of ``q`` (flat, in place).
+    """Sweeps ``done + 1`` to ``done + n_sweeps`` over the (state, action) blocks in ``order``.
+
+    One transition sampled from the model per block and sweep, one TD update of ``q``
+    (flat, in place).
 
     Q-learning (``method`` 1) bootstraps on the best next value; SARSA (0) on the value
     of a next action drawn from the current epsilon-greedy policy. Every block is

@@ -127,14 +127,17 @@ class Model:
 
     @property
     def n_states(self) -> int:
+        """Number of states (one per cell)."""
         return int(self.shape[0] * self.shape[1])
 
     @property
     def n_outcomes(self) -> int:
+        """Number of outcomes over all state-action pairs."""
         return int(self.prob.size)
 
     @property
     def nbytes(self) -> int:
+        """Memory held by the outcome arrays, bytes."""
         arrays = (self.offsets, self.next_state, self.prob, self.reward, self.event, self.crossed)
         return int(sum(a.nbytes for a in arrays))
 
@@ -455,8 +458,10 @@ PRACTICALLY_FOREVER_MOVES = 1e9
 
 
 def reaching(transient, targets: np.ndarray) -> np.ndarray:
-    """States from which some state in ``targets`` can be reached through ``transient``
-    (the targets included): one walk of the reversed graph from a super-source."""
+    """States from which some state in ``targets`` can be reached through ``transient``.
+
+    The targets are included; one walk of the reversed graph from a super-source.
+    """
     from scipy.sparse import bmat, csr_matrix
     from scipy.sparse.csgraph import breadth_first_order
 

@@ -1,5 +1,7 @@
-"""Names are data: the one place that says what a zone, start, goal or site name may be,
-and how a name is written safely into each medium.
+"""Names are data: what a zone, start, goal or site name may be, and how it is written.
+
+The one place that says what a name may be, and how a name is written safely into
+each medium.
 
 A name comes from a site file someone else drew; it reaches terminals, CSV files that
 spreadsheets open, HTML, figures and file and column names. So it is checked once, on
@@ -42,13 +44,13 @@ def quoted(text: str, limit: int = 40) -> str:
 
 
 def clean_name(raw, where: str) -> str:
-    """The name ``raw`` NFC-normalised, or a :class:`SiteError` naming ``where`` and the rule.
+    r"""The name ``raw`` NFC-normalised, or a :class:`SiteError` naming ``where`` and the rule.
 
     Examples
     --------
     >>> clean_name("North pond", "feature 3")
     'North pond'
-    >>> clean_name("Cafe\\u0301 corner", "feature 4") == "Caf\\u00e9 corner"
+    >>> clean_name("Cafe\u0301 corner", "feature 4") == "Caf\u00e9 corner"
     True
     """
     if not isinstance(raw, str):
@@ -119,8 +121,11 @@ def csv_cell(text: str) -> str:
 
 
 def for_terminal(text: str) -> str:
-    """``text`` with every non-printable character (escape sequences, line breaks inside a
-    line, direction overrides) shown as a ``\\x``/``\\u`` escape, so one line stays one line."""
+    r"""``text`` with every non-printable character shown as an escape.
+
+    Escape sequences, line breaks inside a line and direction overrides are shown as a
+    ``\x``/``\u`` escape, so one line stays one line.
+    """
     if text.isprintable():
         return text
     return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in text)

@@ -46,8 +46,10 @@ def _significant(x: float, digits: int = DIGITS) -> str:
 
 
 def percent(p) -> str:
-    """A probability as a percentage: two significant figures up to 50%, above that as many
-    decimals as show what is missing to 100%.
+    """A probability as a percentage.
+
+    Two significant figures up to 50%, above that as many decimals as show what is
+    missing to 100%.
 
     Examples
     --------

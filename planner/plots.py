@@ -26,8 +26,10 @@ from planner.grid import OUTSIDE, Grid  # noqa: E402
 
 
 def _styled(draw):
-    """Draw with our settings in a private matplotlib context (nothing global changes,
-    so a figure never depends on what the process drew before)."""
+    """Draw with our settings in a private matplotlib context.
+
+    Nothing global changes, so a figure never depends on what the process drew before.
+    """
 
     @functools.wraps(draw)
     def wrapper(*args, **kwargs):
@@ -51,8 +53,10 @@ Z_CELLS, Z_HATCH, Z_OUTLINE, Z_ROUTE, Z_DRIFT, Z_MARKER, Z_LABEL, Z_FURNITURE = 
 
 
 def _new_axes(grid: Grid, title: str, width_in: float = style.MAP_WIDTH_IN, n_legend_rows: int = 3):
-    """A map axes whose figure has the map's own aspect, so the map fills its canvas,
-    with room below for a legend of ``n_legend_rows`` rows."""
+    """A map axes whose figure has the map's own aspect, so the map fills its canvas.
+
+    There is room below for a legend of ``n_legend_rows`` rows.
+    """
     n_rows, n_cols = grid.shape
     aspect = n_rows / max(n_cols, 1)
     map_h = (width_in - 0.8) * aspect
@@ -131,8 +135,10 @@ def _hatch_cells(ax, grid: Grid, mask: np.ndarray, *, face: str | None, hatch_co
 
 
 def draw_site(ax, grid: Grid, site=None, *, drift_arrows: bool = True, cells: bool = True):
-    """Draw the labelled grid (run-ending hazards hatched), zone outlines, buffers, drift
-    arrows, start and goal (zone labels come last, from :func:`place_labels`)."""
+    """Draw the labelled grid, zone outlines, buffers, drift arrows, start and goal.
+
+    Run-ending hazards are hatched; zone labels come last, from :func:`place_labels`.
+    """
     if cells:
         cat, cmap = _category_image(grid)
         ax.imshow(cat, origin="lower", extent=_extent(grid), cmap=cmap, vmin=0, vmax=5, interpolation="nearest",
@@ -219,9 +225,12 @@ _LEADER_OFFSETS = [(dx * r, dy * r) for r in (26, 44) for dx, dy in
 
 
 def place_labels(ax, items) -> list[str]:
-    """Put each ``(name, geometry)`` label where it overlaps no other label, marker or the
-    axes edge: inside its zone if it fits, else beside it with a leader line; a label
-    that fits nowhere is left out. Returns the names left out (the caller notes them)."""
+    """Put each ``(name, geometry)`` label where it overlaps nothing else.
+
+    A label overlaps no other label, marker or the axes edge: it goes inside its zone
+    if it fits, else beside it with a leader line; a label that fits nowhere is left
+    out. Returns the names left out (the caller notes them).
+    """
     fig = ax.figure
     renderer = fig.canvas.get_renderer()
     axes_box = ax.get_window_extent(renderer)
@@ -270,8 +279,10 @@ def place_labels(ax, items) -> list[str]:
 
 
 def _drift_arrows(ax, grid: Grid):
-    """Arrows on a coarse lattice of drift cells, drawn above the routes: direction shows
-    the mean push, length its strength relative to the strongest zone."""
+    """Arrows on a coarse lattice of drift cells, drawn above the routes.
+
+    Direction shows the mean push, length its strength relative to the strongest zone.
+    """
     from matplotlib.patches import FancyArrowPatch
 
     n_rows, n_cols = grid.shape
@@ -395,8 +406,10 @@ def figure_grid(site, grid: Grid):
 
 @_styled
 def plot_grid(site, grid: Grid, path) -> Path:
-    """The labelled grid of a site: zones, buffers, drift arrows, start, goal, legend,
-    scale bar and north arrow."""
+    """The labelled grid of a site.
+
+    Zones, buffers, drift arrows, start, goal, legend, scale bar and north arrow.
+    """
     return _save(figure_grid(site, grid), path)
 
 
@@ -415,8 +428,11 @@ def _moving_average(values: np.ndarray, window: int) -> np.ndarray:
 
 @_styled
 def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Path:
-    """Return per episode (moving average; mean and min-max band over seeds) for both
-    learners, and hazard incidents per episode during training."""
+    """Learning curves of both learners.
+
+    Return per episode (moving average; mean and min-max band over seeds), and hazard
+    incidents per episode during training.
+    """
     episodic = {n: r for n, r in learned.items() if r.settings.schedule == "episodes"}
     swept = {n: r for n, r in learned.items() if r.settings.schedule == "sweeps"}
     rows = (2 if episodic else 0) + (1 if swept else 0)
@@ -458,8 +474,11 @@ def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Pat
 
 
 def _sweep_panel(ax, swept: dict, title: str | None) -> None:
-    """Learners trained in sweeps: the consensus policy's exact P(incident) at each check
-    of the stopping rule, against the updates made (all seeds together)."""
+    """Learners trained in sweeps.
+
+    The consensus policy's exact P(incident) at each check of the stopping rule, against
+    the updates made (all seeds together).
+    """
     for name, result in swept.items():
         look = style.POLICY[name]
         p = np.asarray(result.check_p_incident, dtype=float)
@@ -543,8 +562,10 @@ def _probability_ticks(axis_values) -> list[str]:
 
 @_styled
 def plot_risk_maps(site, grid: Grid, maps: dict, routes: dict, path, *, noise: float) -> Path:
-    """P(incident) if the vehicle were in each cell, for each policy, on a log colour scale
-    (see :func:`figure_risk_maps`)."""
+    """P(incident) if the vehicle were in each cell, for each policy, on a log colour scale.
+
+    See :func:`figure_risk_maps`.
+    """
     return _save(figure_risk_maps(site, grid, maps, routes, noise=noise), path)
 
 
@@ -624,8 +645,10 @@ def plot_sensitivity(rows, path, *, title: str = "Sensitivity of the incident pr
 
 @_styled
 def figure_sensitivity(rows, *, title: str = "Sensitivity of the incident probability"):
-    """P(incident) against execution noise: the learned policies in one panel, the exact
-    references in their own, one line per policy and drift scale, labelled at its end.
+    """P(incident) against execution noise, learned policies and exact references apart.
+
+    The learned policies in one panel, the exact references in their own, one line per
+    policy and drift scale, labelled at its end.
 
     Values below the notation's floor (1 in 10^12) are drawn on a floor line of their
     own with open markers, never as if they were the floor value.

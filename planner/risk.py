@@ -8,7 +8,9 @@ the run with each event (:class:`Absorption`, :func:`risk_map`); :func:`evaluate
 turns the start cell's figures into a :class:`RiskRow`: P(goal), P(incident) by zone
 and ``boundary``, P(never absorbed), expected moves and metres given success, the
 same within a step budget, P(at least one entry) for zones that do not end the run,
-and a seeded Monte Carlo estimate with a Wilson 95% interval beside each probability.
+and a seeded Monte Carlo estimate beside each probability: shown with its Wilson 95%
+score interval, and checked against the exact figure with the Clopper-Pearson (exact
+binomial) interval at the table's level (:meth:`McEstimate.contains`).
 :func:`sensitivity` repeats that over noise levels and drift scales, and
 :func:`format_table` prints the result for people (text, markdown) and programs (csv,
 json). :func:`clearance_m` measures a route's clearance to the true hazard polygons.
@@ -71,7 +73,10 @@ FORMATS = ("text", "csv", "json", "markdown")
 
 @dataclass(frozen=True)
 class McEstimate:
-    """A Monte Carlo estimate of one probability with its Wilson 95% interval.
+    """A Monte Carlo estimate of one probability with its Wilson 95% interval (for display).
+
+    Whether an exact figure agrees with the estimate is decided by :meth:`contains`
+    with the Clopper-Pearson interval, not with ``lo`` and ``hi``.
 
     Attributes
     ----------
@@ -131,9 +136,10 @@ class RiskRow:
     mc : Monte Carlo estimates, keyed ``"goal"``, ``"incident"``, ``"never"``,
         ``"event:<name>"``, ``"entry:<zone>"`` and, with a budget, ``"goal_within_budget"``,
         ``"incident_within_budget"`` and ``"timeout"``.
-    mc_disagrees : keys of ``mc`` whose exact figure falls outside its Wilson interval
-        at ``z = mc_flag_z`` (by default the 95% interval shown).
-    mc_flag_z : the normal quantile of the interval behind ``mc_disagrees``.
+    mc_disagrees : keys of ``mc`` whose exact figure falls outside the Clopper-Pearson
+        interval of its count at ``z = mc_flag_z`` (:meth:`McEstimate.contains`).
+    mc_flag_z : the normal quantile of the Clopper-Pearson interval behind
+        ``mc_disagrees`` (95% by default; a table uses its Bonferroni level).
     verdict : what the policy is: ``"converged"`` or ``"not converged"`` for a learned
         policy (its risk verdict), ``"exact reference (ties by safety)"`` for a
         reference, ``""`` when not judged (e.g. ``veerwise risk`` on given policies).
@@ -477,8 +483,8 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
     hazards : the grid's ``HazardInfo`` tuple, to say which hazards end the run; by
         default read off the table (a zone ever crossed without ending the run does
         not end it).
-    flag_z : normal quantile of the Wilson interval an exact figure must fall in not to
-        be flagged (default: the 95% interval shown). A table makes many checks, and
+    flag_z : normal quantile of the Clopper-Pearson interval an exact figure must fall
+        in not to be flagged (default: 95%). A table makes many checks, and
         about 1 in 20 misses a 95% interval by chance; a larger ``z`` (e.g. a
         Bonferroni level for the whole table) makes a flag evidence of a real
         disagreement.
@@ -553,7 +559,7 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
                 drift_scales: Sequence[float] = DEFAULT_DRIFT_SCALES, budget: int | None = None,
                 rollouts: int = 0, seed: np.random.SeedSequence | int | None = None,
                 max_rollout_steps: int = DEFAULT_MAX_ROLLOUT_STEPS, flag_z: float = Z95,
-                model: Model | None = None) -> list[RiskRow]:
+                model: Model | None = None, progress=None) -> list[RiskRow]:
     """The risk table over drift scales, policies and noise levels.
 
     The model is rebuilt once per drift scale (``dataclasses.replace(dynamics,
@@ -573,6 +579,7 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
     seed : root of the rollouts' randomness; required when ``rollouts > 0``.
     model : an already built model of ``grid``; reused for the drift scale whose
         dynamics it was built with instead of being built again.
+    progress : optional ``callable(done_rows, total_rows)``, called after each row.
 
     Returns
     -------
@@ -599,6 +606,8 @@ def sensitivity(grid, dynamics, policies: Mapping[str, np.ndarray], *, noises: S
                                      rng=rng, max_rollout_steps=max_rollout_steps, hazards=grid.hazards,
                                      flag_z=flag_z))
                 k += 1
+                if progress is not None:
+                    progress(k, len(drift_scales) * len(policies) * len(noises))
     return rows
 
 
@@ -627,9 +636,11 @@ def table_flag_z(n_checks: int, level: float = 0.95) -> float:
 
 
 def exact_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
-    """Clopper-Pearson interval for ``count`` events in ``n`` trials at the two-sided
-    level of the normal quantile ``z`` (Clopper, C. J. and Pearson, E. S. (1934),
-    Biometrika 26(4), 404-413)."""
+    """Clopper-Pearson interval for ``count`` events in ``n`` trials.
+
+    At the two-sided level of the normal quantile ``z`` (Clopper, C. J. and Pearson,
+    E. S. (1934), Biometrika 26(4), 404-413).
+    """
     from scipy.stats import beta, norm
 
     if n <= 0:
@@ -903,8 +914,11 @@ def _mark(row: RiskRow, key: str, text: str) -> str:
 
 
 def _format_text(rows: list[RiskRow], details: bool = False) -> str:
-    """One line per row; with ``details`` each row's incidents by zone, entries, budget
-    figures and Monte Carlo estimates follow it, indented."""
+    """The text table, one line per row.
+
+    With ``details`` each row's incidents by zone, entries, budget figures and Monte
+    Carlo estimates follow it, indented.
+    """
     with_never = any(r.p_never > 0 for r in rows)
     with_mc = any(r.mc for r in rows)
     head = ["policy", "noise", "drift", "P(incident)", "P(goal)"] + (["P(never)"] if with_never else [])
@@ -969,12 +983,12 @@ def _row_details(r: RiskRow) -> list[str]:
 def _footnote(rows: list[RiskRow], width: int | None) -> list[str]:
     levels = sorted({r.mc_flag_z for r in rows if r.mc_disagrees})
     if levels == [Z95]:
-        text = ("! exact figure outside its Monte Carlo 95% (Wilson) interval. About 1 check in 20 misses "
-                "by chance: one mark is weak evidence, many marks are strong.")
+        text = ("! exact figure outside the 95% Clopper-Pearson interval of its Monte Carlo count. About 1 "
+                "check in 20 misses by chance: one mark is weak evidence, many marks are strong.")
     else:
         z = ", ".join(f"{v:.2f}" for v in levels)
-        text = (f"! exact figure outside its Monte Carlo Wilson interval at z = {z}: the level that keeps the "
-                "whole table's checks at 95% together (the intervals shown are 95% each).")
+        text = (f"! exact figure outside the Clopper-Pearson interval of its Monte Carlo count at z = {z}: the "
+                "level that keeps the whole table's checks at 95% together (the intervals shown are Wilson 95%).")
     return [text] if width is None else textwrap.wrap(text, width, subsequent_indent="  ")
 
 

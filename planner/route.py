@@ -34,10 +34,12 @@ class NominalPath:
 
     @property
     def reached_goal(self) -> bool:
+        """Whether the nominal path ends at the goal."""
         return self.end_event == EVENT_GOAL
 
     @property
     def n_moves(self) -> int:
+        """Moves along the nominal path, the ending move included."""
         return int(self.states.size) - 1 + (1 if self.end_event != -1 else 0)
 
 

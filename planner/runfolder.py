@@ -571,6 +571,7 @@ def versions() -> dict:
 
 
 def sha256_file(path) -> str:
+    """SHA-256 of a file's bytes, as hex."""
     h = hashlib.sha256()
     with open(path, "rb") as f:
         for chunk in iter(lambda: f.read(1 << 20), b""):
@@ -581,30 +582,76 @@ def sha256_file(path) -> str:
 # ----------------------------------------------------------------------------- the pipeline
 
 
-@dataclass
-class Progress:
-    """Where ``plan`` reports what it is doing (the CLI passes a printer)."""
+def _ignore(*_args) -> None:
+    """A progress report nobody watches."""
 
-    say: object = None
-    started: float = field(default_factory=time.perf_counter)
+
+class Progress:
+    """What a plan is doing and how far it is, for a person watching a terminal.
+
+    With a ``rich.console.Console`` it draws one line per stage (what, a bar, the share
+    done, the time taken) and prints notes above them; without one (``-q``, or output
+    that is not a terminal) every call does nothing, so scripts and logs get only the
+    command's own output. Use it as a context manager around the work it reports on.
+
+    Parameters
+    ----------
+    console : rich.console.Console or None
+        Where to draw; None for no display.
+    """
+
+    def __init__(self, console=None):
+        self.started = time.perf_counter()
+        self._bars = None
+        if console is not None:
+            from rich.progress import BarColumn, TaskProgressColumn, TextColumn, TimeElapsedColumn
+            from rich.progress import Progress as Bars
+
+            # every line starts with the time into the run at which its stage began
+            self._bars = Bars(TextColumn("[{task.fields[at]:6.1f} s]", markup=False),
+                              TextColumn("{task.description}", markup=False), BarColumn(bar_width=24),
+                              TaskProgressColumn(), TimeElapsedColumn(), console=console, redirect_stdout=False,
+                              redirect_stderr=False)
+
+    def __enter__(self) -> Progress:
+        if self._bars is not None:
+            self._bars.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self._bars is not None:
+            self._bars.stop()
+
+    def elapsed_s(self) -> float:
+        """Seconds since the run began."""
+        return time.perf_counter() - self.started
 
     def __call__(self, message: str) -> None:
-        if self.say is not None:
-            self.say(f"[{time.perf_counter() - self.started:6.1f} s] {message}")
+        """A note above the bars: a fact worth seeing while the run goes on."""
+        if self._bars is not None:
+            self._bars.console.print(f"[{self.elapsed_s():6.1f} s] {message}", markup=False, highlight=False,
+                                     soft_wrap=True)
 
-    def fraction(self, what: str):
-        """A ``callable(done, total)`` that reports every further tenth of the work."""
-        if self.say is None:
-            return None
-        shown = [0]
+    @contextlib.contextmanager
+    def task(self, what: str, total: int | None = None):
+        """A stage of the run, shown while it works; yields ``report(done, total=None)``.
 
-        def report(done, total):
-            tenth = int(10 * done / total) if total else 10
-            if tenth > shown[0]:
-                shown[0] = tenth
-                self(f"  {what}: {10 * tenth}%")
+        A stage without a ``total`` shows a moving bar until it ends. A stage that ends
+        with an exception is left where it stopped.
+        """
+        if self._bars is None:
+            yield _ignore
+            return
+        bars = self._bars
+        task_id = bars.add_task(what, total=total, at=self.elapsed_s())
 
-        return report
+        def report(done, new_total=None) -> None:
+            bars.update(task_id, completed=done, total=new_total if new_total is not None else bars.tasks[
+                task_id].total)
+
+        yield report
+        done = bars.tasks[task_id].total or 1
+        bars.update(task_id, total=done, completed=done)
 
 
 @dataclass(frozen=True)
@@ -678,7 +725,8 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     check_drift_scales(grid, "--plan-drift", (settings.dynamics.drift_scale,))
     check_drift_scales(grid, "--table-drifts", settings.drift_scales)
     check_plan_size(grid, settings)
-    model = build_model(grid, settings.dynamics)
+    with progress.task("building the model"):
+        model = build_model(grid, settings.dynamics)
     timings["model_s"] = time.perf_counter() - t
     progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
 
@@ -690,14 +738,19 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     t = time.perf_counter()
     # The exact references come first: the sweeps schedule stops on the risk verdict
     # against them.
-    progress("solving the exact references (value iteration)")
-    exact = {"cautious": on_policy_q(model, eps), "shortest": optimal_q(model)}
+    with progress.task("exact references (value iteration)", 2) as report:
+        exact = {"cautious": on_policy_q(model, eps)}
+        report(1)
+        exact["shortest"] = optimal_q(model)
     # Ties by safety: among equally good actions, the one that minimises P(incident) at
     # the run's noise; the riskiest tie-break gives the other end of the range.
     check_tie_tolerance(model, settings.tie_m, "--tie-m")
-    progress("breaking ties by safety (exact references)")
-    references = {name: safest_among(model, equally_good(exact[name].q, settings.tie_m), eps, value=exact[name].q)
-                  for name in POLICIES}
+    references = {}
+    with progress.task("ties broken by safety (exact references)", len(POLICIES)) as report:
+        for k, name in enumerate(POLICIES):
+            references[name] = safest_among(model, equally_good(exact[name].q, settings.tie_m), eps,
+                                            value=exact[name].q)
+            report(k + 1)
     timings["exact_s"] = time.perf_counter() - t
     cheapest_m = float(-model.reward[model.event == 0].max())
     # The seeds' spread may widen a learned tie set by at most LEARNED_SLACK_SHARE of the
@@ -728,8 +781,9 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         budget = (f"up to {how.max_sweeps:,} sweeps, stopping when its risk verdict passes"
                   if how.schedule == "sweeps" else f"{how.episodes:,} episodes")
         progress(f"training {label} ({name}): {how.n_seeds} seeds x {budget}")
-        learned[name] = train(model, method, how, seed=seed, cost_to_go=to_go, progress=progress.fraction(label),
-                              stop_rule=stop_rule(name) if how.schedule == "sweeps" else None)
+        with progress.task(f"{label} ({name})") as report:
+            learned[name] = train(model, method, how, seed=seed, cost_to_go=to_go, progress=report,
+                                  stop_rule=stop_rule(name) if how.schedule == "sweeps" else None)
     timings["learn_s"] = time.perf_counter() - t
     greedy = {name: delivered(learned[name].q) for name in POLICIES}
     seed_greedy = {name: [safest_among(model, equally_good(q, settings.tie_m), eps, value=q, riskiest=False).greedy
@@ -805,8 +859,11 @@ def _mc_halfwidth(row) -> float:
 
 
 def _with_verdicts(rows, convergence, references, eps: float, base: float) -> list:
-    """Risk rows that say what each policy is: a learned one with its verdict, or an
-    exact reference with its tie range at the run's noise."""
+    """Risk rows that say what each policy is.
+
+    A learned one with its verdict, or an exact reference with its tie range at the
+    run's noise.
+    """
     out = []
     by_reference = {ref: name for name, ref in REFERENCE_ROWS.items()}
     for row in rows:
@@ -836,12 +893,14 @@ def _risk(site, grid, settings, model, greedy, references, seed, progress) -> li
         "exact on-policy": references["cautious"].greedy,
         "exact optimal": references["shortest"].greedy,
     }
+    n_rows = len(policies) * len(settings.noises) * len(settings.drift_scales)
     progress(f"risk table: {len(policies)} policies x {len(settings.noises)} noise levels x "
              f"{len(settings.drift_scales)} drift scales, {settings.rollouts:,} rollouts per row")
-    return sensitivity(grid, settings.dynamics, policies, noises=settings.noises,
-                       drift_scales=settings.drift_scales, budget=settings.budget, rollouts=settings.rollouts,
-                       seed=seed, model=model, flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales,
-                                                 settings.budget))
+    with progress.task("risk table (rows)", n_rows) as report:
+        return sensitivity(grid, settings.dynamics, policies, noises=settings.noises,
+                           drift_scales=settings.drift_scales, budget=settings.budget, rollouts=settings.rollouts,
+                           seed=seed, model=model, progress=report,
+                           flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales, settings.budget))
 
 
 def table_z(grid, n_policies: int, noises, drift_scales, budget) -> float:
@@ -894,41 +953,73 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     _save_npz(folder / "training.npz", {
         f"{name}_{key}": value for name in POLICIES for key, value in learning_curves(result.learned[name]).items()
     })
-    progress("writing waypoint files")
+    progress("writing waypoint files and the risk table")
     for name in POLICIES:
         write_geojson(result.routes[name], folder / f"routes-{name}.geojson", site=result.site, alt_m=settings.alt_m)
         write_csv(result.routes[name], folder / f"waypoints-{name}.csv", alt_m=settings.alt_m)
     (folder / "risk.csv").write_text(format_table(result.risk_rows, "csv"))
     (folder / "risk.json").write_text(format_table(result.risk_rows, "json"))
-    progress("drawing figures")
-    plots.plot_learning(result.learned, folder / "learning.png",
-                        title=f"{result.site.name} - learning curves")
-    plots.plot_routes(result.site, result.grid, result.routes, folder / "routes.png")
     noise = settings.learn.epsilon
-    maps = {}
-    from planner.model import epsilon_greedy
+    with progress.task("figures", 4) as report:
+        plots.plot_learning(result.learned, folder / "learning.png",
+                            title=f"{result.site.name} - learning curves")
+        report(1)
+        plots.plot_routes(result.site, result.grid, result.routes, folder / "routes.png")
+        report(2)
+        maps = {}
+        from planner.model import epsilon_greedy
 
-    for name in POLICIES:
-        probs = epsilon_greedy(result.greedy[name], result.model.n_actions, noise)
-        maps[name] = risk_map(result.model, probs)
-    plots.plot_risk_maps(result.site, result.grid, maps, result.routes, folder / "riskmap.png", noise=noise)
-    plots.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
-                           title=f"{result.site.name} - incident probability under worse execution and wind")
+        for name in POLICIES:
+            probs = epsilon_greedy(result.greedy[name], result.model.n_actions, noise)
+            maps[name] = risk_map(result.model, probs)
+        plots.plot_risk_maps(result.site, result.grid, maps, result.routes, folder / "riskmap.png", noise=noise)
+        report(3)
+        plots.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
+                               title=f"{result.site.name} - incident probability under worse execution and wind")
     manifest = build_manifest(result, settings, site_path, folder)
-    progress("writing the briefing")
-    write_brief(BriefInputs(folder=folder, site=result.site, grid=result.grid, routes=result.routes,
-                            risk_rows=result.risk_rows, settings=settings, manifest=manifest, run_name=run_name),
-                folder / "brief.html", folder / "brief.pdf")
+    # the run id covers every file but the briefing, which prints it
+    manifest["files"] = file_hashes(folder)
+    manifest["run_id"] = run_identity(manifest)
+    with progress.task("briefing (HTML, then PDF)"):
+        write_brief(BriefInputs(folder=folder, site=result.site, grid=result.grid, routes=result.routes,
+                                risk_rows=result.risk_rows, settings=settings, manifest=manifest, run_name=run_name),
+                    folder / "brief.html", folder / "brief.pdf")
     write_manifest(folder, manifest)
+
+
+#: Files the run id does not cover: the briefing prints the id, so it cannot be hashed into it.
+RUN_ID_OMITS_FILES = ("brief.html", "brief.pdf")
+#: Manifest entries the run id does not cover: when and how fast a run was made, not what it holds.
+RUN_ID_OMITS_KEYS = ("run_id", "created_utc", "timings_s")
+
+
+def run_identity(manifest: dict) -> str:
+    """The run id: 12 hex digits of SHA-256 over the manifest as canonical JSON.
+
+    The manifest is hashed without ``run_id`` itself, the clock entries
+    (``created_utc``, ``timings_s``) and the hashes of ``brief.html`` / ``brief.pdf``
+    (which print the id), so it is known when the briefing is written, covers the
+    inputs, settings, seeds, versions and the hash of every result file, and is the
+    same for two runs that hold the same results. ``veerwise brief`` re-renders a
+    briefing with the same id.
+    """
+    kept = {k: v for k, v in manifest.items() if k not in RUN_ID_OMITS_KEYS}
+    kept["files"] = {k: v for k, v in manifest.get("files", {}).items() if k not in RUN_ID_OMITS_FILES}
+    canonical = json.dumps(kept, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    return hashlib.sha256(canonical.encode("ascii")).hexdigest()[:12]
+
+
+def file_hashes(folder: Path) -> dict:
+    """SHA-256 of every file of a run folder (not the manifest, not hidden files), by name."""
+    return {p.name: sha256_file(p) for p in sorted(Path(folder).iterdir())
+            if p.is_file() and not p.is_symlink() and p.name != "manifest.json" and not p.name.startswith(".")}
 
 
 def write_manifest(folder: Path, manifest: dict) -> None:
     """Record the hash of every file in the folder, then write ``manifest.json`` atomically."""
     from planner.export import atomic_output
 
-    manifest["files"] = {p.name: sha256_file(p) for p in sorted(folder.iterdir())
-                         if p.is_file() and not p.is_symlink() and p.name != "manifest.json"
-                         and not p.name.startswith(".")}
+    manifest["files"] = file_hashes(folder)
     with atomic_output(folder / "manifest.json", guard=False) as tmp:
         tmp.write_text(json.dumps(manifest, indent=2, sort_keys=True) + "\n")
 
@@ -1175,8 +1266,11 @@ def read_member(folder: Path, name: str, *, limit: int = MAX_MEMBER_BYTES) -> by
 
 @dataclass(frozen=True)
 class Run:
-    """A run folder read back and checked: its manifest, settings, policies, and the bytes
-    of every file the manifest lists (read once, matching their hashes)."""
+    """A run folder read back and checked.
+
+    Its manifest, settings, policies, and the bytes of every file the manifest lists
+    (read once, matching their hashes).
+    """
 
     folder: Path
     manifest: dict
@@ -1186,6 +1280,7 @@ class Run:
 
     @property
     def site_path(self) -> Path:
+        """The run's own copy of its site file."""
         return self.folder / "site.geojson"
 
 
@@ -1262,8 +1357,10 @@ def _load_policies(path: Path, data: bytes) -> dict:
 
 
 def rebuild_grid(run: Run):
-    """Site and grid of a run, rebuilt from its site copy and recorded settings, with the
-    run's policy arrays checked against the grid (shape and action range)."""
+    """Site and grid of a run, rebuilt from its site copy and recorded settings.
+
+    The run's policy arrays are checked against the grid (shape and action range).
+    """
     from planner.errors import BudgetError
     from planner.grid import moves_for, rasterise
     from planner.site import site_from_bytes
@@ -1314,8 +1411,11 @@ RISK_POLICIES = {
 
 
 def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, seed=None,
-             policies=("cautious", "shortest")) -> list:
-    """The risk table of a run's policies at the given settings (model rebuilt per drift scale)."""
+             policies=("cautious", "shortest"), progress=None) -> list:
+    """The risk table of a run's policies at the given settings (model rebuilt per drift scale).
+
+    ``progress``, when given, is called as ``progress(done_rows, total_rows)`` after each row.
+    """
     from planner.risk import sensitivity
 
     check_seed(seed, "--rollout-seed")
@@ -1328,12 +1428,15 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, s
     root = np.random.SeedSequence(seed) if seed is not None else np.random.SeedSequence(
         int(run.manifest["seeds"]["entropy"]), spawn_key=(2,))
     return sensitivity(grid, run.settings.dynamics, chosen, noises=noises, drift_scales=drift_scales, budget=budget,
-                       rollouts=rollouts, seed=root,
+                       rollouts=rollouts, seed=root, progress=progress,
                        flag_z=table_z(grid, len(chosen), noises, drift_scales, budget))
 
 
-def rewrite_brief(run) -> tuple[Path, Path]:
+def rewrite_brief(run) -> tuple[Path, Path | None]:
     """Render ``brief.html``/``brief.pdf`` again from a run folder, and update its manifest.
+
+    Returns the two paths; the PDF's is None when this machine cannot print it (see
+    :func:`planner.brief.pdf_unavailable`), and then no out-of-date PDF is kept.
 
     One transaction on the folder (``run`` is a :class:`Run` or a folder path): under
     its lock the run is read again, the briefing is rendered into a temporary sibling
@@ -1358,23 +1461,30 @@ def rewrite_brief(run) -> tuple[Path, Path]:
             rows = [RiskRow.from_dict(r) for r in records]
         except (TypeError, KeyError, ValueError, AttributeError) as err:
             raise RunFolderError(f"{path}: cannot read risk.json ({err})") from err
+        manifest = dict(run.manifest)
+        identity = run_identity(manifest)
+        if manifest.setdefault("run_id", identity) != identity:
+            raise RunFolderError(f"{path}: manifest.json was changed after the run (its run id "
+                                 f"{manifest['run_id']} does not match its content, {identity})")
         listed = set(run.blobs)
         with atomic_folder(path, force=True) as tmp:
             for name, blob in run.blobs.items():
                 if name not in ("brief.html", "brief.pdf"):
                     (tmp / name).write_bytes(blob)
             inputs = BriefInputs(folder=tmp, site=site, grid=grid, routes=routes, risk_rows=rows,
-                                 settings=run.settings, manifest=run.manifest, run_name=path.name)
-            write_brief(inputs, tmp / "brief.html", tmp / "brief.pdf")
-            write_manifest(tmp, dict(run.manifest))
+                                 settings=run.settings, manifest=manifest, run_name=path.name)
+            _, pdf = write_brief(inputs, tmp / "brief.html", tmp / "brief.pdf")
+            write_manifest(tmp, manifest)
             _carry_over(path, tmp, skip=listed | {"manifest.json", "brief.html", "brief.pdf"})
-    return path / "brief.html", path / "brief.pdf"
+    return path / "brief.html", (path / "brief.pdf" if pdf is not None else None)
 
 
 def _carry_over(old: Path, new: Path, *, skip: set) -> None:
-    """Hard-link into ``new`` every entry of ``old`` that veerwise did not write (the user's
-    notes, a review folder): nothing a user put in a run folder is lost when it is replaced.
-    Links are made without opening or following anything."""
+    """Hard-link into ``new`` every entry of ``old`` that veerwise did not write.
+
+    The user's notes, a review folder: nothing a user put in a run folder is lost when
+    it is replaced. Links are made without opening or following anything.
+    """
     for entry in old.iterdir():
         if entry.name in skip or os.path.lexists(new / entry.name):
             continue

@@ -113,8 +113,10 @@ class Zone:
 
 @functools.lru_cache(maxsize=16)
 def _transformer_for(crs: str, inverse: bool):
-    """One pyproj transformer per frame and direction (making one costs far more than using it,
-    and a site has a feature per zone)."""
+    """One pyproj transformer per frame and direction.
+
+    Making one costs far more than using it, and a site has a feature per zone.
+    """
     from pyproj import CRS, Transformer
 
     src, dst = CRS.from_epsg(4326), CRS.from_user_input(crs)
@@ -195,14 +197,17 @@ class Site:
 
     @property
     def hazards(self) -> tuple[Zone, ...]:
+        """The hazard zones, in file order."""
         return tuple(z for z in self.zones if z.role == "hazard")
 
     @property
     def rough(self) -> tuple[Zone, ...]:
+        """The rough-ground zones, in file order."""
         return tuple(z for z in self.zones if z.role == "rough")
 
     @property
     def drifts(self) -> tuple[Zone, ...]:
+        """The drift zones, in file order."""
         return tuple(z for z in self.zones if z.role == "drift")
 
     @property
@@ -297,8 +302,11 @@ def read_site_text(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> t
 
 
 def _whole_number(text: str) -> int | float:
-    """A JSON integer; one too long to be any coordinate or property becomes an infinity, which
-    the property's own check then refuses naming the feature (``int()`` would fail unnamed)."""
+    """A JSON integer, or an infinity for one too long to be any coordinate or property.
+
+    The property's own check then refuses the infinity naming the feature (``int()``
+    would fail unnamed).
+    """
     if len(text) > 400:
         return -math.inf if text.startswith("-") else math.inf
     return int(text)
@@ -334,8 +342,11 @@ def load_site(
 
 
 def site_from_bytes(data: bytes, *, source: str, crs: str | None = None, fix: bool = False) -> Site:
-    """Validate a site file's bytes; the :class:`Site` keeps them (``data``) with their hash,
-    so what is copied is exactly what was hashed and read."""
+    """Validate a site file's bytes.
+
+    The :class:`Site` keeps them (``data``) with their hash, so what is copied is
+    exactly what was hashed and read.
+    """
     obj, digest = parse_site_bytes(data, source)
     return dataclasses.replace(site_from_geojson(obj, crs=crs, fix=fix, source=source, sha256=digest), data=data)
 
@@ -691,8 +702,11 @@ def _check_crs_member(member, source: str) -> None:
 
 def _location_warnings(frame: Frame, extent_m: tuple[float, float], named_crs: str | None,
                        distortion: float = 0.0) -> list[str]:
-    """Warnings when a site's coordinates look swapped, projected or outside its named CRS's
-    area of use, and when the working frame distorts distances by more than 1 in 1000."""
+    """Warnings about where a site lies and how its frame distorts it.
+
+    When a site's coordinates look swapped, projected or outside its named CRS's area
+    of use, and when the working frame distorts distances by more than 1 in 1000.
+    """
     from planner.notation import hemisphere
 
     out = []

@@ -1,10 +1,14 @@
-"""The briefing: its content, the self-contained HTML page, the matplotlib PDF, and the
-page as a real browser prints it (headless Chromium, read back with poppler)."""
+"""The briefing: its content, the self-contained HTML page rendered from the templates,
+the PDF WeasyPrint prints from it (read back with pypdf and poppler), and the page as a
+real browser prints it (headless Chromium)."""
 
 from __future__ import annotations
 
 import base64
 import dataclasses
+import difflib
+import fnmatch
+import hashlib
 import html
 import json
 import os
@@ -20,12 +24,23 @@ import matplotlib.image as mpimg
 import pytest
 from conftest import plan_small_site
 from numpy.testing import assert_allclose
+from pypdf import PdfReader
 
-from planner.brief import CAUTIONS, NOTICE, SIGNOFF_FIELDS, BriefInputs, brief_content, render_html
+from planner.brief import (
+    CAUTIONS,
+    NOTICE,
+    PRINT_PPI,
+    SIGNOFF_FIELDS,
+    BriefInputs,
+    brief_content,
+    footer_text,
+    render_html,
+    write_brief,
+)
 from planner.errors import RunFolderError
 from planner.notation import probability_range
 from planner.risk import RiskRow, format_prob
-from planner.runfolder import load_run, rebuild, run_routes
+from planner.runfolder import load_run, rebuild, run_identity, run_routes
 
 #: A plan small enough for a test (a few seconds) that still exercises every section.
 PLAN_ARGS = ("--cell", "2", "--episodes", "2000", "--training-runs", "2", "--rollouts", "300", "--root-seed", "5")
@@ -188,7 +203,52 @@ def test_signoff_block_is_left_blank(inputs):
     html_text = _page_html(inputs)
     for label, _ in SIGNOFF_FIELDS:
         escaped = re.escape(html.escape(label))
-        assert re.search(rf"<th>{escaped}</th><td style='height:\d+mm'></td>", html_text), label
+        assert re.search(rf"<th>{escaped}</th><td style=\"height: \d+mm\"></td>", html_text), label
+    for label in ("Site file checked against the yard on", "Rehearsed in a simulator on"):
+        assert any(f.startswith(label) for f, _ in SIGNOFF_FIELDS)
+
+
+def _signoff(inputs):
+    blocks = brief_content(inputs)["sections"][-1]["blocks"]
+    return next(b for b in blocks if b["kind"] == "signed"), next(b for b in blocks if b["kind"] == "signoff")
+
+
+def test_signoff_binds_to_the_run_and_its_routes(planned, inputs):
+    manifest = json.loads((planned[0] / "manifest.json").read_text())
+    signed, signoff = _signoff(inputs)
+    text = " ".join(f"{label} {value}" for label, value, _ in signed["items"])
+    assert f"run id {manifest['run_id']}" in text
+    assert manifest["input"]["sha256"] in text and f"veerwise {manifest['versions']['veerwise']}" in text
+    # the route is a choice among the delivered routes, each named with its waypoint length
+    choices = dict(signoff["choices"])
+    assert choices["Route (tick one)"] == [f"{name} route ({inputs.routes[name].waypoint_length_m:.1f} m)"
+                                           for name in ("cautious", "shortest")]
+    # each delivered route is listed with the hash of the waypoint file it delivers
+    for name, row in zip(("cautious", "shortest"), signed["routes"]["rows"], strict=True):
+        assert row[0] == f"{name} route"
+        assert f"routes-{name}.geojson (sha256 {manifest['files'][f'routes-{name}.geojson'][:16]}" in row[-1]
+
+
+def test_decisions_cannot_contradict_the_banner(inputs):
+    _, signoff = _signoff(inputs)
+    decisions = dict(signoff["choices"])["Decision (tick one)"]
+    assert decisions == ["approve for simulation",
+                         "approve for a supervised trial under the site's rules and certified operators", "refuse"]
+    text = _Page(_page_html(inputs)).text
+    assert "not approved for field operation" in text
+    assert "approve for field" not in text and "field trial under site rules" not in text
+
+
+def test_signoff_is_printed_on_one_page_with_what_it_signs(planned, inputs):
+    pages = [" ".join(t.split()) for t in _pdf_pages(planned[0] / "brief.pdf")]
+    manifest = json.loads((planned[0] / "manifest.json").read_text())
+    signature = [k for k, t in enumerate(pages) if "Signature" in t]
+    assert len(signature) == 1
+    page = pages[signature[0]]
+    for part in ("7. Sign-off", "What is signed", f"run id {manifest['run_id']}", "Route (tick one)",
+                 "Decision (tick one)", "refuse", "Site file checked against the yard on", "Rehearsed in a simulator on",
+                 "cautious route", "shortest route"):
+        assert part in page, part
 
 
 @pytest.mark.parametrize("cautious, shortest", [(True, True), (False, True), (False, False)])
@@ -243,7 +303,208 @@ def test_missing_figure_is_refused(inputs, tmp_path):
         render_html(brief_content(empty), empty)
 
 
-# ----------------------------------------------------------------------------- PDFs, read back with poppler
+def test_every_kind_of_text_is_escaped(inputs):
+    """Autoescaping: markup in any name or text reaches the page as text, in every block kind."""
+    content = brief_content(inputs)
+    evil = "<b>bold</b> & <i>it</i>"
+    content["site"] = evil
+    content["banners"] = [evil]
+    content["glance"] = [(evil, evil, True)]
+    content["sections"] = [{"title": evil, "blocks": [
+        {"kind": "para", "text": evil, "small": False, "alert": False},
+        {"kind": "subhead", "text": evil},
+        {"kind": "list", "items": [evil], "keep": False},
+        {"kind": "table", "headers": [evil, "x"], "rows": [[evil, "1"]], "numeric": (1,), "keep": True,
+         "small": False, "narrow": False, "alerts": set()},
+        {"kind": "figure", "file": "routes.png", "alt": evil, "caption": evil},
+    ]}]
+    page = render_html(content, inputs)
+    assert "<b>" not in page and "<i>" not in page
+    # title, h1, banner, question, answer, section title, para, subhead, list item, header cell,
+    # body cell, alt text, caption
+    assert page.count("&lt;b&gt;bold&lt;/b&gt; &amp; &lt;i&gt;it&lt;/i&gt;") == 13
+    # the footer lives in CSS, where an entity would not be decoded: escaped the CSS way
+    assert r"\3c b\3e bold\3c \2f b\3e  \26 " in page
+
+
+def test_templates_are_package_data():
+    """Every template file is matched by pyproject's package data, so installs carry them."""
+    import tomllib
+
+    import planner
+
+    root = Path(planner.__file__).parent
+    pyproject = tomllib.loads((root.parent / "pyproject.toml").read_text())
+    globs = pyproject["tool"]["setuptools"]["package-data"]["planner"]
+    files = sorted(p.relative_to(root).as_posix() for p in (root / "templates").rglob("*") if p.is_file())
+    assert "templates/base.html.j2" in files
+    for kind in ("para", "subhead", "table", "figure", "list", "signoff"):
+        assert f"templates/blocks/{kind}.html.j2" in files
+    for name in files:
+        assert any(fnmatch.fnmatch(name, g) for g in globs), name
+
+
+# ----------------------------------------------------------------------------- the PDF, read back with pypdf
+
+
+def _pdf_pages(path: Path) -> list[str]:
+    return [page.extract_text() for page in PdfReader(path).pages]
+
+
+def _body_pages(pages: list[str], footer: str) -> list[str]:
+    """Each page's text without its footer, checking that every page carries that footer."""
+    lines = footer.split("\n")
+    bodies = []
+    for k, text in enumerate(pages, start=1):
+        tail = [*lines, f"page {k} of {len(pages)}"]
+        got = [line.strip() for line in text.strip().split("\n")][-len(tail):]
+        assert got == tail, f"page {k} footer: {got}"
+        bodies.append("\n".join(text.strip().split("\n")[:-len(tail)]))
+    return bodies
+
+
+def _same_text(html_text: str, pdf_text: str, repeatable: list[list[str]]) -> None:
+    """The PDF says what the HTML says, word for word.
+
+    Allowed differences: a word broken across two lines (``"ab" "cd"`` against
+    ``"abcd"``), a table's header row repeated at the top of a page it continues on, and
+    list bullets (drawn by the stylesheet, not text of the page).
+    """
+    a, b = html_text.split(), [w for w in pdf_text.split() if w != "\u2022"]
+    matcher = difflib.SequenceMatcher(None, a, b, autojunk=False)
+    for op, i1, i2, j1, j2 in matcher.get_opcodes():
+        if op == "equal":
+            continue
+        if op == "replace" and "".join(a[i1:i2]) == "".join(b[j1:j2]):
+            continue
+        if op == "insert" and b[j1:j2] in repeatable:
+            continue
+        pytest.fail(f"HTML and PDF differ: {op} HTML {' '.join(a[max(0, i1 - 5):i2 + 5])!r} / "
+                    f"PDF {' '.join(b[max(0, j1 - 5):j2 + 5])!r}")
+
+
+def _header_rows(content: dict) -> list[list[str]]:
+    return [" ".join(b["headers"]).split() for s in content["sections"] for b in s["blocks"]
+            if b["kind"] == "table" and any(b["headers"])]
+
+
+def test_pdf_has_the_text_of_the_html(planned, inputs):
+    content = brief_content(inputs)
+    pages = _pdf_pages(planned[0] / "brief.pdf")
+    assert len(pages) in PAGES, len(pages)
+    bodies = _body_pages(pages, footer_text(content))
+    html_text = _Page((planned[0] / "brief.html").read_text(encoding="utf-8")).text
+    _same_text(html_text, "\n".join(bodies), _header_rows(content))
+
+
+def test_every_page_footer_identifies_the_run(planned, inputs):
+    run = load_run(planned[0])
+    footer = footer_text(brief_content(inputs))
+    # the run id, the whole site hash and the version, on every page
+    assert f"run {run.manifest['run_id']}" in footer
+    assert f"sha256 {run.manifest['input']['sha256']}" in footer and len(run.manifest["input"]["sha256"]) == 64
+    assert f"veerwise {run.manifest['versions']['veerwise']}" in footer
+    _body_pages(_pdf_pages(planned[0] / "brief.pdf"), footer)
+
+
+def test_run_id_is_the_hash_of_the_manifest_without_the_briefing(planned):
+    manifest = json.loads((planned[0] / "manifest.json").read_text())
+    # worked out here from the written manifest, independently of run_identity
+    kept = {k: v for k, v in manifest.items() if k not in ("run_id", "created_utc", "timings_s")}
+    kept["files"] = {k: v for k, v in manifest["files"].items() if k not in ("brief.html", "brief.pdf")}
+    digest = hashlib.sha256(json.dumps(kept, sort_keys=True, separators=(",", ":")).encode()).hexdigest()
+    assert manifest["run_id"] == digest[:12] == run_identity(manifest)
+    # any change to a result file's hash changes the id
+    manifest["files"]["risk.json"] = "0" * 64
+    assert run_identity(manifest) != digest[:12]
+
+
+def test_pdf_is_a4_with_figures_at_print_resolution(planned, inputs, tmp_path):
+    tools = _poppler("reading the figures back from brief.pdf")
+    pdf = _read_pdf(tools, planned[0] / "brief.pdf", tmp_path / "images")
+    assert pdf["size"] == pytest.approx(A4_PT, abs=0.5)
+    images = [f for f in pdf["listing"] if f[2] == "image"]
+    assert [(int(f[3]), int(f[4])) for f in images] == [
+        _png_size((inputs.folder / n).read_bytes()) for n in FIGURES]
+    for f in images:
+        # pdfimages -list gives each image's resolution as placed on the page
+        assert int(f[12]) >= PRINT_PPI and int(f[13]) >= PRINT_PPI, f
+    _check_pixels(pdf, inputs)
+
+
+def test_weasyprint_uses_all_of_the_stylesheet(inputs, tmp_path, caplog):
+    """WeasyPrint warns about CSS it ignores or resources it cannot load: there must be none."""
+    import logging
+
+    from planner.brief import write_pdf
+
+    with caplog.at_level(logging.WARNING, logger="weasyprint"):
+        write_pdf(tmp_path / "brief.pdf", _page_html(inputs))
+    assert [r.getMessage() for r in caplog.records if r.name.startswith("weasyprint")] == []
+
+
+def test_long_names_do_not_stall_the_pdf(inputs, tmp_path):
+    """A 10,000-character word is the page's problem to wrap, not a loop's."""
+    for name in FIGURES:
+        shutil.copyfile(inputs.folder / name, tmp_path / name)
+    long_name = "Z" * 10_000
+    site = dataclasses.replace(inputs.site, name=long_name)
+    changed = dataclasses.replace(inputs, folder=tmp_path, site=site)
+    html_path, pdf_path = write_brief(changed, tmp_path / "brief.html", tmp_path / "brief.pdf")
+    text = "".join("".join(_pdf_pages(pdf_path)).split())
+    assert long_name in text
+
+
+def test_without_pango_the_html_is_still_written(planned, tmp_path, monkeypatch):
+    """No system libraries for WeasyPrint: brief.html is written, brief.pdf is not, one line says why."""
+    from click.testing import CliRunner
+
+    import planner.brief
+    from planner.cli import cli
+
+    folder = tmp_path / "run"
+    shutil.copytree(planned[0], folder)
+    monkeypatch.setattr(planner.brief, "_weasyprint", lambda: None)
+    result = CliRunner().invoke(cli, ["brief", str(folder)])
+    assert result.exit_code == 0, result.output
+    assert (folder / "brief.html").is_file() and not (folder / "brief.pdf").exists()
+    notes = [line for line in result.stderr.splitlines() if "brief.pdf" in line]
+    assert len(notes) == 1 and "libpango-1.0-0" in notes[0], result.stderr
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert "brief.pdf" not in manifest["files"] and "brief.html" in manifest["files"]
+    load_run(folder)  # the folder still passes its own checks
+
+
+def test_brief_refuses_a_manifest_changed_after_the_run(planned, tmp_path):
+    from click.testing import CliRunner
+
+    from planner.cli import cli
+
+    folder = tmp_path / "run"
+    shutil.copytree(planned[0], folder)
+    manifest = json.loads((folder / "manifest.json").read_text())
+    manifest["notice"] = "approved"  # nothing else checks this entry; the run id does
+    (folder / "manifest.json").write_text(json.dumps(manifest))
+    before = (folder / "brief.html").read_bytes()
+    result = CliRunner().invoke(cli, ["brief", str(folder), "-q"])
+    assert result.exit_code == 2, result.output
+    assert "manifest.json was changed after the run" in result.stderr and "Traceback" not in result.output
+    assert (folder / "brief.html").read_bytes() == before
+
+
+def test_plan_without_pango_writes_the_html_and_says_what_to_install(tmp_path, monkeypatch):
+    import planner.brief
+
+    monkeypatch.setattr(planner.brief, "_weasyprint", lambda: None)
+    _, out, result = plan_small_site(tmp_path, *PLAN_ARGS)
+    assert result.exit_code == 0, result.output
+    assert (out / "brief.html").is_file() and not (out / "brief.pdf").exists()
+    notes = [line for line in result.stderr.splitlines() if line.strip()]
+    assert len(notes) == 1 and "brief.pdf not written" in notes[0] and "libpango-1.0-0" in notes[0], notes
+    assert "brief.pdf" not in json.loads((out / "manifest.json").read_text())["files"]
+
+
+# ----------------------------------------------------------------------------- poppler and Chromium
 
 
 def _tool(names, what, purpose):
@@ -271,30 +532,47 @@ def _read_pdf(tools: dict, path: Path, scratch: Path) -> dict:
     pages = int(re.search(r"^Pages:\s+(\d+)", info, re.M).group(1))
     width, height = map(float, re.search(r"^Page size:\s+([\d.]+) x ([\d.]+) pts", info, re.M).groups())
     listing = [line.split() for line in _run([tools["pdfimages"], "-list", path]).splitlines()[2:]]
-    images = [(int(f[0]), int(f[3]), int(f[4])) for f in listing if f[2] == "image"]
     scratch.mkdir()
     _run([tools["pdfimages"], "-png", path, scratch / "img"])
+    extracted = sorted(scratch.glob("img-*.png"))
+    # pdfimages writes a soft mask (alpha) as its own file right after its image
+    kinds = [f[2] for f in listing]
+    images = [(int(f[0]), int(f[3]), int(f[4])) for f in listing if f[2] == "image"]
     text = _run([tools["pdftotext"], path, "-"])
-    return {"pages": pages, "size": (width, height), "images": images, "kinds": [f[2] for f in listing],
-            "extracted": sorted(scratch.glob("img-*.png")), "text": text, "page_texts": text.split("\f")[:pages]}
+    return {"pages": pages, "size": (width, height), "images": images, "kinds": kinds, "listing": listing,
+            "extracted": [e for e, kind in zip(extracted, kinds, strict=True) if kind == "image"],
+            "masks": [e for e, kind in zip(extracted, kinds, strict=True) if kind == "smask"],
+            "text": text, "page_texts": text.split("\f")[:pages]}
 
 
-def _check_printed(pdf: dict, inputs, summary, footer: str) -> None:
-    """What every printed briefing must show, whoever laid it out."""
-    assert pdf["pages"] in PAGES, pdf["pages"]
-    assert pdf["size"] == pytest.approx(A4_PT, abs=0.5)
-    # every figure is there, in order, pixel for pixel: a figure that failed to load
-    # would be missing or a placeholder, and one that loaded only in part would differ
-    # (and bring a transparency mask)
-    assert set(pdf["kinds"]) == {"image"}
-    assert [(w, h) for _, w, h in pdf["images"]] == [_png_size((inputs.folder / n).read_bytes()) for n in FIGURES]
+def _check_pixels(pdf: dict, inputs) -> None:
+    """Every figure is there, in order, pixel for pixel, composited on white paper.
+
+    A figure that failed to load would be missing or a placeholder, and one that loaded
+    only in part would differ.
+    """
     assert len(pdf["extracted"]) == len(FIGURES)
+    masks = iter(pdf["masks"]) if len(pdf["masks"]) == len(FIGURES) else None
     for name, printed in zip(FIGURES, pdf["extracted"], strict=True):
         original = mpimg.imread(inputs.folder / name)
-        if original.shape[2] == 4:  # composite on white paper, as printed
+        if original.shape[2] == 4:
             original = original[..., :3] * original[..., 3:] + (1.0 - original[..., 3:])
+        got = mpimg.imread(printed)[..., :3]
+        if masks is not None:
+            alpha = mpimg.imread(next(masks))
+            alpha = alpha[..., None] if alpha.ndim == 2 else alpha[..., :1]
+            got = got * alpha + (1.0 - alpha)
         # one 8-bit level: a colour-managed printer path may round differently
-        assert_allclose(mpimg.imread(printed)[..., :3], original[..., :3], rtol=0, atol=1.01 / 255, err_msg=name)
+        assert_allclose(got, original[..., :3], rtol=0, atol=1.01 / 255, err_msg=name)
+
+
+def _check_printed(pdf: dict, inputs, summary, footer_lines) -> None:
+    """What every printed briefing must show, whoever printed it."""
+    assert pdf["pages"] in PAGES, pdf["pages"]
+    assert pdf["size"] == pytest.approx(A4_PT, abs=0.5)
+    assert set(pdf["kinds"]) <= {"image", "smask"}
+    assert [(w, h) for _, w, h in pdf["images"]] == [_png_size((inputs.folder / n).read_bytes()) for n in FIGURES]
+    _check_pixels(pdf, inputs)
     text = " ".join(pdf["text"].split())
     for name, (length, p_incident) in summary.items():
         assert _has_number(text, length) and _has_number(text, p_incident), (name, length, p_incident)
@@ -304,7 +582,7 @@ def _check_printed(pdf: dict, inputs, summary, footer: str) -> None:
         assert section["title"] in text
     for question, _, _ in content["glance"]:
         assert question in text
-    for label in ("Reviewed by (name, role)", "Date", "Signature"):
+    for label in ("Reviewed by (name, role)", "Date", "Signature", "What is signed"):
         assert label in text
     if not content["converged"]:
         assert "route must not be signed" in text
@@ -313,14 +591,17 @@ def _check_printed(pdf: dict, inputs, summary, footer: str) -> None:
             assert _has_number(text, f"{w.lat:.7f}")
     with_image = {page for page, _, _ in pdf["images"]}
     for k, page_text in enumerate(pdf["page_texts"], start=1):
-        body = page_text.replace(footer, "").replace(f"page {k} of {pdf['pages']}", "")
+        body = page_text
+        for line in footer_lines:
+            body = body.replace(line, "")
+        body = body.replace(f"page {k} of {pdf['pages']}", "")
         assert k in with_image or len(body.strip()) >= MIN_PAGE_CHARS, f"page {k} is nearly empty"
 
 
 def test_pdf_carries_the_briefing(planned, inputs, summary, tmp_path):
     tools = _poppler("reading back brief.pdf")
     pdf = _read_pdf(tools, planned[0] / "brief.pdf", tmp_path / "images")
-    _check_printed(pdf, inputs, summary, f"veerwise briefing - {inputs.site.name} - for simulation and review only")
+    _check_printed(pdf, inputs, summary, footer_text(brief_content(inputs)).split("\n"))
     assert f"page 1 of {pdf['pages']}" in pdf["text"]
 
 
@@ -361,7 +642,14 @@ def test_browser_prints_the_briefing(planned, inputs, summary, tmp_path):
     pdf = _read_pdf(tools, pdf_path, tmp_path / "images")
     images_in_html = sum(1 for tag, _ in _Page(_page_html(inputs)).tags if tag == "img")
     assert len(pdf["images"]) == images_in_html
-    _check_printed(pdf, inputs, summary, f"veerwise briefing - {inputs.site.name} - for simulation and review only")
+    footer = footer_text(brief_content(inputs)).split("\n")
+    _check_printed(pdf, inputs, summary, footer)
+    # the page rules travel with the HTML: a browser prints the run's identity on every page too
+    for k, page_text in enumerate(pdf["page_texts"], start=1):
+        flat = " ".join(page_text.split())
+        assert all(line in flat for line in footer) and f"page {k} of {pdf['pages']}" in flat, k
+    signature = [t for t in pdf["page_texts"] if "Signature" in t]
+    assert len(signature) == 1 and "What is signed" in signature[0] and "Decision (tick one)" in signature[0]
 
 
 # ----------------------------------------------------------------------------- numbers a reviewer reads
@@ -443,3 +731,22 @@ def test_seeds_banner_exactly_when_the_training_runs_disagree_on_a_route(inputs,
     trust, alert = next((a, flag) for q, a, flag in content["glance"] if q == "Is the answer trustworthy?")
     assert ("the training runs disagree on the cautious route" in trust) == (matching < 2)
     assert alert or matching == 2
+
+
+def test_time_stamp_and_hashes_are_printed_verbatim(inputs):
+    """Markup that keeps numbers whole never lands inside a date or a hash."""
+    page = _page_html(inputs)
+    created = inputs.manifest["created_utc"]
+    assert page.count(created) == 2  # the line under the title, and what is signed
+    assert inputs.site.sha256 in page
+
+
+def test_without_the_python_package_the_note_says_pip(monkeypatch):
+    import importlib.util
+
+    import planner.brief
+
+    monkeypatch.setattr(planner.brief, "_weasyprint", lambda: None)
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "weasyprint" else real(name, *a))
+    assert "pip install weasyprint" in planner.brief.pdf_unavailable()

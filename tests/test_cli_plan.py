@@ -369,3 +369,39 @@ def test_a_tiny_training_budget_is_not_converged_everywhere_it_is_said(planned):
     html = (out / "brief.html").read_text()
     assert "learned cautious route must not be signed" in html
     assert "learned shortest route must not be signed" in html
+
+
+# ----------------------------------------------------------------------------- progress
+
+
+def test_progress_shows_every_long_stage_and_how_far_it_is(planned, tmp_path, capsys):
+    """On a terminal every long stage gets a line that ends at 100%; off one, nothing is drawn."""
+    import io
+
+    from rich.console import Console
+
+    from planner.runfolder import PlanSettings, Progress, compute_plan, load_run, write_run
+
+    site = planned[0]
+    settings = load_run(planned[1]).settings
+    assert isinstance(settings, PlanSettings)
+    screen = io.StringIO()
+    with Progress(Console(file=screen, force_terminal=True, width=120, color_system=None)) as progress:
+        result = compute_plan(site, settings, progress)
+        write_run(result, settings, site, tmp_path / "run", progress=progress)
+    # the last frame the display drew, without its cursor movements
+    lines = [re.sub(r"\x1b\[[0-?]*[ -/]*[@-~]", "", line) for line in screen.getvalue().splitlines()]
+    rows = len(settings.noises) * len(settings.drift_scales) * 4
+    for stage in ("building the model", "SARSA (cautious)", "Q-learning (shortest)", "exact references",
+                  "risk table (rows)", "figures", "briefing"):
+        drawn = [line for line in lines if stage in line and line.startswith("[")]
+        assert drawn and "100%" in drawn[-1], (stage, lines[-12:])
+    assert any(f"risk table: 4 policies x {len(settings.noises)} noise levels" in line for line in lines)
+    assert rows == len(result.risk_rows)
+    # without a console the same calls draw nothing
+    capsys.readouterr()
+    quiet = Progress()
+    with quiet, quiet.task("anything", 3) as report:
+        report(1)
+        quiet("a note")
+    assert capsys.readouterr() == ("", "")

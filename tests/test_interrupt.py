@@ -13,6 +13,7 @@ import hashlib
 import json
 import os
 import pty
+import re
 import select
 import signal
 import subprocess
@@ -34,6 +35,10 @@ STOP_TIMEOUT_S = 120.0
 LONG_TRAINING = ["--cell", "2", "--episodes", "1500000", "--training-runs", "2", "--rollouts", "0", "--root-seed", "1"]
 #: A quick run whose writing phase we catch by its temporary sibling folder.
 QUICK = ["--cell", "2", "--episodes", "2000", "--training-runs", "2", "--rollouts", "300", "--root-seed", "1"]
+
+
+#: Terminal control sequences (ECMA-48 control sequences: ESC [ parameters final byte).
+TERMINAL_CONTROL = re.compile(r"\x1b\[[0-?]*[ -/]*[@-~]")
 
 
 def snapshot(folder: Path) -> dict:
@@ -114,11 +119,13 @@ def assert_stopped(code, stdout, stderr, signum=signal.SIGINT):
     assert code == {signal.SIGINT: 130, signal.SIGTERM: 143}[signum], stderr
     assert stdout == ""
     assert "Traceback" not in stderr
-    ours = [line for line in stderr.splitlines() if line.startswith("veerwise:")]
+    # The progress display draws with terminal control sequences; what it leaves is lines
+    drawn = re.split(r"[\r\n]", TERMINAL_CONTROL.sub("", stderr))
+    ours = [line for line in drawn if line.startswith("veerwise:")]
     assert len(ours) == 1, stderr
     assert "stopped" in ours[0] and "nothing was written" in ours[0], ours[0]
-    # Everything else on stderr is the progress display ("[  1.2 s] ...") or blank.
-    others = [line for line in stderr.splitlines() if line.strip() and not line.startswith("veerwise:")]
+    # Everything else on stderr is the progress display (each line "[  1.2 s] ...") or blank.
+    others = [line for line in drawn if line.strip() and not line.startswith("veerwise:")]
     assert all(line.startswith("[") for line in others), stderr
 
 

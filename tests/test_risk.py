@@ -15,6 +15,7 @@ from hypothesis import strategies as st
 from numpy.testing import assert_allclose
 
 from planner.errors import SettingsError
+from planner.exact import on_policy_q, optimal_q
 from planner.grid import FREE, DriftInfo, GridSpec, HazardInfo, grid_from_arrays, rasterise
 from planner.learn import greedy_actions
 from planner.model import EVENT_GOAL, EVENT_HAZARD, Dynamics, build_model, epsilon_greedy
@@ -266,7 +267,6 @@ def test_frozen_lake_optimal_goal_probability():
     # edges, holes end the run. The optimal probability of reaching the goal from the
     # start with no step limit is 14/17 (value from memory), checked here by value
     # iteration on gymnasium's own transition table.
-    exact = pytest.importorskip("planner.exact")
     v_gym = gymnasium_max_goal_probability()
     assert_allclose(v_gym[0], 14 / 17, atol=1e-9)
     # Our side: moves cost 1, a hole costs 10^4 moves, so one hole entry outweighs any
@@ -277,7 +277,7 @@ def test_frozen_lake_optimal_goal_probability():
     grid = frozen_lake_grid()
     model = build_model(grid, Dynamics(n_actions=4, slip=2 / 3, edge="wall", step_cost="move",
                                        hazard_penalty_m=1e4))
-    q = exact.optimal_q(model).q
+    q = optimal_q(model).q
     row = evaluate(model, q, noise=0.0, hazards=grid.hazards)
     assert_allclose(row.p_goal, 14 / 17, atol=1e-6)
     assert_allclose(row.p_incident, 3 / 17, atol=1e-6)
@@ -313,13 +313,12 @@ def small_site_grid(site_dict):
 
 def test_exact_and_monte_carlo_agree_on_small_site(site_dict):
     # Monte Carlo on the same table, one seeded generator per row; every exact figure
-    # (goal, incident, each zone, never, within the budget) must lie in its Wilson 95%
-    # interval.
-    exact = pytest.importorskip("planner.exact")
+    # (goal, incident, each zone, never, within the budget) must lie in the Clopper-Pearson
+    # 95% interval of its count.
     _, grid = small_site_grid(site_dict)
     dynamics = Dynamics()
     model = build_model(grid, dynamics)
-    policies = {"shortest": exact.optimal_q(model).q, "cautious": exact.on_policy_q(model, 0.1).q}
+    policies = {"shortest": optimal_q(model).q, "cautious": on_policy_q(model, 0.1).q}
     rows = sensitivity(grid, dynamics, policies, noises=(0.0, 0.1, 0.3), drift_scales=(1.0, 2.0), budget=60,
                        rollouts=3000, seed=np.random.SeedSequence(20261202))
     assert len(rows) == 12
@@ -578,7 +577,7 @@ def test_flag_level_can_be_widened():
     assert not est.contains(0.965)
     assert est.contains(0.965, z=4.0)
     text = format_table([hand_row(mc_flag_z=4.0)], "text")
-    assert "Wilson interval at z = 4.00" in " ".join(text.split())
+    assert "Clopper-Pearson interval of its Monte Carlo count at z = 4.00" in " ".join(text.split())
 
 
 def test_flags_use_the_exact_binomial_interval_at_small_counts():
@@ -604,7 +603,6 @@ def test_demo_site_default_table_exact_and_monte_carlo_agree(name):
     agrees with its exact value at the table-wide 95% level (seeded)."""
     from pathlib import Path
 
-    from planner.exact import on_policy_q, optimal_q
     from planner.grid import GridSpec, default_cell_m, rasterise
     from planner.model import Dynamics
     from planner.risk import sensitivity, table_flag_z

@@ -33,6 +33,7 @@ class SectionedCommand(click.Command):
     """A command whose ``--help`` lists its options in the sections of :data:`SECTIONS`."""
 
     def format_options(self, ctx, formatter):
+        """Write the options into the help, section by section."""
         groups: dict[str, list] = {}
         for param in self.get_params(ctx):
             record = param.get_help_record(ctx)
@@ -51,6 +52,7 @@ class Finite(click.FloatRange):
     name = "number"
 
     def convert(self, value, param, ctx):
+        """The value as a float, refused unless finite and in range."""
         number = click.FLOAT.convert(value, param, ctx)
         if not math.isfinite(number):
             self.fail(f"{value!r} is not a finite number", param, ctx)
@@ -58,6 +60,7 @@ class Finite(click.FloatRange):
 
 
 def finite(low=None, high=None, *, low_open: bool = False, high_open: bool = False) -> Finite:
+    """A click type for a finite number in [low, high] (ends open on request)."""
     return Finite(low, high, min_open=low_open, max_open=high_open)
 
 

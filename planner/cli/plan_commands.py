@@ -27,6 +27,18 @@ from planner.cli.options import (
 from planner.cli.site_commands import load_site_and_spec, make_dynamics
 from planner.errors import Interrupted
 
+#: ``-q``: no progress display (it is drawn only on a terminal anyway).
+quiet_option = click.option("--quiet", "-q", is_flag=True, help="No progress display.")
+
+
+def progress_console(quiet: bool):
+    """The terminal to draw progress on (stderr), or None: ``-q``, or stderr is not a terminal."""
+    if quiet or not sys.stderr.isatty():
+        return None
+    from rich.console import Console
+
+    return Console(stderr=True)
+
 
 def default_episodes(n_active: int) -> int:
     """Episodes per seed sized from the grid: 50 per usable cell, 20,000 to 500,000.
@@ -108,9 +120,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                             drift_scales=float_list(drift_scales, "--table-drifts"), budget=budget,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
                             tie_m=tie_m, shortest_schedule=shortest_schedule)
-    show = not quiet and sys.stderr.isatty()
-    progress = Progress(say=(lambda m: click.echo(m, err=True)) if show else None)
-    with stop_on_sigterm():
+    with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:
         try:
             result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
         except KeyboardInterrupt as err:
@@ -119,6 +129,10 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     summary = plan_summary(result, settings, run, time.perf_counter() - started)
     click.echo(json.dumps(_plain(summary), indent=2, sort_keys=True, allow_nan=False) if as_json
                else format_plan_summary(summary))
+    from planner.brief import pdf_unavailable
+
+    if pdf_unavailable() is not None:
+        click.echo(f"veerwise: note: {pdf_unavailable()}", err=True)
     if strict and not summary["ready_to_sign"]:
         raise click.exceptions.Exit(EXIT_NOT_READY)
 

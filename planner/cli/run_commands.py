@@ -16,6 +16,7 @@ from planner.cli.options import (
     risk_table_options,
     run_argument,
 )
+from planner.cli.plan_commands import quiet_option
 
 #: Waypoint formats ``export`` writes.
 EXPORT_FORMATS = ("geojson", "csv", "gpx")
@@ -43,8 +44,10 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget, rollouts, ro
 
     Exact probabilities from the absorbing Markov chain of each policy executed with
     noise (greedy, or a uniformly random move with probability epsilon) under each
-    drift scale, with Monte Carlo estimates and Wilson 95% intervals beside them; a '!'
-    marks a figure outside its interval. Text prints one line per row.
+    drift scale, with Monte Carlo estimates and their Wilson 95% intervals beside them;
+    a '!' marks an exact figure outside the Clopper-Pearson interval of its Monte Carlo
+    count, at the level that keeps the whole table's checks at 95% together. Text
+    prints one line per row.
 
     \b
     Examples:
@@ -64,8 +67,13 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget, rollouts, ro
     check_counts(rollouts=n_rollouts, budget=budget, table_noises=len(noise_levels), table_drifts=len(scales))
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid = rebuild_grid(loaded)
-    rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget=budget, rollouts=n_rollouts,
-                    seed=rollout_seed, policies=names)
+    from planner.cli.plan_commands import progress_console
+    from planner.runfolder import Progress
+
+    with Progress(progress_console(False)) as progress, progress.task(
+            "risk table (rows)", len(names) * len(noise_levels) * len(scales)) as report:
+        rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget=budget,
+                        rollouts=n_rollouts, seed=rollout_seed, policies=names, progress=report)
     click.echo(format_table(rows, fmt, details=details), nl=False)
 
 
@@ -130,8 +138,12 @@ def export(run, output, force, fmt, policy, alt_m):
 
 @cli.command(cls=SectionedCommand)
 @run_argument
-def brief(run):
+@quiet_option
+def brief(run, quiet):
     """Render the briefing of run folder RUN again (brief.html and brief.pdf).
+
+    brief.pdf is printed from brief.html with WeasyPrint; where its system libraries
+    (Pango) are missing, only brief.html is written and a note says what to install.
 
     The briefing is rebuilt from the run's manifest, risk table, figures and policies;
     the manifest's file hashes are updated to match.
@@ -140,7 +152,12 @@ def brief(run):
     Example:
       veerwise brief run-yard
     """
-    from planner.runfolder import rewrite_brief
+    from planner.brief import pdf_unavailable
+    from planner.cli.plan_commands import progress_console
+    from planner.runfolder import Progress, rewrite_brief
 
-    html_path, pdf_path = rewrite_brief(run)
-    click.echo(f"wrote {html_path} and {pdf_path}")
+    with Progress(progress_console(quiet)) as progress, progress.task("briefing (HTML, then PDF)"):
+        html_path, pdf_path = rewrite_brief(run)
+    click.echo(f"wrote {html_path} and {pdf_path}" if pdf_path else f"wrote {html_path}")
+    if pdf_path is None:
+        click.echo(f"veerwise: note: {pdf_unavailable()}", err=True)

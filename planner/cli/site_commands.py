@@ -33,6 +33,7 @@ def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, bounda
 
 
 def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):
+    """The vehicle's ``Dynamics`` from the command-line options."""
     from planner.model import Dynamics
 
     return Dynamics(n_actions=int(n_actions), slip=slip, stall=stall, drift_scale=drift_scale, edge=edge,
@@ -72,6 +73,7 @@ def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max
 
 
 def format_summary(s: dict) -> str:
+    """``check``'s summary of a site as text."""
     from planner.notation import hemisphere
 
     g, m, z = s["grid"], s["model"], s["zones"]
