@@ -42,11 +42,11 @@ def synthetic_model(layout: str = "gate", n: int = 200):
         label[95:105, 20:180] = 0
         label[95:105, 95:105] = FREE
         drift_class[130:160, :] = 1
-        drift = DriftInfo("east gust", east_m=0.5, north_m=0.0, spread_m=0.3, chance=0.8)
+        drift = DriftInfo("east gust", ratio=0.5, toward_deg=90.0, spread=0.3, chance=0.8)
     elif layout == "wide":
         label[90:110, 30:170] = 0
         drift_class[120:150, :] = 1
-        drift = DriftInfo("east gust", east_m=1.5, north_m=0.0, spread_m=0.5, chance=0.7)
+        drift = DriftInfo("east gust", ratio=1.5, toward_deg=90.0, spread=0.5, chance=0.7)
     else:
         raise SystemExit(f"unknown layout {layout!r}")
     goal = np.zeros((n, n), dtype=bool)

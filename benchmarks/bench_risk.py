@@ -45,14 +45,16 @@ def synthetic_grid(n: int):
     drift_class = np.zeros((n, n), dtype=np.int32)
     drift_class[(np.arange(n) // 25) % 2 == 1, :] = 1
     hazards = (HazardInfo("North pond"), HazardInfo("Mast"), HazardInfo("Gravel pit"))
-    drifts = (DriftInfo("Gust band", east_m=0.4, north_m=-0.3, spread_m=0.5, chance=1.0),)
+    drifts = (DriftInfo("Gust band", ratio=0.5, toward_deg=math.degrees(math.atan2(0.4, -0.3)), spread=0.5,
+                        chance=1.0),)
     return grid_from_arrays(label, goal=goal, start=(2, 2), cell_m=1.0, hazards=hazards, drifts=drifts,
                             drift_class=drift_class, drift_members=((), (0,)))
 
 
 def shortest_policy(grid, n_actions: int = 8) -> np.ndarray:
     """Greedy actions of the deterministic cheapest route to the goal (Dijkstra costs)."""
-    from planner.grid import cost_to_goal, moves_for
+    from planner.grid import cost_to_goal
+    from planner.motion import moves_for
 
     cost = cost_to_goal(grid, n_actions)
     n_rows, n_cols = grid.shape

@@ -28,7 +28,8 @@ from planner.exact import convergence_report, equally_good, on_policy_q, optimal
 from planner.export import write_csv, write_geojson, write_gpx
 from planner.grid import GridSpec, rasterise
 from planner.learn import LearnSettings, learned_ties, train
-from planner.model import Dynamics, build_model
+from planner.model import build_model
+from planner.motion import Dynamics
 from planner.risk import evaluate, format_prob
 from planner.route import build_route, nominal_path
 from planner.site import site_from_geojson
@@ -65,8 +66,8 @@ def make_yard(pond_width_m: float = 30.0) -> dict:
         feature("goal", "Target", "Point", lonlat([(110, 35)])[0]),
         feature("hazard", "Pond", "Polygon", box(60 - half, 25, 60 + half, 45), buffer_m=2.0),
         feature("hazard", "Drop edge", "Polygon", box(30, 0, 90, 6)),
-        feature("drift", "Gust lane", "Polygon", box(40, 45, 80, 70), from_deg=0.0, push_m=2.0, spread_m=1.0,
-                chance=0.6),
+        feature("drift", "Gust lane", "Polygon", box(40, 45, 80, 70), from_deg=0.0, drift_per_m=0.4,
+                spread_per_sqrt_m=0.45, chance=0.6),
         feature("rough", "Gravel", "Polygon", box(90, 50, 120, 70), cost_factor=1.5),
     ]}
 
@@ -76,6 +77,8 @@ def parse_args(argv=None) -> argparse.Namespace:
     parser.add_argument("folder", type=Path, nargs="?", default=Path("yard-routes"),
                         help="folder for the waypoint files; default: %(default)s")
     parser.add_argument("--cell", type=float, default=2.5, help="cell size in metres; default: %(default)s")
+    parser.add_argument("--move-m", type=float, default=None,
+                        help="metres the vehicle travels between heading decisions (>= the cell); default: one cell")
     parser.add_argument("--episodes", type=int, default=30_000, help="training episodes per seed; default: %(default)s")
     parser.add_argument("--training-runs", type=int, default=4, help="independent training runs per learner")
     parser.add_argument("--noise", type=float, default=0.1,
@@ -89,7 +92,7 @@ def main(argv=None) -> int:
     try:
         site = site_from_geojson(make_yard(), source="make_yard()")
         grid = rasterise(site, GridSpec(args.cell))
-        model = build_model(grid, Dynamics(slip=0.1))
+        model = build_model(grid, Dynamics(slip=0.1, move_m=args.move_m))
         learn = LearnSettings(epsilon=args.noise, episodes=args.episodes, n_seeds=args.training_runs, start_mode="explore")
         # one root seed for the whole script, one child per learner: reruns give identical routes
         seed_cautious, seed_shortest = np.random.SeedSequence(args.root_seed).spawn(2)

@@ -27,7 +27,7 @@ from planner import style  # noqa: E402
 from planner.errors import PlannerError  # noqa: E402
 from planner.grid import GridSpec  # noqa: E402
 from planner.learn import LearnSettings  # noqa: E402
-from planner.model import Dynamics  # noqa: E402
+from planner.motion import Dynamics  # noqa: E402
 from planner.risk import format_prob  # noqa: E402
 from planner.runfolder import PlanSettings, compute_plan  # noqa: E402
 
@@ -53,6 +53,8 @@ def parse_args(argv=None) -> argparse.Namespace:
     parser.add_argument("--episodes", type=int, default=300_000, help="training episodes per seed; default: %(default)s")
     parser.add_argument("--training-runs", type=int, default=4, help="independent training runs per learner")
     parser.add_argument("--cell", type=float, default=5.0, help="cell size in metres; default: %(default)s")
+    parser.add_argument("--move-m", type=float, default=None,
+                        help="metres the vehicle travels between heading decisions (>= the cell); default: one cell")
     parser.add_argument("--root-seed", type=int, default=2024, help="root seed, for a reproducible run")
     return parser.parse_args(argv)
 
@@ -68,7 +70,7 @@ def main(argv=None) -> int:
         scales = (1.0, *scales)  # the forecast is the reference every other row is read against
     try:
         settings = PlanSettings(
-            grid=GridSpec(args.cell), dynamics=Dynamics(),
+            grid=GridSpec(args.cell), dynamics=Dynamics(move_m=args.move_m),
             learn=LearnSettings(epsilon=args.noise, episodes=args.episodes, n_seeds=args.training_runs,
                                 start_mode="explore"),
             noises=(args.noise,), drift_scales=scales, rollouts=0, seed=args.root_seed,

@@ -22,6 +22,8 @@ from shapely.geometry.polygon import orient
 
 HERE = Path(__file__).resolve().parent
 DECIMALS = 7
+#: The site-file schema the demos are written in (drift per metre travelled).
+SITE_SCHEMA = 2
 
 
 # ----------------------------------------------------------------------------- shapes in metres
@@ -86,12 +88,13 @@ class SiteWriter:
         self.features.append({"type": "Feature", "properties": {"role": role, **properties}, "geometry": geometry})
 
     def collection(self):
-        return {"type": "FeatureCollection", "features": self.features}
+        return {"type": "FeatureCollection", "properties": {"site_schema": SITE_SCHEMA}, "features": self.features}
 
     def write(self, path):
         # One feature per line keeps the file small and its diffs readable.
         lines = ",\n".join("    " + json.dumps(f, separators=(", ", ": ")) for f in self.features)
-        path.write_text('{\n  "type": "FeatureCollection",\n  "features": [\n' + lines + "\n  ]\n}\n")
+        path.write_text('{\n  "type": "FeatureCollection",\n  "properties": {"site_schema": %d},\n'
+                        '  "features": [\n' % SITE_SCHEMA + lines + "\n  ]\n}\n")
 
 
 # ----------------------------------------------------------------------------- the sites
@@ -109,7 +112,7 @@ def ground_yard():
     # that pushes wheels toward the drop.
     site.area("hazard", strip([(105, 132), (315, 132)], 3.0), name="Loading-dock drop edge")
     site.area("drift", rect(100, 133.5, 320, 158.5), name="Embankment side-slope",
-              toward_deg=180.0, push_m=1.5, spread_m=1.0, chance=0.7)
+              toward_deg=180.0, drift_per_m=0.3, spread_per_sqrt_m=0.45, chance=0.7)
     site.area("hazard", rect(140, 168.5, 280, 215).buffer(10.0), name="Settling pond", buffer_m=2.0)
     site.area("rough", rect(112, 40, 318, 128.5), name="Gravel apron", cost_factor=1.6)
     site.area("hazard", rect(336, 31, 372, 69), name="Fuel store no-go area")
@@ -132,7 +135,7 @@ def drone_range():
     site.area("hazard", rect(215, 191, 295, 300), name="North hangar")
     site.area("hazard", rect(215, 63, 295, 168.5), name="South hangar")
     site.area("drift", rect(200, 150, 310, 210), name="Hangar gap gusts",
-              from_deg=0.0, push_m=2.5, spread_m=2.0, chance=0.7)
+              from_deg=0.0, drift_per_m=0.5, spread_per_sqrt_m=0.9, chance=0.7)
     site.area("hazard", rect(358, 206, 362, 210), name="Radio mast", buffer_m=12.0)
     site.area("hazard", outline([(322, 38), (431, 33), (456, 91), (421, 141), (341, 131)]), name="Reed lake")
     site.area("hazard", rect(91, 301, 131, 331), name="Spectator area no-go")

@@ -211,6 +211,8 @@ def brief_content(inputs: BriefInputs) -> dict:
             "p_goal": format_prob(row.p_goal) if row else "-",
             "p_incident_reference": _with_range(ref) if ref else "-",
             "delivered": conv.get("delivered", "learned"),
+            "half_cell": _half_cell(row),
+            "half_cell_flagged": bool(row and row.grid_check and row.grid_check.get("flagged")),
             "expected_m": row.expected_m if row else math.nan,
             "main_event": f"{main[0]} ({format_prob(main[1])})" if main else "none",
             "agreement": conv["agreement"],
@@ -438,8 +440,9 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
     width, height = site.extent_m
     assume = (f"The site: centre {notation.hemisphere(site.centre_lonlat[1], site.centre_lonlat[0])} (WGS 84), "
               f"{width:.0f} m east-west x {height:.0f} m north-south. "
-              f"A grid of {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m; {dyn.n_actions} move "
-              f"directions; a move veers to a neighbouring direction with probability {dyn.slip:g}"
+              f"A grid of {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m; {dyn.n_actions} headings, "
+              f"one decision every {dyn.move_length_m(grid.cell_m):g} m; a move veers to a neighbouring heading "
+              f"with probability {dyn.slip:g}"
               + (f" and stalls with probability {dyn.stall:g}" if dyn.stall else "")
               + f"; {_count(len(site.drifts), 'drift zone')} as drawn"
               + ("" if math.isclose(base, 1.0) else f" x {base:g}")
@@ -478,6 +481,19 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
             ("Is the answer trustworthy?", trust, bool(bad) or bool(split) or never > 0)]
 
 
+def _half_cell(row) -> str:
+    """The half-cell check of a row: '9.7e-5 at 2.25 m cells (-87%; beyond tolerance)' or why it was skipped."""
+    check = row.grid_check if row is not None else None
+    if not check:
+        return "-"
+    if check.get("skipped"):
+        return f"not checked: {check['skipped']}"
+    rel = check.get("relative")
+    diff = f"{100 * rel:+.0f}%" if rel is not None else f"{check['difference']:+.1e}"
+    verdict = "beyond tolerance: the figure depends on the cell size" if check["flagged"] else "within tolerance"
+    return f"{format_prob(check['p_incident_fine'])} at {check['fine_cell_m']:g} m cells ({diff}; {verdict})"
+
+
 def _section_routes(content: dict, p: dict) -> list:
     eps, base, strong = content["noise"], content["drift_scale"], content["strong_drift"]
     c, s = p["cautious"], p["shortest"]
@@ -498,7 +514,9 @@ def _section_routes(content: dict, p: dict) -> list:
         ["closest approach to a hazard", clearance(c), clearance(s)],
         [f"P(incident), noise {eps:g}, drift x{base:g}", *both("p_incident")],
         ["P(incident) over the training runs (range)", *both("p_incident_range")],
+        ["the same policy re-evaluated at half the cell size", *both("half_cell")],
     ]
+    half_row = len(rows) - 1
     if strong is not None:
         rows.append([f"P(incident), noise {eps:g}, drift x{strong:g}", *both("p_incident_strong")])
         if c["p_incident_strong_range"] != "-":
@@ -512,6 +530,7 @@ def _section_routes(content: dict, p: dict) -> list:
     ]
     alerts = [(len(rows) - 1, k + 1) for k, x in enumerate((c, s)) if not x["converged"]]
     alerts += [(1, k + 1) for k, x in enumerate((c, s)) if not x["reached_goal"]]
+    alerts += [(half_row, k + 1) for k, x in enumerate((c, s)) if x["half_cell_flagged"]]
     return [
         _table(["", "cautious route", "shortest route"], rows, alerts=alerts),
         _para(f"Nominal route: the path each policy intends (its planned move and the most likely outcome of each "
@@ -520,8 +539,8 @@ def _section_routes(content: dict, p: dict) -> list:
               f"Drift x1: drift zones as drawn (the forecast); x2: twice as strong. Closest approach: distance "
               f"from the waypoint legs to a hazard as drawn, buffers not included.", small=True),
         _figure("routes.png", "map with both routes",
-                "Site, zones, drift arrows (direction of the mean push, drawn above the routes) and both nominal "
-                "routes with their waypoints; hazards that end the run are hatched. Distances in metres."),
+                "Site, zones, drift arrows (mean push over one cell of travel, drawn above the routes) and both "
+                "nominal routes with their waypoints; hazards that end the run are hatched. Distances in metres."),
     ]
 
 
@@ -716,8 +735,9 @@ def _section_site(inputs: BriefInputs, content: dict) -> list:
         elif zone.role == "rough":
             what = f"moves starting here cost {zone.cost_factor:g} x their length"
         else:
-            what = (f"pushes toward {zone.toward_deg:.0f} deg ({_compass(zone.toward_deg)}) by {zone.push_m:g} m per "
-                    f"move, spread {zone.spread_m:g} m, on {100 * zone.chance:g}% of moves")
+            what = (f"pushes toward {zone.toward_deg:.0f} deg ({_compass(zone.toward_deg)}) by {zone.drift_per_m:g} m per "
+                    f"metre travelled, spread {zone.spread_per_sqrt_m:g} m per square-root metre, "
+                    f"on {100 * zone.chance:g}% of moves")
         zones.append([zone.name, zone.role, what])
     blocks = [_table(["", ""], summary)]
     if zones:
@@ -739,8 +759,8 @@ def _assumptions(inputs: BriefInputs, eps: float) -> list[tuple[str, str]]:
     return [
         ("Grid", f"{grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m; a cell is hazard when a buffered "
                  f"hazard covers {overlap}, inside when the boundary covers it {cover}"),
-        ("Moves", f"{dyn.n_actions} directions; slip {dyn.slip:g} (the move veers to a neighbouring direction), "
-                  f"stall {dyn.stall:g}"),
+        ("Moves", f"{dyn.n_actions} headings; move length {dyn.move_length_m(grid.cell_m):g} m between heading "
+                  f"decisions; per move: slip {dyn.slip:g} (veers to a neighbouring heading), stall {dyn.stall:g}"),
         ("Drift", f"as drawn x {dyn.drift_scale:g} for planning; risk table also at x "
                   f"{', '.join(f'{m:g}' for m in settings.drift_scales)}"),
         ("Execution noise", f"{eps:g} (share of moves made in a random direction) for training the cautious policy "

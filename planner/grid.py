@@ -2,7 +2,8 @@
 
 This stage owns cell geometry (square cells of ``cell_m`` metres, row 0 at the south
 edge, column 0 at the west edge), the conservative labelling rules, rough-cell cost
-factors, the per-cell drift distributions, and the deterministic shortest-path costs
+factors, which drift zones act in each cell (what they do to the vehicle is
+``planner.motion``'s), and the deterministic shortest-path costs on the cell lattice
 (Dijkstra) that later stages use as a heuristic and to size the hazard penalty.
 """
 
@@ -73,14 +74,25 @@ class HazardInfo:
 
 @dataclass(frozen=True)
 class DriftInfo:
-    """A drift zone as the grid needs it: push (east, north) metres, spread, chance."""
+    """A drift zone as a per-cell field: what it does, in physical units (see ``planner.motion``).
+
+    ``ratio`` is the mean displacement in metres per metre of move length, toward grid
+    bearing ``toward_deg``; ``spread`` the standard deviation in metres after one metre
+    of travel (it grows with the square root of the distance); ``chance`` the
+    probability that the zone acts on a move.
+    """
 
     name: str
-    east_m: float
-    north_m: float
-    spread_m: float = 0.0
+    ratio: float
+    toward_deg: float = 0.0
+    spread: float = 0.0
     chance: float = 1.0
     feature: int = -1
+
+    def vector_per_m(self) -> tuple[float, float]:
+        """Mean drift as (east, north) metres per metre travelled, when the zone acts."""
+        rad = math.radians(self.toward_deg)
+        return (self.ratio * math.sin(rad), self.ratio * math.cos(rad))
 
 
 @dataclass(frozen=True)
@@ -195,107 +207,6 @@ def estimate_model_bytes(n_cells: int, n_actions: int, outcomes_per_action: floa
     return int(n_cells * n_actions * (outcomes_per_action * per_outcome + 8))
 
 
-# ----------------------------------------------------------------------------- drift
-
-
-def axis_distribution(mean: float, sd: float) -> tuple[np.ndarray, np.ndarray]:
-    """A discrete distribution over whole-cell offsets with the given mean and spread.
-
-    Uses at most three points ``k - s, k, k + s`` (``k`` the nearest integer to the
-    mean, ``s`` the smallest step that can carry the variance), which reproduces the
-    mean exactly and the standard deviation exactly when it is at least what a
-    fractional mean needs (``sqrt(f (1 - f))`` for fractional part ``f``); below that,
-    the two neighbouring integers carry the mean and the spread is that minimum.
-
-    Returns offsets (int64) and probabilities (float64) with zero-probability points
-    removed.
-
-    Examples
-    --------
-    >>> offsets, probs = axis_distribution(0.25, 0.0)
-    >>> offsets.tolist(), [round(float(p), 2) for p in probs]
-    ([0, 1], [0.75, 0.25])
-    """
-    k = int(round(mean))
-    d = mean - k
-    m2 = sd * sd + d * d
-    if m2 <= abs(d) + 1e-15:
-        if d == 0.0:
-            return np.array([k], dtype=np.int64), np.array([1.0])
-        lo = math.floor(mean)
-        frac = mean - lo
-        offsets, probs = np.array([lo, lo + 1], dtype=np.int64), np.array([1.0 - frac, frac])
-    else:
-        s = max(1, math.ceil(math.sqrt(m2) - 1e-12))
-        outer = m2 / (s * s)
-        plus, minus = (outer + d / s) / 2.0, (outer - d / s) / 2.0
-        offsets = np.array([k - s, k, k + s], dtype=np.int64)
-        probs = np.array([minus, 1.0 - outer, plus])
-    probs = np.clip(probs, 0.0, 1.0)
-    keep = probs > 1e-15
-    offsets, probs = offsets[keep], probs[keep]
-    return offsets, probs / probs.sum()
-
-
-def zone_drift_distribution(info: DriftInfo, cell_m: float, scale: float = 1.0):
-    """Offsets ``(n, 2)`` as (d_row, d_col) in cells, and probabilities, for one zone.
-
-    ``scale`` multiplies push and spread (a stronger wind than forecast); ``chance``
-    mixes in "no push" with probability ``1 - chance``.
-    """
-    east, north = info.east_m * scale / cell_m, info.north_m * scale / cell_m
-    sd = info.spread_m * scale / cell_m
-    cols, pc = axis_distribution(east, sd)
-    rows, pr = axis_distribution(north, sd)
-    offsets = np.array([(r, c) for r in rows for c in cols], dtype=np.int64).reshape(-1, 2)
-    probs = np.outer(pr, pc).ravel() * info.chance
-    if info.chance < 1.0:
-        offsets = np.vstack([offsets, [[0, 0]]])
-        probs = np.append(probs, 1.0 - info.chance)
-    return _merge_offsets(offsets, probs)
-
-
-def _merge_offsets(offsets: np.ndarray, probs: np.ndarray):
-    uniq, inverse = np.unique(offsets, axis=0, return_inverse=True)
-    merged = np.bincount(inverse.ravel(), weights=probs, minlength=len(uniq))
-    keep = merged > 1e-15
-    merged = merged[keep]
-    return uniq[keep].astype(np.int64), merged / merged.sum()
-
-
-def drift_tables(grid: Grid, scale: float = 1.0):
-    """Per-class drift distributions as flat arrays, for the model kernels.
-
-    Returns ``ptr`` (n_classes + 1,), ``d_row``, ``d_col`` (int64) and ``prob`` (float64):
-    class ``k`` owns entries ``ptr[k]:ptr[k + 1]``. Overlapping zones convolve
-    (their pushes add as independent vectors).
-    """
-    if not (math.isfinite(scale) and scale >= 0):
-        raise SettingsError(f"--drift-scale must be a finite number >= 0, got {scale}")
-    reach = max(grid.shape)
-    for d in grid.drifts:
-        span = (math.hypot(d.east_m, d.north_m) + 4.0 * d.spread_m) * scale / grid.cell_m
-        if span > reach:
-            raise SettingsError(
-                f"drift zone {d.name!r} at drift scale {scale:g} pushes up to {span * grid.cell_m:.0f} m per move, "
-                f"more than the whole grid ({reach * grid.cell_m:.0f} m)"
-            )
-    per_zone = [zone_drift_distribution(d, grid.cell_m, scale) for d in grid.drifts]
-    ptr, rows, cols, probs = [0], [], [], []
-    for members in grid.drift_members:
-        offsets, p = np.zeros((1, 2), dtype=np.int64), np.ones(1)
-        for m in members:
-            zo, zp = per_zone[m]
-            offsets = (offsets[:, None, :] + zo[None, :, :]).reshape(-1, 2)
-            p = np.outer(p, zp).ravel()
-            offsets, p = _merge_offsets(offsets, p)
-        rows.append(offsets[:, 0])
-        cols.append(offsets[:, 1])
-        probs.append(p)
-        ptr.append(ptr[-1] + len(p))
-    return (np.asarray(ptr, dtype=np.int64), np.concatenate(rows), np.concatenate(cols), np.concatenate(probs))
-
-
 # ----------------------------------------------------------------------------- building
 
 
@@ -389,7 +300,8 @@ def rasterise(site, spec: GridSpec) -> Grid:
         start=tuple(int(v) for v in np.unravel_index(start, shape)), cost_factor=cost.reshape(shape),
         drift_class=drift_class.reshape(shape).astype(np.int32), drift_members=members,
         hazards=tuple(HazardInfo(h.name, h.ends_run, h.penalty_m, h.feature) for h in hazards),
-        drifts=tuple(DriftInfo(d.name, *d.push_vector_m, d.spread_m, d.chance, d.feature) for d in drifts),
+        drifts=tuple(DriftInfo(d.name, d.drift_per_m, d.grid_toward_deg, d.spread_per_sqrt_m, d.chance, d.feature)
+                     for d in drifts),
         warnings=tuple(warnings_out),
     )
     if not np.isfinite(cost_to_goal(grid, 8)[grid.start_index]):
@@ -494,19 +406,20 @@ def grid_from_arrays(
 # ----------------------------------------------------------------------------- shortest paths
 
 
-#: (d_row, d_col) of the eight king moves, clockwise from north; index = action.
+#: (d_row, d_col) of the eight king moves, clockwise from north: the cell lattice the
+#: deterministic shortest paths walk (geometry, not the vehicle: see ``planner.motion``).
 KING_MOVES = np.array([(1, 0), (1, 1), (0, 1), (-1, 1), (-1, 0), (-1, -1), (0, -1), (1, -1)], dtype=np.int64)
 #: (d_row, d_col) of the four rook moves, clockwise from north.
 ROOK_MOVES = KING_MOVES[::2].copy()
 
 
-def moves_for(n_actions: int) -> np.ndarray:
-    """The action table: row ``a`` is the (d_row, d_col) of action ``a``."""
-    if n_actions == 8:
-        return KING_MOVES
-    if n_actions == 4:
+def lattice_moves(n_headings: int) -> np.ndarray:
+    """The cell-lattice moves for shortest paths: rook moves for 4 headings, king moves otherwise."""
+    if n_headings == 4:
         return ROOK_MOVES
-    raise SettingsError(f"--moves must be 4 or 8, got {n_actions}")
+    if n_headings in (8, 16):
+        return KING_MOVES
+    raise SettingsError(f"--headings must be 4, 8 or 16, got {n_headings!r}")
 
 
 def _deterministic_moves(grid: Grid, n_actions: int, hazard_penalty_m, unit_cost: bool):
@@ -524,7 +437,7 @@ def _deterministic_moves(grid: Grid, n_actions: int, hazard_penalty_m, unit_cost
             if not grid.hazards[h].ends_run:
                 extra[grid.label == h] = pen
     rows, cols = np.indices(grid.shape)
-    for dr, dc in moves_for(n_actions):
+    for dr, dc in lattice_moves(n_actions):
         r1, c1 = rows + dr, cols + dc
         valid = (r1 >= 0) & (r1 < n_rows) & (c1 >= 0) & (c1 < n_cols) & ok & ~grid.goal
         r1c, c1c = np.clip(r1, 0, n_rows - 1), np.clip(c1, 0, n_cols - 1)

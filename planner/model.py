@@ -1,8 +1,9 @@
 """The stochastic grid MDP: one transition table that every later stage reads.
 
-This stage owns the action encoding (``planner.grid.moves_for``), the dynamics
-(actuation slip, stall, drift, swept-path incidents, edges, goal) and the outcome
-table. The table is CSR-style: the outcomes of (state ``s``, action ``a``) are the
+This stage combines the grid's geometry with the vehicle's motion
+(``planner.motion``: headings, move length, slip, stall, the discretised landing
+distributions) into the outcome table, applying the swept-path rule (incidents,
+edges, goal) and the costs. The table is CSR-style: the outcomes of (state ``s``, action ``a``) are the
 entries ``offsets[s * n_actions + a] : offsets[s * n_actions + a + 1]`` of the flat
 arrays ``next_state``, ``prob``, ``reward``, ``event`` and ``crossed``. Learners sample
 from it and the exact methods build sparse matrices from it, so they cannot disagree.
@@ -21,15 +22,8 @@ import numba
 import numpy as np
 
 from planner.errors import SettingsError
-from planner.grid import (
-    FREE,
-    OUTSIDE,
-    Grid,
-    cost_to_goal,
-    drift_tables,
-    estimate_model_bytes,
-    moves_for,
-)
+from planner.grid import FREE, OUTSIDE, Grid, cost_to_goal, estimate_model_bytes
+from planner.motion import Dynamics, landing_tables, move_lengths_m
 
 EVENT_NONE = 0
 EVENT_GOAL = 1
@@ -38,54 +32,6 @@ EVENT_HAZARD = 3
 
 #: Probabilities of each (state, action) must sum to 1 within this.
 PROB_TOLERANCE = 1e-9
-
-
-@dataclass(frozen=True)
-class Dynamics:
-    """How the vehicle executes a move.
-
-    Parameters
-    ----------
-    n_actions : 8 (king moves, default) or 4.
-    slip : probability the executed move is a neighbouring direction (±45° with 8
-        moves, ±90° with 4), split evenly between the two.
-    stall : probability the vehicle does not move at all (drift still acts).
-    drift_scale : multiplies every drift zone's push and spread (1 = as forecast).
-    edge : ``"boundary"`` (leaving the boundary ends the run as an incident) or
-        ``"wall"`` (the landing cell is clamped into the grid; if it is outside the
-        boundary the vehicle stays put).
-    step_cost : ``"length"`` (a move costs its length in metres, default) or
-        ``"move"`` (every move costs one cell side), times the start cell's factor.
-    hazard_penalty_m : penalty for hazards without their own ``penalty_m`` and for
-        boundary incidents; ``None`` derives it from the site (see
-        :func:`default_penalty_m`).
-    """
-
-    n_actions: int = 8
-    slip: float = 0.1
-    stall: float = 0.0
-    drift_scale: float = 1.0
-    edge: str = "boundary"
-    step_cost: str = "length"
-    hazard_penalty_m: float | None = None
-
-    def __post_init__(self):
-        moves_for(self.n_actions)
-        for name, value in (("--slip", self.slip), ("--stall", self.stall)):
-            if not (math.isfinite(value) and 0.0 <= value <= 1.0):
-                raise SettingsError(f"{name} must be in [0, 1], got {value}")
-        if self.slip + self.stall > 1.0 + 1e-12:
-            raise SettingsError(f"--slip + --stall must be at most 1, got {self.slip + self.stall:g}")
-        if not (math.isfinite(self.drift_scale) and self.drift_scale >= 0):
-            raise SettingsError(f"--drift-scale must be a finite number >= 0, got {self.drift_scale}")
-        if self.edge not in ("boundary", "wall"):
-            raise SettingsError(f"--edge must be 'boundary' or 'wall', got {self.edge!r}")
-        if self.step_cost not in ("length", "move"):
-            raise SettingsError(f"step_cost must be 'length' or 'move', got {self.step_cost!r}")
-        if self.hazard_penalty_m is not None and not (
-            math.isfinite(self.hazard_penalty_m) and self.hazard_penalty_m > 0
-        ):
-            raise SettingsError(f"--penalty must be a positive number of metres, got {self.hazard_penalty_m}")
 
 
 @dataclass(frozen=True)
@@ -187,8 +133,8 @@ def resolve_penalties(grid: Grid, dynamics: Dynamics) -> tuple[np.ndarray, float
 
 def estimate_bytes(grid: Grid, dynamics: Dynamics) -> int:
     """Upper estimate of the model's memory, computed before building it."""
-    ptr = drift_tables(grid, dynamics.drift_scale)[0]
-    support = np.diff(ptr)[grid.drift_class.ravel()]
+    tables = landing_tables(grid, dynamics)
+    support = np.diff(tables.ptr).reshape(-1, tables.n_dirs).max(axis=1)[grid.drift_class.ravel()]
     active = grid.passable().ravel() & ~grid.goal.ravel()
     n_dirs = 3 + (1 if dynamics.stall > 0 else 0)
     mean_outcomes = float(support[active].mean()) * n_dirs if active.any() else 1.0
@@ -199,14 +145,15 @@ def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
     """Build the outcome table of the grid MDP.
 
     Every (state, action) of an active state gets the merged list of outcomes of:
-    executed direction (intended with ``1 - slip - stall``, each neighbour with
-    ``slip / 2``, none with ``stall``) times the drift distribution of the start cell;
-    the swept path from the start centre to the landing centre is traversed cell by
-    cell (supercover) and the first goal, ending hazard or boundary crossing decides.
+    executed heading (intended with ``1 - slip - stall``, each neighbour with
+    ``slip / 2``, a stall with ``stall``) times the landing distribution of that
+    heading in the start cell's drift class (``planner.motion.landing_tables``); the
+    swept path from the start centre to the landing centre is traversed cell by cell
+    (supercover) and the first goal, ending hazard or boundary crossing decides.
     """
-    moves = moves_for(dynamics.n_actions)
+    tables = landing_tables(grid, dynamics)
+    n_headings = dynamics.n_actions
     penalties, boundary_penalty, notes = resolve_penalties(grid, dynamics)
-    ptr, d_row, d_col, d_prob = drift_tables(grid, dynamics.drift_scale)
     n_rows, n_cols = grid.shape
     label = grid.label.ravel().astype(np.int64)
     ends = np.array([h.ends_run for h in grid.hazards], dtype=np.bool_)
@@ -217,16 +164,14 @@ def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
         penalties_k = penalties
     goal = grid.goal.ravel().astype(np.bool_)
     active = grid.passable().ravel() & ~goal
-    unit = np.where(np.abs(moves).sum(axis=1) == 2, math.sqrt(2.0), 1.0)
-    move_m = unit * grid.cell_m
-    step_m = move_m if dynamics.step_cost == "length" else np.full(len(moves), grid.cell_m)
+    move_m = move_lengths_m(n_headings, tables.move_m)
+    step_m = move_m if dynamics.step_cost == "length" else np.full(n_headings, tables.move_m)
     slip_half = dynamics.slip / 2.0
     args = (
         n_rows, n_cols, label, goal, active, grid.cost_factor.ravel().astype(np.float64),
-        ends, penalties_k.astype(np.float64), float(boundary_penalty),
-        moves[:, 0].copy(), moves[:, 1].copy(), step_m.astype(np.float64),
+        ends, penalties_k.astype(np.float64), float(boundary_penalty), n_headings, step_m.astype(np.float64),
         1.0 - dynamics.slip - dynamics.stall, slip_half, dynamics.stall, dynamics.edge == "wall",
-        grid.drift_class.ravel().astype(np.int64), ptr, d_row, d_col, d_prob, OUTSIDE,
+        grid.drift_class.ravel().astype(np.int64), tables.ptr, tables.d_row, tables.d_col, tables.prob, OUTSIDE,
     )
     counts = _count_outcomes(*args)
     offsets = np.zeros(counts.size + 1, dtype=np.int64)
@@ -237,7 +182,7 @@ def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
         raise ArithmeticError(f"outcome probabilities sum to {sums.min()}..{sums.max()}, not 1 (a bug)")
     names = ("none", "goal", "boundary") + tuple(h.name for h in grid.hazards)
     return Model(
-        shape=grid.shape, n_actions=len(moves), dynamics=dynamics, offsets=offsets, next_state=next_state,
+        shape=grid.shape, n_actions=n_headings, dynamics=dynamics, offsets=offsets, next_state=next_state,
         prob=prob, reward=reward, event=event, crossed=crossed, active=active, goal=goal,
         start=grid.start_index, move_m=move_m, event_names=names, penalty_m=penalties,
         boundary_penalty_m=boundary_penalty, warnings=tuple(notes),
@@ -663,29 +608,33 @@ def _outcome(s, dr, dc, n_rows, n_cols, label, goal, ends, wall, outside, path_r
 
 @numba.njit(cache=True)
 def _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-           move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
+           n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
            d_prob, outside, path_r, path_c, out_next, out_prob, out_reward, out_event, out_crossed):
-    """Merged outcomes of (s, a) into the ``out_*`` scratch arrays; returns the count."""
-    n_a = move_dr.size
+    """Merged outcomes of (s, a) into the ``out_*`` scratch arrays; returns the count.
+
+    The landing table of drift class ``c`` and executed heading ``k`` (``k = n_a``: a
+    stall) is entry block ``c * (n_a + 1) + k`` of ``d_ptr``.
+    """
     k = 0
-    cls = drift_class[s]
+    base_block = drift_class[s] * (n_a + 1)
     base = -step_m[a] * cost_factor[s]
     for j in range(4):
         if j == 0:
-            p_dir, mdr, mdc = p_main, move_dr[a], move_dc[a]
+            p_dir, heading = p_main, a
         elif j == 1:
-            p_dir, mdr, mdc = p_side, move_dr[(a + 1) % n_a], move_dc[(a + 1) % n_a]
+            p_dir, heading = p_side, (a + 1) % n_a
         elif j == 2:
-            p_dir, mdr, mdc = p_side, move_dr[(a - 1) % n_a], move_dc[(a - 1) % n_a]
+            p_dir, heading = p_side, (a - 1) % n_a
         else:
-            p_dir, mdr, mdc = p_stall, 0, 0
+            p_dir, heading = p_stall, n_a
         if p_dir <= 0.0:
             continue
-        for q in range(d_ptr[cls], d_ptr[cls + 1]):
+        block = base_block + heading
+        for q in range(d_ptr[block], d_ptr[block + 1]):
             p = p_dir * d_prob[q]
             if p <= 0.0:
                 continue
-            nxt, ev, crossed, haz = _outcome(s, mdr + d_row[q], mdc + d_col[q], n_rows, n_cols, label, goal,
+            nxt, ev, crossed, haz = _outcome(s, d_row[q], d_col[q], n_rows, n_cols, label, goal,
                                              ends, wall, outside, path_r, path_c)
             found = -1
             for i in range(k):
@@ -713,11 +662,14 @@ def _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty
 
 
 @numba.njit(cache=True)
-def _scratch(d_row, d_col, n_rows, n_cols):
+def _scratch(d_ptr, d_row, d_col):
     span = 4
     for q in range(d_row.size):
         span = max(span, abs(d_row[q]) + abs(d_col[q]) + 4)
-    max_out = 4 * (d_row.size + 1)
+    widest = 1
+    for b in range(d_ptr.size - 1):
+        widest = max(widest, d_ptr[b + 1] - d_ptr[b])
+    max_out = 4 * widest
     return (np.empty(2 * span + 4, np.int64), np.empty(2 * span + 4, np.int64), np.empty(max_out, np.int64),
             np.empty(max_out, np.float64), np.empty(max_out, np.float64), np.empty(max_out, np.int64),
             np.empty(max_out, np.int64))
@@ -725,18 +677,17 @@ def _scratch(d_row, d_col, n_rows, n_cols):
 
 @numba.njit(cache=True)
 def _count_outcomes(n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-                    move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
+                    n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
                     d_col, d_prob, outside):
     n_s = n_rows * n_cols
-    n_a = move_dr.size
     counts = np.zeros(n_s * n_a, np.int64)
-    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_row, d_col, n_rows, n_cols)
+    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_ptr, d_row, d_col)
     for s in range(n_s):
         if not active[s]:
             continue
         for a in range(n_a):
             counts[s * n_a + a] = _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty,
-                                         boundary_penalty, move_dr, move_dc, step_m, p_main, p_side, p_stall,
+                                         boundary_penalty, n_a, step_m, p_main, p_side, p_stall,
                                          wall, drift_class, d_ptr, d_row, d_col, d_prob, outside, path_r,
                                          path_c, o_next, o_prob, o_reward, o_event, o_crossed)
     return counts
@@ -744,23 +695,22 @@ def _count_outcomes(n_rows, n_cols, label, goal, active, cost_factor, ends, pena
 
 @numba.njit(cache=True)
 def _fill_outcomes(offsets, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-                   move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
+                   n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
                    d_prob, outside):
     n_s = n_rows * n_cols
-    n_a = move_dr.size
     total = offsets[-1]
     next_state = np.empty(total, np.int32)
     prob = np.empty(total, np.float64)
     reward = np.empty(total, np.float64)
     event = np.empty(total, np.int16)
     crossed = np.empty(total, np.int64)
-    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_row, d_col, n_rows, n_cols)
+    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_ptr, d_row, d_col)
     for s in range(n_s):
         if not active[s]:
             continue
         for a in range(n_a):
             k = _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-                       move_dr, move_dc, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
+                       n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
                        d_col, d_prob, outside, path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed)
             lo = offsets[s * n_a + a]
             for i in range(k):
@@ -807,8 +757,8 @@ def site_summary(site, spec, dynamics: Dynamics = Dynamics()) -> dict:
             "hazard": [{"name": z.name, "ends_run": z.ends_run, "buffer_m": z.buffer_m,
                         "penalty_m": float(penalties[i])} for i, z in enumerate(site.hazards)],
             "rough": [{"name": z.name, "cost_factor": z.cost_factor} for z in site.rough],
-            "drift": [{"name": z.name, "toward_deg": round(z.toward_deg, 3), "push_m": z.push_m,
-                       "spread_m": z.spread_m, "chance": z.chance} for z in site.drifts],
+            "drift": [{"name": z.name, "toward_deg": round(z.toward_deg, 3), "drift_per_m": z.drift_per_m,
+                       "spread_per_sqrt_m": z.spread_per_sqrt_m, "chance": z.chance} for z in site.drifts],
         },
         "grid": {
             "cell_m": spec.cell_m, "rows": grid.shape[0], "cols": grid.shape[1], "cells": grid.n_cells,
@@ -819,7 +769,8 @@ def site_summary(site, spec, dynamics: Dynamics = Dynamics()) -> dict:
             "hazard_overlap": spec.hazard_overlap, "boundary_cover": spec.boundary_cover,
             "max_cells": spec.max_cells,
         },
-        "model": {"moves": dynamics.n_actions, "slip": dynamics.slip, "stall": dynamics.stall,
+        "model": {"headings": dynamics.n_actions, "move_m": dynamics.move_length_m(spec.cell_m),
+                  "slip": dynamics.slip, "stall": dynamics.stall,
                   "drift_scale": dynamics.drift_scale, "edge": dynamics.edge,
                   "hazard_penalty_m": base, "estimated_bytes": estimate_bytes(grid, dynamics)},
         "warnings": list(site.warnings) + list(grid.warnings) + notes,

@@ -294,8 +294,9 @@ def _drift_arrows(ax, grid: Grid):
         if not members:
             continue
         mask = grid.drift_class == k
-        east[mask] = sum(grid.drifts[m].east_m * getattr(grid.drifts[m], "chance", 1.0) for m in members)
-        north[mask] = sum(grid.drifts[m].north_m * getattr(grid.drifts[m], "chance", 1.0) for m in members)
+        # The push over one cell of travel, so arrows keep their size at any drift ratio's scale.
+        east[mask] = sum(grid.drifts[m].vector_per_m()[0] * grid.cell_m * grid.drifts[m].chance for m in members)
+        north[mask] = sum(grid.drifts[m].vector_per_m()[1] * grid.cell_m * grid.drifts[m].chance for m in members)
     strength = np.hypot(east, north)
     sel = np.zeros(grid.shape, dtype=bool)
     sel[step // 2::step, step // 2::step] = True

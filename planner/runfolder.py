@@ -378,7 +378,7 @@ class PlanSettings:
     episodes_shortest: int | None = None
     noises: tuple[float, ...] = (0.0, 0.05, 0.1, 0.2)
     drift_scales: tuple[float, ...] = (1.0, 1.5, 2.0)
-    budget: int | None = None
+    budget_m: float | None = None
     rollouts: int = 20000
     seed: int | None = None
     crs: str | None = None
@@ -389,6 +389,7 @@ class PlanSettings:
     tie_m: float = 0.01
     cautious_schedule: str = "episodes"
     shortest_schedule: str = "sweeps"
+    grid_check: bool = True
 
     def __post_init__(self):
         if not 0.0 <= self.learn.epsilon < 1.0:
@@ -400,8 +401,8 @@ class PlanSettings:
         for m in self.drift_scales:
             if not (np.isfinite(m) and m >= 0.0):
                 raise SettingsError(f"--table-drifts values must be finite and >= 0, got {m}")
-        if self.budget is not None and self.budget < 1:
-            raise SettingsError(f"--budget must be a whole number of moves >= 1, got {self.budget}")
+        if self.budget_m is not None and not (np.isfinite(self.budget_m) and self.budget_m > 0):
+            raise SettingsError(f"--budget-m must be a positive number of metres, got {self.budget_m}")
         if self.rollouts < 0:
             raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
         if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
@@ -410,7 +411,7 @@ class PlanSettings:
         check_seed(self.seed, "--root-seed")
         check_counts(training_runs=self.learn.n_seeds,
                      episodes=max(self.learn.episodes, self.episodes_shortest or 0),
-                     max_steps=self.learn.max_steps, rollouts=self.rollouts, budget=self.budget,
+                     max_steps=self.learn.max_steps, rollouts=self.rollouts, budget_m=self.budget_m,
                      table_noises=len(self.noises), table_drifts=len(self.drift_scales))
         from planner.site import MAX_PENALTY_M
 
@@ -424,7 +425,7 @@ class PlanSettings:
 #: beyond any useful plan, and low enough that no setting alone can run for days.
 COUNT_LIMITS = {
     "--training-runs": 100, "--episodes": 100_000_000, "--max-steps": 10_000_000, "--rollouts": 10_000_000,
-    "--budget": 1_000_000, "--table-noises": 50, "--table-drifts": 50,
+    "--budget-m": 10_000_000, "--table-noises": 50, "--table-drifts": 50,
 }
 #: Share of the memory the system reports available that one plan may plan to use.
 MEMORY_SHARE = 0.8
@@ -518,10 +519,11 @@ def settings_record(settings: PlanSettings) -> dict:
 
 #: Types of the plain settings in a manifest (the nested ones are checked by their classes).
 SETTING_TYPES = {
-    "episodes_shortest": (int, type(None)), "budget": (int, type(None)), "rollouts": (int,),
+    "episodes_shortest": (int, type(None)), "budget_m": (int, float, type(None)), "rollouts": (int,),
     "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
     "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
     "cautious_schedule": (str,), "shortest_schedule": (str,),
+    "grid_check": (bool,),
 }
 
 
@@ -529,7 +531,7 @@ def settings_from_record(record: dict) -> PlanSettings:
     """Rebuild :class:`PlanSettings` from a manifest's ``settings``."""
     from planner.grid import GridSpec
     from planner.learn import LearnSettings
-    from planner.model import Dynamics
+    from planner.motion import Dynamics
 
     try:
         rec = dict(record)
@@ -678,17 +680,32 @@ class PlanResult:
     seed_p_incident: dict = field(default_factory=dict)
     #: policy name -> (drift scale, the same per-seed figures at the table's strongest drift)
     seed_p_incident_strong: dict = field(default_factory=dict)
+    #: the half-cell check of each delivered policy (``planner.risk.GridCheck``)
+    grid_checks: list = field(default_factory=list)
 
 
-def check_drift_scales(grid, option: str, scales) -> None:
+def check_drift_scales(grid, dynamics, option: str, scales) -> None:
     """Refuse, naming ``option``, any drift scale that would push a vehicle across the whole grid."""
-    from planner.grid import drift_tables
+    from planner.motion import landing_tables
 
     for scale in scales:
         try:
-            drift_tables(grid, scale)
+            landing_tables(grid, dynamics, scale)
         except SettingsError as err:
             raise SettingsError(f"{option} {scale:g}: {err}") from err
+
+
+def budget_moves(settings_dynamics, cell_m: float, budget_m: float | None) -> int | None:
+    """The whole moves a travel budget in metres allows, refusing one shorter than a move."""
+    from planner.motion import moves_within
+
+    if budget_m is None:
+        return None
+    move = settings_dynamics.move_length_m(cell_m)
+    moves = moves_within(budget_m, move)
+    if moves < 1:
+        raise SettingsError(f"--budget-m {budget_m:g} m is shorter than one move ({move:g} m)")
+    return moves
 
 
 def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None, *, site=None,
@@ -722,8 +739,9 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
     # Every drift scale of the risk table must make a model: find out before training.
-    check_drift_scales(grid, "--plan-drift", (settings.dynamics.drift_scale,))
-    check_drift_scales(grid, "--table-drifts", settings.drift_scales)
+    check_drift_scales(grid, settings.dynamics, "--plan-drift", (settings.dynamics.drift_scale,))
+    check_drift_scales(grid, settings.dynamics, "--table-drifts", settings.drift_scales)
+    budget_moves(settings.dynamics, grid.cell_m, settings.budget_m)
     check_plan_size(grid, settings)
     with progress.task("building the model"):
         model = build_model(grid, settings.dynamics)
@@ -822,20 +840,19 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
                                mc_halfwidth=_mc_halfwidth(find_row(risk_rows, name, eps, base)), fmt=format_prob)
         convergence[name] = convergence[name].judged_by(verdict, **_training_notes(learned[name]))
     risk_rows = _with_verdicts(risk_rows, convergence, references, eps, base)
+    t = time.perf_counter()
+    risk_rows, checks = _grid_check(site, grid, settings, model, greedy, risk_rows, progress)
+    timings["grid_check_s"] = time.perf_counter() - t
     return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
                       convergence=convergence, references=references, paths=paths, routes=routes,
                       risk_rows=risk_rows, root_seed=root, timings=timings, seed_p_incident=seed_p_incident,
-                      seed_p_incident_strong=seed_p_incident_strong)
+                      seed_p_incident_strong=seed_p_incident_strong, grid_checks=checks)
 
 
 #: Largest widening of a learned tie set by the seeds' spread, as a share of the cheapest move.
 LEARNED_SLACK_SHARE = 0.05
 #: Reference rows of the risk table, by the learned policy they judge.
 REFERENCE_ROWS = {"cautious": "exact on-policy", "shortest": "exact optimal"}
-#: Normal quantile of the two-sided 99 % interval.
-Z99 = 2.5758293035489004
-
-
 def _training_notes(learned) -> dict:
     """What a learner's training took, and what to try when its verdict fails."""
     how = learned.settings
@@ -849,13 +866,9 @@ def _training_notes(learned) -> dict:
 
 def _mc_halfwidth(row) -> float:
     """Half-width of the Clopper-Pearson 99 % interval of a row's Monte Carlo P(incident)."""
-    from planner.risk import exact_interval
+    from planner.risk import mc_halfwidth
 
-    mc = None if row is None else row.mc.get("incident")
-    if mc is None or mc.n <= 0:
-        return 0.0
-    lo, hi = exact_interval(mc.count, mc.n, Z99)
-    return max(mc.estimate - lo, hi - mc.estimate)
+    return mc_halfwidth(row)
 
 
 def _with_verdicts(rows, convergence, references, eps: float, base: float) -> list:
@@ -879,6 +892,31 @@ def _with_verdicts(rows, convergence, references, eps: float, base: float) -> li
     return out
 
 
+def _grid_check(site, grid, settings, model, greedy, rows, progress):
+    """The half-cell check of the delivered policies, attached to their risk rows."""
+    from planner.risk import GridCheck, find_row, half_cell_check
+
+    eps = settings.learn.epsilon
+    delivered = {name: greedy[name] for name in POLICIES}
+    if settings.grid_check:
+        progress(f"half-cell check: both policies re-evaluated at {grid.cell_m / 2:g} m cells")
+        checks = half_cell_check(site, grid, settings.grid, settings.dynamics, model, delivered, rows, noise=eps)
+    else:
+        checks = []
+        for name in POLICIES:
+            row = find_row(rows, name, eps, settings.dynamics.drift_scale)
+            checks.append(GridCheck(policy=name, noise=eps, cell_m=grid.cell_m, fine_cell_m=grid.cell_m / 2,
+                                    p_incident=row.p_incident, skipped="switched off (--no-grid-check)"))
+    by_name = {c.policy: c for c in checks}
+    out = []
+    for row in rows:
+        check = by_name.get(row.policy)
+        if check is not None and row.noise == eps and row.drift_scale == settings.dynamics.drift_scale:
+            row = dataclasses.replace(row, grid_check=check.as_dict())
+        out.append(row)
+    return out, checks
+
+
 def _routes(site, grid, model, paths) -> dict:
     from planner.route import build_route
 
@@ -896,11 +934,12 @@ def _risk(site, grid, settings, model, greedy, references, seed, progress) -> li
     n_rows = len(policies) * len(settings.noises) * len(settings.drift_scales)
     progress(f"risk table: {len(policies)} policies x {len(settings.noises)} noise levels x "
              f"{len(settings.drift_scales)} drift scales, {settings.rollouts:,} rollouts per row")
+    budget = budget_moves(settings.dynamics, grid.cell_m, settings.budget_m)
     with progress.task("risk table (rows)", n_rows) as report:
         return sensitivity(grid, settings.dynamics, policies, noises=settings.noises,
-                           drift_scales=settings.drift_scales, budget=settings.budget, rollouts=settings.rollouts,
+                           drift_scales=settings.drift_scales, budget=budget, rollouts=settings.rollouts,
                            seed=seed, model=model, progress=report,
-                           flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales, settings.budget))
+                           flag_z=table_z(grid, len(policies), settings.noises, settings.drift_scales, budget))
 
 
 def table_z(grid, n_policies: int, noises, drift_scales, budget) -> float:
@@ -1102,6 +1141,10 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
         "versions": versions(),
         "grid": {"rows": result.grid.shape[0], "cols": result.grid.shape[1], "cell_m": result.grid.cell_m,
                  "x0": result.grid.x0, "y0": result.grid.y0},
+        "motion": {"cell_m": result.grid.cell_m, "move_m": settings.dynamics.move_length_m(result.grid.cell_m),
+                   "headings": settings.dynamics.n_actions,
+                   "budget_moves": budget_moves(settings.dynamics, result.grid.cell_m, settings.budget_m)},
+        "grid_check": [c.as_dict() for c in result.grid_checks],
         "model": {"outcomes": result.model.n_outcomes, "bytes": result.model.nbytes,
                   "hazard_penalty_m": [float(p) for p in result.model.penalty_m],
                   "boundary_penalty_m": result.model.boundary_penalty_m, "warnings": list(result.model.warnings)},
@@ -1362,19 +1405,19 @@ def rebuild_grid(run: Run):
     The run's policy arrays are checked against the grid (shape and action range).
     """
     from planner.errors import BudgetError
-    from planner.grid import moves_for, rasterise
+    from planner.grid import rasterise
     from planner.site import site_from_bytes
 
     s = run.settings
     try:
         site = site_from_bytes(run.blobs["site.geojson"], source=str(run.site_path), crs=s.crs, fix=s.fix)
         grid = rasterise(site, s.grid)
-        check_drift_scales(grid, "settings.dynamics.drift_scale", (s.dynamics.drift_scale,))
-        check_drift_scales(grid, "settings.drift_scales", s.drift_scales)
+        check_drift_scales(grid, s.dynamics, "settings.dynamics.drift_scale", (s.dynamics.drift_scale,))
+        check_drift_scales(grid, s.dynamics, "settings.drift_scales", s.drift_scales)
     except (SettingsError, BudgetError) as err:
         raise RunFolderError(f"{run.folder}: its recorded settings do not rebuild the run ({err}); the manifest "
                              "was changed") from err
-    n_states, n_actions = grid.n_cells, len(moves_for(s.dynamics.n_actions))
+    n_states, n_actions = grid.n_cells, s.dynamics.n_actions
     for key in POLICY_ARRAYS:
         arr = run.arrays[key]
         expected = (n_states,) if key.startswith("greedy") else (n_states, n_actions)
@@ -1410,7 +1453,7 @@ RISK_POLICIES = {
 }
 
 
-def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, seed=None,
+def run_risk(run: Run, grid, *, noises, drift_scales, budget_m=None, rollouts=0, seed=None,
              policies=("cautious", "shortest"), progress=None) -> list:
     """The risk table of a run's policies at the given settings (model rebuilt per drift scale).
 
@@ -1419,7 +1462,8 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget=None, rollouts=0, s
     from planner.risk import sensitivity
 
     check_seed(seed, "--rollout-seed")
-    check_drift_scales(grid, "--table-drifts", drift_scales)
+    check_drift_scales(grid, run.settings.dynamics, "--table-drifts", drift_scales)
+    budget = budget_moves(run.settings.dynamics, grid.cell_m, budget_m)
     chosen = {}
     for name in policies:
         if name not in RISK_POLICIES:

@@ -38,6 +38,9 @@ MIN_AREA_M2 = 1e-4
 MAX_COST_FACTOR = 1000.0
 MAX_PENALTY_M = 1e6
 MAX_DISTANCE_M = 10_000.0
+#: Drift of more than this many metres per metre travelled is no drift but a current
+#: that carries the vehicle: refuse it as a drawing mistake (also bounds the spread).
+MAX_DRIFT_PER_M = 10.0
 #: Largest number of vertices accepted in one feature.
 MAX_VERTICES_PER_FEATURE = 200_000
 
@@ -58,6 +61,15 @@ ROLES = ("boundary", "hazard", "rough", "drift", "start", "goal")
 ZONE_ROLES = ("hazard", "rough", "drift")
 
 _POLYGONAL = ("Polygon", "MultiPolygon")
+#: Version of the site-file schema this code reads (top-level ``properties.site_schema``).
+SITE_SCHEMA = 2
+#: Properties of earlier schemas that are refused, and what replaced them.
+REPLACED_PROPERTIES = {
+    "push_m": "'drift_per_m' (metres of drift per metre travelled, a ratio; schema 2 states drift "
+              "per metre, not per move)",
+    "spread_m": "'spread_per_sqrt_m' (standard deviation in metres after 1 m of travel, growing with "
+                "the square root of the distance; schema 2 states spread per metre, not per move)",
+}
 _GEOMETRY_TYPES = {
     "boundary": _POLYGONAL,
     "hazard": _POLYGONAL,
@@ -70,7 +82,7 @@ _PROPERTIES = {
     "boundary": {"role", "name"},
     "hazard": {"role", "name", "ends_run", "penalty_m", "buffer_m"},
     "rough": {"role", "name", "cost_factor"},
-    "drift": {"role", "name", "toward_deg", "from_deg", "push_m", "spread_m", "chance"},
+    "drift": {"role", "name", "toward_deg", "from_deg", "drift_per_m", "spread_per_sqrt_m", "chance"},
     "start": {"role", "name"},
     "goal": {"role", "name"},
 }
@@ -82,7 +94,11 @@ class Zone:
 
     ``geometry`` is the true polygon; ``buffered`` adds ``buffer_m`` (hazards only).
     ``toward_deg`` is always the direction the drift pushes toward (clockwise from
-    north), whichever convention the file used.
+    true north), whichever convention the file used; ``grid_toward_deg`` is the same
+    direction measured from the working frame's grid north (the meridian convergence
+    at the zone removed). ``drift_per_m`` is metres of displacement per metre
+    travelled, ``spread_per_sqrt_m`` the standard deviation in metres after one
+    metre of travel (it grows with the square root of the distance).
     """
 
     feature: int
@@ -95,20 +111,20 @@ class Zone:
     buffer_m: float = 0.0
     cost_factor: float = 1.0
     toward_deg: float = 0.0
-    push_m: float = 0.0
-    spread_m: float = 0.0
+    drift_per_m: float = 0.0
+    spread_per_sqrt_m: float = 0.0
     chance: float = 1.0
+    grid_toward_deg: float = 0.0
 
     @property
     def label(self) -> str:
         """How messages name this zone: ``feature 3 ('North pond')``."""
         return f"feature {self.feature} ({self.name!r})"
 
-    @property
-    def push_vector_m(self) -> tuple[float, float]:
-        """Push per move as (east, north) metres, when the push acts (``chance`` aside)."""
-        rad = math.radians(self.toward_deg)
-        return (self.push_m * math.sin(rad), self.push_m * math.cos(rad))
+    def drift_vector(self) -> tuple[float, float]:
+        """Drift as (east, north) metres per metre travelled in the working frame (``chance`` aside)."""
+        rad = math.radians(self.grid_toward_deg)
+        return (self.drift_per_m * math.sin(rad), self.drift_per_m * math.cos(rad))
 
 
 @functools.lru_cache(maxsize=16)
@@ -156,6 +172,15 @@ class Frame:
         if not (np.all(np.isfinite(lon)) and np.all(np.isfinite(lat))):
             raise SiteError("coordinates cannot be taken back to lon/lat")
         return lon, lat
+
+    def meridian_convergence_deg(self, lon: float, lat: float) -> float:
+        """Angle from true north to grid north at a point, degrees (grid bearing = true - this)."""
+        from pyproj import CRS, Proj
+
+        value = float(Proj(CRS.from_user_input(self.crs)).get_factors(lon, lat).meridian_convergence)
+        if not math.isfinite(value):
+            raise SiteError(f"the working frame has no meridian convergence at lon {lon:.6f}, lat {lat:.6f}")
+        return value
 
     def scale_distortion(self, lon, lat) -> float:
         """Largest |k - 1| of the frame's point scale over the given points."""
@@ -312,6 +337,41 @@ def _whole_number(text: str) -> int | float:
     return int(text)
 
 
+def _check_schema(obj: dict, source: str) -> None:
+    """The top-level ``properties.site_schema``, when given, must be the one this code reads."""
+    top = obj.get("properties")
+    if top is None:
+        return
+    if not isinstance(top, dict):
+        raise SiteError(f"{source}: top-level 'properties' must be an object")
+    if "site_schema" not in top or top["site_schema"] is None:
+        return
+    version = top["site_schema"]
+    if isinstance(version, bool) or not isinstance(version, int):
+        raise SiteError(f"{source}: 'site_schema' must be a whole number, got {version!r:.40}")
+    if version < SITE_SCHEMA:
+        raise SiteError(f"{source}: site_schema {version} states drift per move; this veerwise reads schema "
+                        f"{SITE_SCHEMA} (drift_per_m and spread_per_sqrt_m per metre travelled): convert the "
+                        "drift zones and set site_schema to 2")
+    if version > SITE_SCHEMA:
+        raise SiteError(f"{source}: site_schema {version} is newer than this veerwise reads ({SITE_SCHEMA}); "
+                        "upgrade veerwise")
+
+
+def _grid_bearing(frame: Frame, geom, toward_deg: float) -> float:
+    """A true bearing at a zone as a bearing from the frame's grid north.
+
+    The local frame is centred on the site, where its convergence is nil; a named CRS
+    turns true into grid bearings by the meridian convergence at the zone's
+    representative point (pyproj ``Proj.get_factors``).
+    """
+    if frame.kind != "named":
+        return toward_deg
+    p = geom.representative_point()
+    lon, lat = frame.to_lonlat([p.x], [p.y])
+    return float((toward_deg - frame.meridian_convergence_deg(lon[0], lat[0])) % 360.0)
+
+
 def _refuse_constant(name: str):
     raise ValueError(f"JSON contains {name}, which GeoJSON does not allow")
 
@@ -387,6 +447,7 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
     features = obj.get("features")
     if not isinstance(features, list):
         raise SiteError(f"{source}: 'features' must be a list")
+    _check_schema(obj, source)
 
     parsed = [_parse_feature(i, f, source) for i, f in enumerate(features)]
 
@@ -456,6 +517,8 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         buffered = geom.buffer(props.get("buffer_m", 0.0)) if props.get("buffer_m", 0.0) > 0 else geom
         if not boundary.intersects(geom):
             site_warnings.append(f"{item['label']}: lies wholly outside the boundary and has no effect")
+        if item["role"] == "drift":
+            props = dict(props, grid_toward_deg=_grid_bearing(frame, geom, props["toward_deg"]))
         zones.append(Zone(feature=item["index"], name=item["name"], role=item["role"], geometry=geom,
                           buffered=buffered, **props))
 
@@ -562,6 +625,10 @@ def _parse_feature(index: int, feature: Any, source: str) -> dict:
     role = props.get("role")
     if role not in ROLES:
         raise SiteError(f"{where}: unknown role {role!r}; expected one of {', '.join(ROLES)}")
+    for old_name, replacement in REPLACED_PROPERTIES.items():
+        if role == "drift" and props.get(old_name) is not None:
+            raise SiteError(f"{where}: property {old_name!r} (per move) is from site schema 1 and was replaced "
+                            f"by {replacement}")
     unknown = sorted(set(props) - _PROPERTIES[role])
     if unknown:
         allowed = ", ".join(sorted(_PROPERTIES[role] - {"role"}))
@@ -616,16 +683,17 @@ def _zone_properties(role: str, props: dict, where: str) -> dict:
         if has_to == has_from:
             which = "both" if has_to else "neither"
             raise SiteError(f"{where}: drift zone has {which} of 'toward_deg'/'from_deg'; give exactly one")
-        if "push_m" not in props:
-            raise SiteError(f"{where}: drift zone needs 'push_m' (>= 0, metres per move)")
+        if "drift_per_m" not in props:
+            raise SiteError(f"{where}: drift zone needs 'drift_per_m' (>= 0, metres of drift per metre travelled)")
         if has_to:
             toward = _number(props, "toward_deg", where, low=0.0, high=360.0)
         else:
             toward = (_number(props, "from_deg", where, low=0.0, high=360.0) + 180.0) % 360.0
         return {
             "toward_deg": toward % 360.0,
-            "push_m": _number(props, "push_m", where, low=0.0, high=MAX_DISTANCE_M),
-            "spread_m": _number(props, "spread_m", where, default=0.0, low=0.0, high=MAX_DISTANCE_M),
+            "drift_per_m": _number(props, "drift_per_m", where, low=0.0, high=MAX_DRIFT_PER_M),
+            "spread_per_sqrt_m": _number(props, "spread_per_sqrt_m", where, default=0.0, low=0.0,
+                                         high=MAX_DRIFT_PER_M),
             "chance": _number(props, "chance", where, default=1.0, low=0.0, high=1.0),
         }
     return {}
@@ -774,7 +842,8 @@ def _make_frame(crs: str | None, lon: np.ndarray, lat: np.ndarray) -> Frame:
     except CRSError as err:
         raise SettingsError(f"--crs {crs!r}: not a coordinate reference system pyproj knows") from err
     if not named.is_projected:
-        raise SettingsError(f"--crs {crs!r}: is not a projected CRS (a working frame must be in metres)")
+        raise SettingsError(f"--crs {crs!r}: is not a projected CRS (a geographic CRS is in degrees; the working "
+                            "frame must be in metres: name a projected CRS such as a UTM zone, or leave out --crs)")
     units = {ax.unit_name for ax in named.axis_info}
     if units - {"metre", "meter"}:
         raise SettingsError(f"--crs {crs!r}: axis units are {', '.join(sorted(units))}, not metres")

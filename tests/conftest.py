@@ -45,7 +45,7 @@ def small_site_dict():
             feature("goal", "Point", point(90, 30), name="Target"),
             feature("hazard", "Polygon", rect(40, 20, 60, 40), name="Pond", buffer_m=2.0),
             feature("drift", "Polygon", rect(30, 40, 70, 60), name="Gust lane", toward_deg=180.0,
-                    push_m=3.0, spread_m=1.0),
+                    drift_per_m=1.5, spread_per_sqrt_m=0.7071067811865475),  # 1 m over a 2 m move
             feature("rough", "Polygon", rect(70, 0, 100, 15), name="Gravel", cost_factor=2.0),
         ],
     }

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from conftest import plan_small_site
+from conftest import plan_small_site, small_site_dict
 from numpy.testing import assert_allclose
 
 from planner.cli import cli
@@ -144,6 +144,18 @@ def test_seeds_disagreement_banner_and_strict_verdict():
     assert "0.10% to 0.20% (1 in 1,000 to 1 in 500)" in seeds_banner(x)
 
 
+def test_summary_gives_the_half_cell_figure_beside_the_reported_one(planned):
+    _, out, result = planned
+    text = " ".join(result.stdout.split())
+    for name in ("cautious", "shortest"):
+        row = next(r for r in risk_rows(out) if r["policy"] == name and r["noise"] == 0.1 and r["drift_scale"] == 1.0)
+        # the same policy re-evaluated at half the cell (1 m), as risk.json records it
+        check = row["grid_check"]
+        assert check["cell_m"] == 2.0 and check["fine_cell_m"] == 1.0 and check["skipped"] is None
+        assert f"at half cell (1 m) {format_prob(check['p_incident_fine'])}" in text
+        assert check["flagged"] == (abs(check["p_incident_fine"] - row["p_incident"]) > check["tolerance"])
+
+
 def test_run_folder_holds_every_file_and_nothing_else(planned):
     site, out, _ = planned
     assert {p.name for p in out.iterdir()} == RUN_FILES
@@ -177,6 +189,11 @@ def test_manifest_records_inputs_settings_seeds_versions_and_hashes(planned):
     for name, digest in m["files"].items():
         assert sha256(out / name) == digest, name
     assert m["grid"]["rows"] == 30 and m["grid"]["cols"] == 50
+    # Both lengths: the drawing's cell and the vehicle's move (the site's default, 1 m,
+    # is finer than --cell 2, so a move is one cell).
+    assert m["motion"] == {"cell_m": 2.0, "move_m": 2.0, "headings": 8, "budget_moves": None}
+    assert s["dynamics"]["move_m"] == 2.0 and s["dynamics"]["n_actions"] == 8 and s["grid_check"] is True
+    assert [c["policy"] for c in m["grid_check"]] == ["cautious", "shortest"]
 
 
 def test_policies_are_plain_arrays_of_the_grid_shape(planned):
@@ -405,3 +422,50 @@ def test_progress_shows_every_long_stage_and_how_far_it_is(planned, tmp_path, ca
         report(1)
         quiet("a note")
     assert capsys.readouterr() == ("", "")
+
+
+@pytest.mark.parametrize("args, message", [
+    (["--move-m", "1.5"], "--move-m 1.5 m is shorter than the cell (2 m)"),
+    (["--headings", "6"], "--headings must be 4, 8 or 16, got 6"),
+    (["--crs", "EPSG:4326"], "--crs 'EPSG:4326': is not a projected CRS (a geographic CRS is in degrees"),
+    (["--budget-m", "1"], "--budget-m 1 m is shorter than one move (2 m)"),
+    (["--moves", "8"], "No such option '--moves'"),
+])
+def test_bad_vehicle_settings_are_one_line_exit_2_nothing_written(tmp_path, args, message):
+    site, out, result = plan_small_site(tmp_path, *SMALL, *args)
+    assert result.exit_code == 2, result.output
+    assert len(result.output.strip().splitlines()) == 1, result.output
+    assert message in result.output
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["site.geojson"]
+
+
+def test_a_per_move_drift_property_is_refused_naming_its_replacement(tmp_path):
+    site = tmp_path / "old.geojson"
+    data = small_site_dict()
+    props = data["features"][4]["properties"]
+    del props["drift_per_m"]
+    props["push_m"] = 3.0
+    site.write_text(json.dumps(data))
+    out = tmp_path / "run"
+    result = CliRunner().invoke(cli, ["plan", str(site), str(out), *SMALL])
+    assert result.exit_code == 2 and len(result.output.strip().splitlines()) == 1, result.output
+    assert "property 'push_m' (per move) is from site schema 1 and was replaced by 'drift_per_m'" in result.output
+    assert not out.exists()
+
+
+def test_no_grid_check_says_it_was_switched_off(tmp_path):
+    _, out, result = plan_small_site(tmp_path, *SMALL, "--no-grid-check", "--rollouts", "0")
+    assert result.exit_code == 0, result.output
+    assert result.output.count("half-cell check skipped: switched off (--no-grid-check)") == 2
+    assert all(c["skipped"] == "switched off (--no-grid-check)" for c in manifest(out)["grid_check"])
+
+
+def test_briefing_gives_the_half_cell_figure_beside_the_reported_one(planned):
+    _, out, _ = planned
+    html = (out / "brief.html").read_text()
+    assert "the same policy re-evaluated at half the cell size" in html
+    for record in risk_rows(out):
+        check = record.get("grid_check")
+        if check:
+            assert format_prob(check["p_incident_fine"]) in html and f"at {check['fine_cell_m']:g} m cells" in html
+    assert "move length 2 m between heading decisions" in html

@@ -43,7 +43,7 @@ def test_check_prints_the_summary(tmp_path):
                     atol=2e-5)
     assert "Pond (ends run" in out and "buffer 2 m" in out
     assert "Gravel (cost x2)" in out
-    assert "Gust lane (toward 180 deg, push 3 m/move" in out
+    assert "Gust lane (toward 180 deg, drift 1.5 m/m, spread 0.707107 m/sqrt(m)" in out
     assert "50 x 30 cells of 2 m = 1,500 cells" in out
 
 
@@ -98,7 +98,8 @@ BAD_SITES = [
     ("unknown property", _mutate(_set_prop(3, "depth_m", 2)), "feature 3 ('Pond'): unknown property 'depth_m'"),
     ("negative buffer", _mutate(_set_prop(3, "buffer_m", -1)), "feature 3 ('Pond'): 'buffer_m' must be >= 0"),
     ("negative penalty", _mutate(_set_prop(3, "penalty_m", -5)), "feature 3 ('Pond'): 'penalty_m' must be >= 0"),
-    ("negative push", _mutate(_set_prop(4, "push_m", -3)), "feature 4 ('Gust lane'): 'push_m' must be >= 0"),
+    ("negative drift", _mutate(_set_prop(4, "drift_per_m", -3)), "feature 4 ('Gust lane'): 'drift_per_m' must be >= 0"),
+    ("drift per move", _mutate(_set_prop(4, "push_m", 1.5)), "feature 4 ('Gust lane'): property 'push_m' (per move)"),
     ("chance above one", _mutate(_set_prop(4, "chance", 1.5)), "feature 4 ('Gust lane'): 'chance' must be <= 1"),
     ("both directions", _mutate(_set_prop(4, "from_deg", 10)), "both of 'toward_deg'/'from_deg'"),
     ("cost factor below one", _mutate(_set_prop(5, "cost_factor", 0.5)), "'cost_factor' must be >= 1"),

@@ -18,9 +18,10 @@ from planner.exact import (
     optimal_q,
     policy_value,
 )
-from planner.grid import FREE, OUTSIDE, DriftInfo, HazardInfo, grid_from_arrays, moves_for
+from planner.grid import FREE, OUTSIDE, DriftInfo, HazardInfo, grid_from_arrays
 from planner.learn import Learned, LearnSettings, greedy_actions
 from planner.model import EVENT_GOAL, EVENT_NONE, Dynamics, build_model
+from planner.motion import moves_for
 from planner.route import nominal_path
 
 #: Unit-cost moves, no slip, walls at the edge: the textbook gridworld dynamics.
@@ -47,7 +48,7 @@ def windy_model(n_actions: int):
     goal = np.zeros_like(label, dtype=bool)
     goal[WINDY_GOAL] = True
     drift_class = np.broadcast_to(WIND, label.shape).astype(np.int32)
-    drifts = (DriftInfo("wind 1", east_m=0.0, north_m=1.0), DriftInfo("wind 2", east_m=0.0, north_m=2.0))
+    drifts = (DriftInfo("wind 1", ratio=1.0), DriftInfo("wind 2", ratio=2.0))
     grid = grid_from_arrays(label, goal=goal, start=WINDY_START, drifts=drifts, drift_class=drift_class,
                             drift_members=((), (0,), (1,)))
     return build_model(grid, Dynamics(n_actions=n_actions, **BOOK))

@@ -1,17 +1,14 @@
-"""Rasterising: cell labels, buffers, cost factors, drift distributions, shortest paths."""
+"""Rasterising: cell labels, buffers, cost factors, drift classes, shortest paths."""
 
 from __future__ import annotations
 
 import math
 import warnings
-from collections import defaultdict
 from pathlib import Path
 
 import numpy as np
 import pytest
 from conftest import feature, point, rect
-from hypothesis import given, settings
-from hypothesis import strategies as st
 from numpy.testing import assert_allclose, assert_array_equal
 from shapely.geometry import Point, Polygon, box
 from shapely.ops import unary_union
@@ -20,15 +17,11 @@ from planner.errors import BudgetError, SettingsError, SiteError, SiteWarning
 from planner.grid import (
     FREE,
     OUTSIDE,
-    DriftInfo,
     GridSpec,
     HazardInfo,
-    axis_distribution,
     cost_to_goal,
-    drift_tables,
     grid_from_arrays,
     rasterise,
-    zone_drift_distribution,
 )
 from planner.site import Frame, Site, Zone, load_site, site_from_geojson
 
@@ -95,22 +88,6 @@ def box_distance(bounds, shape, cell=CELL):
     gap_x = np.maximum.reduce([x0 - (cols + 1) * cell, cols * cell - x1, np.zeros(shape)])
     gap_y = np.maximum.reduce([y0 - (rows + 1) * cell, rows * cell - y1, np.zeros(shape)])
     return np.hypot(gap_x, gap_y)
-
-
-def moments(offsets, probs):
-    offsets = np.asarray(offsets, dtype=float)
-    mean = probs @ offsets
-    centred = offsets - mean
-    var = probs @ (centred**2) if centred.ndim == 1 else (probs[:, None] * centred).T @ centred
-    return mean, var
-
-
-def as_dict(offsets, probs):
-    """A distribution as {offset tuple: probability}, duplicates summed."""
-    table = defaultdict(float)
-    for o, p in zip(np.asarray(offsets).tolist(), probs, strict=True):
-        table[tuple(o) if isinstance(o, list) else (o,)] += float(p)
-    return dict(table)
 
 
 # ----------------------------------------------------------------------------- labels
@@ -229,135 +206,6 @@ def test_row_zero_is_south_and_column_zero_is_west():
     rows, cols = np.indices(grid.shape)
     looked_up = np.array([grid.cell_of(x, y) for x, y in zip(east.ravel(), north.ravel(), strict=True)])
     assert_array_equal(looked_up, np.column_stack([rows.ravel(), cols.ravel()]))
-
-
-# ----------------------------------------------------------------------------- drift
-
-
-@settings(max_examples=300, deadline=None)
-@given(st.floats(-6.0, 6.0), st.floats(0.0, 4.0))
-def test_axis_distribution_has_the_stated_mean_and_spread(mean, sd):
-    offsets, probs = axis_distribution(mean, sd)
-    assert offsets.dtype == np.int64 and 1 <= offsets.size <= 3
-    assert np.all(probs > 0) and abs(probs.sum() - 1.0) < 1e-12
-    got_mean, got_var = moments(offsets, probs)
-    assert_allclose(got_mean, mean, atol=1e-12)
-    frac = mean - math.floor(mean)
-    least = frac * (1.0 - frac)  # variance of the two integers either side of the mean
-    if sd * sd >= least:
-        assert_allclose(got_var, sd * sd, atol=1e-9)
-    else:
-        assert_allclose(got_var, least, atol=1e-9)
-        assert set(offsets.tolist()) <= {math.floor(mean), math.floor(mean) + 1}
-
-
-def test_axis_distribution_examples():
-    # Whole-cell mean, no spread: a single point.
-    assert as_dict(*axis_distribution(2.0, 0.0)) == {(2,): 1.0}
-    # sd 1 around 0 needs the outer points with probability 1/2 in all.
-    offsets, probs = axis_distribution(0.0, 1.0)
-    assert_array_equal(offsets, [-1, 1])
-    assert_allclose(probs, [0.5, 0.5], atol=1e-15)
-    # Below the spread a fractional mean needs, the two integers either side carry it.
-    offsets, probs = axis_distribution(-0.3, 0.0)
-    assert_array_equal(offsets, [-1, 0])
-    assert_allclose(probs, [0.3, 0.7], atol=1e-15)
-
-
-drift_values = st.tuples(
-    st.floats(-12.0, 12.0), st.floats(-12.0, 12.0), st.floats(0.0, 8.0), st.floats(0.0, 1.0),
-    st.sampled_from([1.0, 2.0, 2.5, 5.0]),
-)
-
-
-@settings(max_examples=200, deadline=None)
-@given(drift_values)
-def test_zone_drift_distribution_mean_spread_and_chance(values):
-    east_m, north_m, spread_m, chance, cell = values
-    info = DriftInfo("Gusts", east_m, north_m, spread_m, chance)
-    offsets, probs = zone_drift_distribution(info, cell)
-    assert offsets.shape == (probs.size, 2) and abs(probs.sum() - 1.0) < 1e-12 and np.all(probs > 0)
-    mean, _ = moments(offsets, probs)
-    # (d_row, d_col): rows run north, columns east; chance scales the mean push.
-    assert_allclose(mean, [chance * north_m / cell, chance * east_m / cell], atol=1e-9)
-    # Without the "no push" mix the axes are independent, each with the stated spread
-    # when it is at least what the fractional mean needs.
-    full_offsets, full_probs = zone_drift_distribution(DriftInfo("Gusts", east_m, north_m, spread_m, 1.0), cell)
-    _, cov = moments(full_offsets, full_probs)
-    assert_allclose(cov[0, 1], 0.0, atol=1e-9)
-    sd = spread_m / cell
-    for axis, m in enumerate((north_m / cell, east_m / cell)):
-        frac = m - math.floor(m)
-        assert_allclose(cov[axis, axis], max(sd * sd, frac * (1 - frac)), atol=1e-9)
-    # chance mixes in "no push": p = chance * full + (1 - chance) * [0, 0].
-    expected = defaultdict(float)
-    for o, p in as_dict(full_offsets, full_probs).items():
-        expected[o] += chance * p
-    expected[(0, 0)] += 1.0 - chance
-    got = as_dict(offsets, probs)
-    for key in set(got) | {k for k, v in expected.items() if v > 1e-12}:
-        assert_allclose(got.get(key, 0.0), expected[key], atol=1e-12)
-
-
-def _two_drift_site(site_dict):
-    site_dict["features"].append(feature("drift", "Polygon", rect(50, 30, 90, 60), name="Ridge wind",
-                                         toward_deg=90.0, push_m=4.0, spread_m=2.0, chance=0.5))
-    with pytest.warns(SiteWarning, match=r"drift zones feature 4 \('Gust lane'\) and feature 6 \('Ridge wind'\) "
-                                         r"overlap; their pushes add as vectors"):
-        site = site_from_geojson(site_dict)
-    return site
-
-
-def test_overlapping_drift_zones_convolve(site_dict):
-    site = _two_drift_site(site_dict)
-    grid = rasterise(site, GridSpec(CELL))
-    ptr, d_row, d_col, prob = drift_tables(grid)
-    assert grid.drift_members[0] == ()
-    both = grid.drift_members.index((0, 1))
-    # The zones overlap on 50-70 m east, 40-60 m north: class (0, 1) is exactly there,
-    # by cell centre, give or take the sub-millimetre rotation of the loader's frame.
-    assert (grid.drift_class == both).sum() == 4 * 4
-    lo, hi = ptr[both], ptr[both + 1]
-    got = as_dict(np.column_stack([d_row[lo:hi], d_col[lo:hi]]), prob[lo:hi])
-    # Independent pushes: the joint distribution is the convolution of the two.
-    first = as_dict(*zone_drift_distribution(grid.drifts[0], CELL))
-    second = as_dict(*zone_drift_distribution(grid.drifts[1], CELL))
-    expected = defaultdict(float)
-    for (r1, c1), p1 in first.items():
-        for (r2, c2), p2 in second.items():
-            expected[(r1 + r2, c1 + c2)] += p1 * p2
-    assert set(got) == {k for k, v in expected.items() if v > 1e-15}
-    for key, value in got.items():
-        assert_allclose(value, expected[key], atol=1e-12)
-    mean, _ = moments(np.column_stack([d_row[lo:hi], d_col[lo:hi]]), prob[lo:hi])
-    # Gust lane pushes 3 m south; Ridge wind 4 m east half the time: means add.
-    assert_allclose(mean, [-3.0 / CELL, 0.5 * 4.0 / CELL], atol=1e-9)
-
-
-@pytest.mark.parametrize("scale", [0.0, 0.5, 1.0, 2.0, 3.7])
-def test_drift_scale_scales_the_mean(site_dict, scale):
-    grid = rasterise(site_from_geojson(site_dict), GridSpec(CELL))
-    ptr, d_row, d_col, prob = drift_tables(grid, scale)
-    assert ptr[0] == 0 and ptr[-1] == prob.size
-    for k, members in enumerate(grid.drift_members):
-        lo, hi = ptr[k], ptr[k + 1]
-        assert_allclose(prob[lo:hi].sum(), 1.0, atol=1e-12)
-        mean, _ = moments(np.column_stack([d_row[lo:hi], d_col[lo:hi]]), prob[lo:hi])
-        push = np.zeros(2)
-        for m in members:
-            d = grid.drifts[m]
-            push += d.chance * np.array([d.north_m, d.east_m]) / CELL
-        assert_allclose(mean, scale * push, atol=1e-9)
-    if scale == 0.0:
-        assert_array_equal(d_row, 0)
-        assert_array_equal(d_col, 0)
-
-
-@pytest.mark.parametrize("scale", [-0.5, float("nan"), float("inf")])
-def test_drift_scale_must_be_finite_and_not_negative(site_dict, scale):
-    grid = rasterise(site_from_geojson(site_dict), GridSpec(CELL))
-    with pytest.raises(SettingsError, match="--drift-scale must be a finite number >= 0"):
-        drift_tables(grid, scale)
 
 
 # ----------------------------------------------------------------------------- refusals

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import numpy as np
 import pytest
@@ -200,7 +201,8 @@ def test_sampler_walk_matches_block_probabilities():
     label = np.full((9, 9), FREE)
     goal = np.zeros((9, 9), dtype=bool)
     goal[8, 8] = True
-    drift = DriftInfo("gust", east_m=0.6, north_m=-0.4, spread_m=0.7, chance=0.8)
+    drift = DriftInfo("gust", ratio=math.hypot(0.6, 0.4), toward_deg=math.degrees(math.atan2(0.6, -0.4)), spread=0.7,
+                      chance=0.8)
     grid = grid_from_arrays(label, goal=goal, start=(4, 4), drifts=(drift,), drift_class=np.ones((9, 9), np.int32),
                             drift_members=((), (0,)))
     model = build_model(grid, Dynamics(n_actions=8, slip=0.2, edge="wall"))

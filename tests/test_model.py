@@ -169,7 +169,7 @@ def test_goal_crossed_on_the_way_ends_the_run_as_success():
     # A drift of two cells east carries the vehicle through the goal cell: the first
     # goal cell on the swept path ends the run.
     label, goal = _line_grid([FREE, FREE, FREE, FREE, FREE], 2)
-    grid = grid_from_arrays(label, goal=goal, start=(0, 0), drifts=(DriftInfo("push", 2.0, 0.0),),
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), drifts=(DriftInfo("push", 2.0, 90.0),),
                             drift_class=np.ones(label.shape, dtype=np.int32), drift_members=((), (0,)))
     model = build_model(grid, Dynamics(n_actions=4, slip=0.0, edge="wall", hazard_penalty_m=40.0))
     east = model.outcomes(0, 1)
@@ -191,7 +191,7 @@ def test_slip_and_stall_split_as_documented():
 def test_non_ending_hazard_is_charged_once_and_the_run_goes_on():
     label, goal = _line_grid([FREE, 0, 0, FREE], 3)
     grid = grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("mud", False, 7.0),),
-                            drifts=(DriftInfo("push", 1.0, 0.0),),
+                            drifts=(DriftInfo("push", 1.0, 90.0),),
                             drift_class=np.ones(label.shape, dtype=np.int32), drift_members=((), (0,)))
     model = build_model(grid, Dynamics(n_actions=4, slip=0.0, edge="wall", hazard_penalty_m=40.0))
     east = model.outcomes(0, 1)  # move one east plus one drift: crosses both mud cells
@@ -214,7 +214,7 @@ def test_policy_chain_rows_are_distributions():
 def test_dynamics_refuse_out_of_range_settings():
     with pytest.raises(SettingsError, match="--slip"):
         Dynamics(slip=1.5)
-    with pytest.raises(SettingsError, match="--moves"):
+    with pytest.raises(SettingsError, match="--headings"):
         Dynamics(n_actions=6)
     with pytest.raises(SettingsError, match="--edge"):
         Dynamics(edge="bounce")

@@ -12,7 +12,7 @@ import pytest
 from conftest import text_map_grid
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from numpy.testing import assert_allclose
+from numpy.testing import assert_allclose, assert_array_equal
 
 from planner.errors import SettingsError
 from planner.exact import on_policy_q, optimal_q
@@ -59,7 +59,7 @@ def corridor(a: int, start: int, *, west_chance: float = 0.0, first: str = "haza
     goal[0, a] = True
     drifts, drift_class, members = (), None, ((),)
     if west_chance > 0:
-        drifts = (DriftInfo("West gust", east_m=-2.0, north_m=0.0, spread_m=0.0, chance=west_chance),)
+        drifts = (DriftInfo("West gust", ratio=2.0, toward_deg=270.0, chance=west_chance),)
         drift_class = np.ones(label.shape, dtype=np.int32)
         members = ((), (0,))
     grid = grid_from_arrays(label, goal=goal, start=(0, start), cell_m=1.0, hazards=hazards, drifts=drifts,
@@ -407,7 +407,7 @@ def test_expectations_given_success_match_forward_computation():
     label[2, 2:4] = 0
     goal = np.zeros(label.shape, dtype=bool)
     goal[4, 5] = True
-    drifts = (DriftInfo("Gust", east_m=0.3, north_m=-0.4, spread_m=0.6),)
+    drifts = (DriftInfo("Gust", ratio=0.5, toward_deg=math.degrees(math.atan2(0.3, -0.4)), spread=0.6),)
     drift_class = np.zeros(label.shape, dtype=np.int32)
     drift_class[1:4, :] = 1
     grid = grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("Pit"),), drifts=drifts,
@@ -621,3 +621,75 @@ def test_demo_site_default_table_exact_and_monte_carlo_agree(name):
     assert [(r.policy, r.noise, r.drift_scale, r.mc_disagrees) for r in rows if r.mc_disagrees] == []
     for r in rows:
         assert abs(r.p_goal + r.p_incident + r.p_never - 1.0) < 1e-8
+
+
+# ----------------------------------------------------------------------------- half-cell check
+
+
+def test_a_policy_is_carried_to_the_finer_grid_by_position():
+    from planner.risk import carry_policy
+
+    # 2 x 3 coarse cells of 2 m; the northern row is a hazard (not active).
+    label = np.full((2, 3), FREE)
+    label[1, :2] = 0
+    goal = np.zeros((2, 3), dtype=bool)
+    goal[1, 2] = True
+    coarse = grid_from_arrays(label, goal=goal, start=(0, 0), cell_m=2.0, hazards=(HazardInfo("Pit"),))
+    fine = grid_from_arrays(np.full((4, 6), FREE), goal=np.eye(4, 6, dtype=bool)[::-1], start=(0, 0), cell_m=1.0)
+    greedy = np.array([2, 3, 4, 5, 6, 7])
+    active = np.array([True, True, True, False, False, False])
+    carried = carry_policy(coarse, active, greedy, fine).reshape(4, 6)
+    # Fine cell (r, c) lies in coarse (r // 2, c // 2); the inactive northern cells
+    # hand over the heading of the active cell just south of them (their nearest).
+    expected = np.array([[2, 2, 3, 3, 4, 4]] * 4)
+    assert_array_equal(carried, expected)
+
+
+def test_grid_check_tolerance_is_ten_percent_or_the_99_percent_interval():
+    from scipy.stats import beta
+
+    from planner.risk import GridCheck, McEstimate, compare_levels
+
+    base = GridCheck(policy="shortest", noise=0.1, cell_m=4.0, fine_cell_m=2.0, p_incident=0.2)
+    loose = compare_levels(base, 0.21)
+    assert loose.tolerance == pytest.approx(0.02) and not loose.flagged and loose.relative == pytest.approx(0.05)
+    assert compare_levels(base, 0.17).flagged
+    # With 1,000 rollouts and 200 incidents the 99% Clopper-Pearson interval (beta
+    # quantiles, Clopper & Pearson, Biometrika 26(4), 1934) is wider than 10%.
+    lo, hi = beta.ppf(0.005, 200, 801), beta.ppf(0.995, 201, 800)
+    row = type("Row", (), {"mc": {"incident": McEstimate(200, 1000, 0.2, 0.0, 1.0)}})()
+    wide = compare_levels(base, 0.17, row)
+    assert wide.tolerance == pytest.approx(max(0.2 - lo, hi - 0.2), rel=1e-6) and not wide.flagged
+
+
+def test_richardson_recovers_a_second_order_error():
+    from planner.risk import richardson
+
+    # f(h) = 1 + 0.5 h^2 on h = 4, 2, 1: order 2, limit 1, and the grid convergence index
+    # 1.25 |f1 - f2| / (2^2 - 1) (Roache, Verification and Validation in Computational
+    # Science and Engineering, 1998).
+    values = [1 + 0.5 * h * h for h in (4.0, 2.0, 1.0)]
+    r = richardson(values)
+    assert r["order"] == pytest.approx(2.0) and r["extrapolated"] == pytest.approx(1.0)
+    assert r["gci_fine"] == pytest.approx(1.25 * 1.5 / 3.0)
+    assert richardson([1.0, 2.0, 1.5])["order"] is None  # oscillating: no order claimed
+
+
+def test_half_cell_check_is_skipped_with_the_reason_above_the_cell_limit(site_dict):
+    from planner.exact import optimal_q
+    from planner.learn import greedy_actions
+    from planner.risk import half_cell_check, sensitivity
+    from planner.site import site_from_geojson
+
+    site = site_from_geojson(site_dict)
+    spec = GridSpec(cell_m=4.0)
+    grid = rasterise(site, spec)
+    dynamics = Dynamics(move_m=4.0)
+    model = build_model(grid, dynamics)
+    greedy = {"shortest": greedy_actions(optimal_q(model).q)}
+    rows = sensitivity(grid, dynamics, greedy, noises=(0.1,), drift_scales=(1.0,), model=model)
+    skipped = half_cell_check(site, grid, spec, dynamics, model, greedy, rows, noise=0.1, max_cells=1000)
+    assert skipped[0].skipped.startswith("the half-cell grid (2 m) would have about 1,500 cells, over the cell limit")
+    checked = half_cell_check(site, grid, spec, dynamics, model, greedy, rows, noise=0.1)[0]
+    assert checked.skipped is None and checked.fine_cell_m == 2.0 and 0.0 <= checked.p_incident_fine <= 1.0
+    assert checked.p_incident == rows[0].p_incident

@@ -212,8 +212,10 @@ BAD_SITES = [
     ("site around the North Pole", polar_cap_site(), ["feature 0 ('Polar yard')", "pole"], None),
     ("site near the North Pole", near_pole_site(89.6), ["feature 0 ('Polar yard')", "pole"], None),
     ("site near the South Pole", near_pole_site(-89.6), ["feature 0 ('Polar yard')", "pole"], None),
-    ("push_m of a million kilometres", site_text(with_property(4, "push_m", 1e9)),
-     ["feature 4 ('Gust lane')", "'push_m'"], None),
+    ("drift_per_m of a million", site_text(with_property(4, "drift_per_m", 1e6)),
+     ["feature 4 ('Gust lane')", "'drift_per_m'"], None),
+    ("push_m of an old site file", site_text(with_property(4, "push_m", 3.0)),
+     ["feature 4 ('Gust lane')", "'push_m' (per move)", "replaced by 'drift_per_m'"], None),
     ("cost_factor of 1e308", site_text(with_property(5, "cost_factor", 1e308)),
      ["feature 5 ('Gravel')", "'cost_factor'"], None),
     # Strict input: what JSON or a sloppier test would let through silently.
@@ -232,14 +234,15 @@ BAD_SITES = [
      ["feature 1 ('Launch')", "boundary's edge"], None),
     ("zone names giving one table column", site_text(with_property(5, "name", "Pond_lo")),
      ["feature 5 ('Pond_lo')", "same table column"], None),
-    ("a number that overflows", lambda: site_text().replace('"push_m": 3.0', '"push_m": 1e400'),
-     ["feature 4 ('Gust lane')", "'push_m'"], None),
-    ("a whole number of 5,000 digits", lambda: site_text().replace('"push_m": 3.0', '"push_m": ' + "9" * 5000),
-     ["push_m"], None),
+    ("a number that overflows", lambda: site_text().replace('"drift_per_m": 1.5', '"drift_per_m": 1e400'),
+     ["feature 4 ('Gust lane')", "'drift_per_m'"], None),
+    ("a whole number of 5,000 digits",
+     lambda: site_text().replace('"drift_per_m": 1.5', '"drift_per_m": ' + "9" * 5000), ["drift_per_m"], None),
 ] + [
     (f"null {key}", site_text(with_property(index, key, None)), [f"feature {index} ('{name}')", f"'{key}'"], None)
-    for index, name, key in [(3, "Pond", "buffer_m"), (4, "Gust lane", "toward_deg"), (4, "Gust lane", "push_m"),
-                             (4, "Gust lane", "spread_m"), (4, "Gust lane", "chance"), (5, "Gravel", "cost_factor")]
+    for index, name, key in [(3, "Pond", "buffer_m"), (4, "Gust lane", "toward_deg"),
+                             (4, "Gust lane", "drift_per_m"), (4, "Gust lane", "spread_per_sqrt_m"),
+                             (4, "Gust lane", "chance"), (5, "Gravel", "cost_factor")]
 ]
 
 #: Costly files are read only by the command that matters most (check).
@@ -389,7 +392,10 @@ BAD_PLAN_OPTIONS = [
     ("--table-drifts 1e9", ["--table-drifts", "1,1e9"], ["--table-drifts"], None),
     ("--plan-drift inf", ["--plan-drift", "inf"], ["--plan-drift"], None),
     ("--rollouts -1", ["--rollouts", "-1"], ["--rollouts"], None),
-    ("--budget 0", ["--budget", "0"], ["--budget"], None),
+    ("--budget-m 0", ["--budget-m", "0"], ["--budget-m"], None),
+    ("--budget-m under one move", ["--budget-m", "0.5"], ["--budget-m 0.5 m is shorter than one move"], None),
+    ("--move-m under the cell", ["--move-m", "0.5"], ["--move-m 0.5 m is shorter than the cell"], None),
+    ("--headings 6", ["--headings", "6"], ["--headings must be 4, 8 or 16"], None),
     ("--step-size 0", ["--step-size", "0"], ["--step-size"], None),
     ("--step-size 1.5", ["--step-size", "1.5"], ["--step-size"], None),
     ("--step-decay 0.5", ["--step-decay", "0.5"], ["--step-decay", "0.5<x<=1"], None),
@@ -411,7 +417,7 @@ BAD_PLAN_OPTIONS = [
     ("--episodes 10**12", ["--episodes", str(10**12)], ["--episodes", "over the limit"], None),
     ("--training-runs a million", ["--training-runs", "1000000"], ["--training-runs", "over the limit"], None),
     ("--rollouts 10**12", ["--rollouts", str(10**12)], ["--rollouts", "over the limit"], None),
-    ("--budget 10**9", ["--budget", str(10**9)], ["--budget", "over the limit"], None),
+    ("--budget-m 10**9", ["--budget-m", str(10**9)], ["--budget-m", "over the limit"], None),
     ("--max-steps 10**12", ["--max-steps", str(10**12)], ["--max-steps", "over the limit"], None),
     ("--penalty 1e308", ["--penalty", "1e308"], ["--penalty", "1e+308"], None),
     ("--table-noises of 1,000 values", ["--table-noises", ",".join(["0.1"] * 1000)], ["--table-noises", "1,000 values"], None),
@@ -433,10 +439,10 @@ def test_plan_refuses_an_option_out_of_bounds_before_any_work(tmp_path, no_heavy
 
 @pytest.mark.parametrize("options,recorded", [
     pytest.param(["--epsilon", "0", "--episodes", "1", "--training-runs", "1", "--root-seed", "0", "--step-size", "1",
-                  "--gamma", "1", "--max-steps", "1", "--budget", "1", "--rollouts", "0", "--table-noises", "0",
+                  "--gamma", "1", "--max-steps", "1", "--budget-m", "MOVE", "--rollouts", "0", "--table-noises", "0",
                   "--table-drifts", "0", "--alt-m", "0", "--slip", "0", "--stall", "0", "--plan-drift", "0"],
                  {("learn", "epsilon"): 0.0, ("learn", "episodes"): 1, ("seed",): 0, ("learn", "step_size"): 1.0,
-                  ("learn", "max_steps"): 1, ("budget",): 1, ("noises",): [0.0], ("drift_scales",): [0.0],
+                  ("learn", "max_steps"): 1, ("budget_m",): "MOVE", ("noises",): [0.0], ("drift_scales",): [0.0],
                   ("alt_m",): 0.0, ("dynamics", "slip"): 0.0, ("dynamics", "drift_scale"): 0.0},
                  id="lower bounds"),
     pytest.param(["--epsilon", "0.99", "--step-decay", "1", "--root-seed", str(2**128 - 1), "--slip", "0.5",
@@ -449,6 +455,10 @@ def test_plan_refuses_an_option_out_of_bounds_before_any_work(tmp_path, no_heavy
 def test_plan_accepts_options_at_their_bounds(tmp_path, options, recorded):
     site = write_site(tmp_path / "site.geojson", site_text())
     out = tmp_path / "run"
+    # The shortest travel budget is one move (of the cell's length here).
+    move = QUICK[QUICK.index("--cell") + 1]
+    options = [move if o == "MOVE" else o for o in options]
+    recorded = {k: float(move) if v == "MOVE" else v for k, v in recorded.items()}
     result = invoke("plan", site, out, *QUICK, *options)
     assert result.exit_code == 0, result.output
     settings = json.loads((out / "manifest.json").read_text())["settings"]
@@ -701,13 +711,13 @@ def test_damaged_run_folder(base_run, tmp_path, damage, fragments, command):
     ("risk", ["--table-noises", "1"], ["--table-noises"]),
     ("risk", ["--table-noises", "x"], ["--table-noises"]),
     ("risk", ["--table-drifts", "-1"], ["--table-drifts"]),
-    ("risk", ["--budget", "0"], ["--budget"]),
+    ("risk", ["--budget-m", "0"], ["--budget-m"]),
     ("risk", ["--rollouts", "-1"], ["--rollouts"]),
     ("risk", ["--policy", "bogus"], ["--policy", "'bogus'"]),
     ("risk", ["--rollout-seed", "-1"], ["--rollout-seed", "-1"]),
     ("risk", ["--rollout-seed", str(2**128)], ["--rollout-seed", "2**128"]),
     ("risk", ["--rollouts", str(10**12)], ["--rollouts", "over the limit"]),
-    ("risk", ["--budget", str(10**9)], ["--budget", "over the limit"]),
+    ("risk", ["--budget-m", str(10**9)], ["--budget-m", "over the limit"]),
     ("export", ["--alt-m", "-1", "-o", "OUT"], ["--alt-m"]),
     ("export", ["--alt-m", "nan", "-o", "OUT"], ["--alt-m"]),
     ("export", ["--format", "kml", "-o", "OUT"], ["--format"]),
@@ -746,8 +756,8 @@ STRUCTURE = [
 PROPERTIES = [
     ("features", 3, "properties", "buffer_m"), ("features", 3, "properties", "ends_run"),
     ("features", 3, "properties", "penalty_m"), ("features", 3, "properties", "name"),
-    ("features", 4, "properties", "toward_deg"), ("features", 4, "properties", "push_m"),
-    ("features", 4, "properties", "spread_m"), ("features", 4, "properties", "chance"),
+    ("features", 4, "properties", "toward_deg"), ("features", 4, "properties", "drift_per_m"),
+    ("features", 4, "properties", "spread_per_sqrt_m"), ("features", 4, "properties", "chance"),
     ("features", 5, "properties", "cost_factor"), ("features", 5, "properties", "colour"),
 ]
 EDITS = st.one_of(st.tuples(st.sampled_from(STRUCTURE), JSON_VALUES),
@@ -840,7 +850,8 @@ def generated_sites(draw):
             props["cost_factor"] = draw(st.floats(1, 5))
         else:
             props[draw(st.sampled_from(["toward_deg", "from_deg"]))] = draw(st.floats(0, 360))
-            props.update(push_m=draw(st.floats(0, 10)), spread_m=draw(st.floats(0, 5)), chance=draw(st.floats(0, 1)))
+            props.update(drift_per_m=draw(st.floats(0, 2)), spread_per_sqrt_m=draw(st.floats(0, 2)),
+                         chance=draw(st.floats(0, 1)))
         geometry = [_ring(draw, width, height)]
         if draw(st.booleans()):
             features.append(feature(role, "Polygon", geometry, **props))
@@ -849,9 +860,10 @@ def generated_sites(draw):
     spec = GridSpec(cell_m=draw(st.floats(max(width, height) / 40, max(width, height) / 3)),
                     hazard_overlap=draw(st.sampled_from([0.0, 0.5])),
                     boundary_cover=draw(st.sampled_from([1.0, 0.5, 0.01])))
-    dynamics = Dynamics(n_actions=draw(st.sampled_from([4, 8])), slip=draw(st.floats(0, 0.5)),
+    move_m = draw(st.one_of(st.none(), st.floats(1.0, 3.0).map(lambda k: k * spec.cell_m)))
+    dynamics = Dynamics(n_actions=draw(st.sampled_from([4, 8, 16])), slip=draw(st.floats(0, 0.5)),
                         stall=draw(st.floats(0, 0.3)), drift_scale=draw(st.floats(0, 3)),
-                        edge=draw(st.sampled_from(["boundary", "wall"])))
+                        edge=draw(st.sampled_from(["boundary", "wall"])), move_m=move_m)
     site = {"type": "FeatureCollection", "features": draw(st.permutations(features))}
     return site, draw(st.booleans()), spec, dynamics
 

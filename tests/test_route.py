@@ -15,8 +15,9 @@ from pyproj import Transformer
 from shapely.geometry import LineString, Polygon, box
 
 from planner.errors import SettingsError
-from planner.grid import DRAWING_TOLERANCE_M, GridSpec, descend, moves_for, rasterise
+from planner.grid import DRAWING_TOLERANCE_M, GridSpec, descend, rasterise
 from planner.model import EVENT_HAZARD, Dynamics, build_model
+from planner.motion import moves_for
 from planner.route import (
     CLEARANCE_TOLERANCE_M,
     NominalPath,

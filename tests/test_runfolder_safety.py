@@ -330,7 +330,7 @@ def test_a_site_of_many_zones_is_projected_with_one_transformer(monkeypatch):
     data = small_site_dict()
     data["features"] += [feature("drift", "Polygon", rect(1 + i % 9 * 1.1, 1 + i // 9 * 1.1, 1.9 + i % 9 * 1.1,
                                                           1.9 + i // 9 * 1.1), name=f"d{i}", toward_deg=90.0,
-                                 push_m=0.1) for i in range(150)]
+                                 drift_per_m=0.1) for i in range(150)]
     made = []
     original = pyproj.Transformer.from_crs
 

@@ -78,7 +78,7 @@ def test_ground_yard_has_the_described_zones():
     site = load_quietly("ground-yard")
     names = {z.name: z for z in site.zones}
     slope = names["Embankment side-slope"]
-    assert slope.role == "drift" and slope.toward_deg == 180.0 and slope.push_m > 0 and 0 < slope.chance < 1
+    assert slope.role == "drift" and slope.toward_deg == 180.0 and slope.drift_per_m > 0 and 0 < slope.chance < 1
     assert names["Gravel apron"].role == "rough" and names["Gravel apron"].cost_factor > 1
     assert names["Settling pond"].buffer_m > 0
     assert names["Cable trench"].ends_run is False
@@ -450,17 +450,24 @@ BAD_CONTENT = [
      SiteError, r"feature 4 \('Gust lane'\): 'toward_deg' must be <= 360, got 361"),
     ("negative-direction", set_prop(4, "toward_deg", -5.0),
      SiteError, r"feature 4 \('Gust lane'\): 'toward_deg' must be >= 0, got -5"),
-    ("no-push", drop_prop(4, "push_m"), SiteError, r"feature 4 \('Gust lane'\): drift zone needs 'push_m'"),
-    ("negative-push", set_prop(4, "push_m", -1.0),
-     SiteError, r"feature 4 \('Gust lane'\): 'push_m' must be >= 0, got -1"),
-    ("negative-spread", set_prop(4, "spread_m", -0.5),
-     SiteError, r"feature 4 \('Gust lane'\): 'spread_m' must be >= 0, got -0.5"),
-    ("push-not-a-number", set_prop(4, "push_m", "3"),
-     SiteError, r"feature 4 \('Gust lane'\): 'push_m' must be a finite number, got '3'"),
-    ("push-is-boolean", set_prop(4, "push_m", True),
-     SiteError, r"feature 4 \('Gust lane'\): 'push_m' must be a finite number, got True"),
-    ("push-is-nan", set_prop(4, "push_m", float("nan")),
-     SiteError, r"feature 4 \('Gust lane'\): 'push_m' must be a finite number, got nan"),
+    ("no-drift", drop_prop(4, "drift_per_m"), SiteError,
+     r"feature 4 \('Gust lane'\): drift zone needs 'drift_per_m'"),
+    ("negative-drift", set_prop(4, "drift_per_m", -1.0),
+     SiteError, r"feature 4 \('Gust lane'\): 'drift_per_m' must be >= 0, got -1"),
+    ("negative-spread", set_prop(4, "spread_per_sqrt_m", -0.5),
+     SiteError, r"feature 4 \('Gust lane'\): 'spread_per_sqrt_m' must be >= 0, got -0.5"),
+    ("drift-not-a-number", set_prop(4, "drift_per_m", "3"),
+     SiteError, r"feature 4 \('Gust lane'\): 'drift_per_m' must be a finite number, got '3'"),
+    ("drift-is-boolean", set_prop(4, "drift_per_m", True),
+     SiteError, r"feature 4 \('Gust lane'\): 'drift_per_m' must be a finite number, got True"),
+    ("drift-is-nan", set_prop(4, "drift_per_m", float("nan")),
+     SiteError, r"feature 4 \('Gust lane'\): 'drift_per_m' must be a finite number, got nan"),
+    ("drift-per-move", set_prop(4, "push_m", 1.5), SiteError,
+     r"feature 4 \('Gust lane'\): property 'push_m' \(per move\) is from site schema 1 and was replaced by "
+     r"'drift_per_m'"),
+    ("spread-per-move", set_prop(4, "spread_m", 1.0), SiteError,
+     r"feature 4 \('Gust lane'\): property 'spread_m' \(per move\) is from site schema 1 and was replaced by "
+     r"'spread_per_sqrt_m'"),
     ("chance-above-one", set_prop(4, "chance", 1.5),
      SiteError, r"feature 4 \('Gust lane'\): 'chance' must be <= 1, got 1.5"),
     ("chance-below-zero", set_prop(4, "chance", -0.1),
@@ -601,7 +608,7 @@ def test_from_deg_becomes_toward_deg(site_dict, from_deg, toward_deg):
     assert_allclose(zone.toward_deg, toward_deg, atol=1e-12)
     # The push vector points where the wind goes: a westerly (from 270) pushes east.
     rad = math.radians(toward_deg)
-    assert_allclose(zone.push_vector_m, (3.0 * math.sin(rad), 3.0 * math.cos(rad)), atol=1e-12)
+    assert_allclose(zone.drift_vector(), (1.5 * math.sin(rad), 1.5 * math.cos(rad)), atol=1e-12)
 
 
 def test_site_geometry_is_in_metres_of_the_drawing(site_dict):

@@ -23,7 +23,7 @@ SECTIONS = {
     "Vehicle and motion": ("n_actions", "headings", "move_m", "slip", "stall", "drift_scale", "edge", "penalty_m"),
     "Learning": ("epsilon", "step_size", "step_decay", "gamma", "episodes", "max_steps", "n_seeds", "start_mode",
                  "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
-    "Risk table": ("noises", "drift_scales", "budget", "rollouts", "rollout_seed"),
+    "Risk table": ("noises", "drift_scales", "budget_m", "rollouts", "rollout_seed", "grid_check"),
 }
 _SECTION_OF = {name: title for title, names in SECTIONS.items() for name in names}
 _ORDER = {name: k for k, name in enumerate(n for names in SECTIONS.values() for n in names)}
@@ -104,12 +104,15 @@ def grid_options(f):
 
 def dynamics_options(f):
     """Options of the transition model."""
-    f = click.option("--moves", "n_actions", type=click.Choice(["8", "4"]), default="8", show_default=True,
-                     help="King moves (8) or rook moves (4).")(f)
+    f = click.option("--headings", "n_actions", type=int, default=8, show_default=True,
+                     help="Headings the vehicle chooses among: 4, 8 or 16 (16 adds the 22.5-degree ones).")(f)
+    f = click.option("--move-m", "move_m", type=float, default=None, metavar="M",
+                     help="Move length: metres travelled between heading decisions (at least one cell; "
+                          "default: the site's default cell size, or one cell when --cell is coarser).")(f)
     f = click.option("--slip", type=finite(0, 1), default=0.1, show_default=True,
-                     help="Probability a move veers to a neighbouring direction.")(f)
+                     help="Probability a move (of --move-m) veers to a neighbouring heading.")(f)
     f = click.option("--stall", type=finite(0, 1), default=0.0, show_default=True,
-                     help="Probability a move does not happen (drift still acts).")(f)
+                     help="Probability a move (of --move-m) makes no headway (drift still acts).")(f)
     f = click.option("--plan-drift", "drift_scale", type=finite(0), default=1.0, show_default=True,
                      help="Drift scale the routes are planned for: multiplies every drift push and spread "
                           "(1 = as forecast). The risk table's scales are --table-drifts.")(f)
@@ -161,8 +164,8 @@ def risk_table_options(f, *, defaults_from_run: bool = False):
                      metavar="LIST", show_default=run_default or True,
                      help="Drift scales of the risk table, comma-separated, each >= 0 (2 = drift twice the "
                           "forecast). The planning scale is --plan-drift.")(f)
-    f = click.option("--budget", type=click.IntRange(1), default=None, metavar="MOVES",
-                     help="Also report risk within this many moves, and P(timeout).")(f)
+    f = click.option("--budget-m", "budget_m", type=finite(0, low_open=True), default=None, metavar="M",
+                     help="Also report risk within this many metres travelled, and P(timeout).")(f)
     f = click.option("--rollouts", type=click.IntRange(0), metavar="N", default=None if defaults_from_run else 20000,
                      show_default=run_default or True,
                      help="Monte Carlo rollouts per row of the risk table (0 = none).")(f)

@@ -77,10 +77,13 @@ EXIT_NOT_READY = 3
                    "passes), or episodes from the start like SARSA.")
 @click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), metavar="N", default=512, show_default=True,
               help="Update budget of the sweeps schedule, in sweeps.")
+@click.option("--grid-check/--no-grid-check", "grid_check", default=True, show_default=True,
+              help="Re-evaluate each delivered policy on a grid of half the cell (same move length) and report "
+                   "both figures.")
 def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
-         max_cells, n_actions, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay, gamma,
-         episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget, rollouts, alt_m,
-         tie_m, shortest_schedule, max_sweeps):
+         max_cells, n_actions, move_m, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay,
+         gamma, episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget_m, rollouts,
+         alt_m, tie_m, shortest_schedule, max_sweeps, grid_check):
     """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
@@ -108,7 +111,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     check_out(run, force=force)
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
-    dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m)
+    dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m, loaded, spec)
     labelled = rasterise(loaded, spec)
     if episodes is None:
         episodes = default_episodes(int((labelled.passable() & ~labelled.goal).sum()))
@@ -117,9 +120,9 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                           q_init=q_init, max_sweeps=max_sweeps)
     settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn,
                             noises=float_list(noises, "--table-noises", high=1.0),
-                            drift_scales=float_list(drift_scales, "--table-drifts"), budget=budget,
+                            drift_scales=float_list(drift_scales, "--table-drifts"), budget_m=budget_m,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
-                            tie_m=tie_m, shortest_schedule=shortest_schedule)
+                            tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:
         try:
             result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
@@ -135,6 +138,20 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
         click.echo(f"veerwise: note: {pdf_unavailable()}", err=True)
     if strict and not summary["ready_to_sign"]:
         raise click.exceptions.Exit(EXIT_NOT_READY)
+
+
+def format_grid_check(checks, name) -> str:
+    """The half-cell figure beside the reported one: '; at half cell (2.25 m) 1.3% (+8%)'."""
+    from planner.risk import format_prob
+
+    check = next((c for c in checks if c.policy == name), None)
+    if check is None:
+        return ""
+    if check.skipped:
+        return f"; half-cell check skipped: {check.skipped}"
+    rel = f"{100 * check.relative:+.0f}%" if check.relative is not None else f"{check.difference:+.1e}"
+    flag = ", DIFFERS BEYOND TOLERANCE: refine --cell" if check.flagged else ""
+    return f"; at half cell ({check.fine_cell_m:g} m) {format_prob(check.p_incident_fine)} ({rel}{flag})"
 
 
 def plan_summary(result, settings, out, elapsed_s: float) -> dict:
@@ -164,6 +181,7 @@ def plan_summary(result, settings, out, elapsed_s: float) -> dict:
         "p_incident_seeds_range": [x["p_incident_lo"], x["p_incident_hi"]], "converged": x["converged"],
         "message": x["message"], "seed_routes_matching": x["seed_routes_matching"], "n_seeds": x["n_seeds"],
         "seeds_disagree": x["seeds_disagree"], "delivered": x["delivered"],
+        "grid_check": format_grid_check(result.grid_checks, name).removeprefix("; "),
         "text": {"p_incident": x["p_incident"], "p_incident_seeds_range": x["p_incident_range"]},
     } for name, x in figures.items()}
     return {
@@ -215,6 +233,8 @@ def format_plan_summary(summary: dict) -> str:
                      f"{x['moves']} moves, {end}")
         lines += wrapped(f"P(incident) {x['text']['p_incident']} at noise {s['noise']:g}; over the "
                          f"{x['n_seeds']} training runs {x['text']['p_incident_seeds_range']}", " " * 14)
+        if x["grid_check"]:
+            lines += wrapped(x["grid_check"], " " * 14)
         lines += wrapped(f"delivered: {x['delivered']}; {x['message']}", " " * 14)
     if s["comparison"]:
         lines += wrapped(s["comparison"], "comparison    ")

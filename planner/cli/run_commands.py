@@ -39,7 +39,7 @@ def risk_table_options_from_run(f):
 @risk_table_options_from_run
 @click.option("--rollout-seed", type=click.IntRange(0), default=None, metavar="N",
               show_default="spawned from the run's root seed", help="Seed of the Monte Carlo rollouts.")
-def risk(run, fmt, details, policies, noises, drift_scales, budget, rollouts, rollout_seed):
+def risk(run, fmt, details, policies, noises, drift_scales, budget_m, rollouts, rollout_seed):
     """Print the risk table of the policies in run folder RUN.
 
     Exact probabilities from the absorbing Markov chain of each policy executed with
@@ -64,7 +64,7 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget, rollouts, ro
     noise_levels = s.noises if noises is None else float_list(noises, "--table-noises", high=1.0)
     scales = s.drift_scales if drift_scales is None else float_list(drift_scales, "--table-drifts")
     n_rollouts = s.rollouts if rollouts is None else rollouts
-    check_counts(rollouts=n_rollouts, budget=budget, table_noises=len(noise_levels), table_drifts=len(scales))
+    check_counts(rollouts=n_rollouts, budget_m=budget_m, table_noises=len(noise_levels), table_drifts=len(scales))
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid = rebuild_grid(loaded)
     from planner.cli.plan_commands import progress_console
@@ -72,7 +72,7 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget, rollouts, ro
 
     with Progress(progress_console(False)) as progress, progress.task(
             "risk table (rows)", len(names) * len(noise_levels) * len(scales)) as report:
-        rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget=budget,
+        rows = run_risk(loaded, grid, noises=noise_levels, drift_scales=scales, budget_m=budget_m,
                         rollouts=n_rollouts, seed=rollout_seed, policies=names, progress=report)
     click.echo(format_table(rows, fmt, details=details), nl=False)
 

@@ -32,12 +32,20 @@ def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, bounda
     return loaded, spec
 
 
-def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):
-    """The vehicle's ``Dynamics`` from the command-line options."""
-    from planner.model import Dynamics
+def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m, site, spec):
+    """The vehicle's settings from the command-line options.
 
-    return Dynamics(n_actions=int(n_actions), slip=slip, stall=stall, drift_scale=drift_scale, edge=edge,
-                    hazard_penalty_m=penalty_m)
+    The move length defaults to the site's default cell size (or one cell, when --cell
+    is coarser than that) and may not be shorter than the cell.
+    """
+    from planner.grid import default_cell_m
+    from planner.motion import Dynamics
+
+    move = max(default_cell_m(site), spec.cell_m) if move_m is None else move_m
+    dynamics = Dynamics(n_actions=n_actions, slip=slip, stall=stall, drift_scale=drift_scale, edge=edge,
+                        hazard_penalty_m=penalty_m, move_m=move)
+    dynamics.move_length_m(spec.cell_m)
+    return dynamics
 
 
 @cli.command(cls=SectionedCommand)
@@ -46,8 +54,8 @@ def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m):
 @site_options
 @grid_options
 @dynamics_options
-def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions, slip, stall,
-          drift_scale, edge, penalty_m, as_json):
+def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions, move_m, slip,
+          stall, drift_scale, edge, penalty_m, as_json):
     """Validate SITE and print its summary.
 
     Reports where on Earth the site is (its centre in lat/lon), the working frame and
@@ -65,7 +73,8 @@ def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max
 
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
-    summary = site_summary(loaded, spec, make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m))
+    summary = site_summary(loaded, spec, make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m,
+                                                       loaded, spec))
     if as_json:
         click.echo(json.dumps(summary, indent=2, sort_keys=True))
         return
@@ -97,13 +106,14 @@ def format_summary(s: dict) -> str:
     lines.append(f"drift       {len(z['drift'])}")
     for d in z["drift"]:
         chance = f", chance {d['chance']:g}" if d["chance"] < 1 else ""
-        lines.append(f"  - {d['name']} (toward {d['toward_deg']:.0f} deg, push {d['push_m']:g} m/move, "
-                     f"spread {d['spread_m']:g} m{chance})")
+        lines.append(f"  - {d['name']} (toward {d['toward_deg']:.0f} deg, drift {d['drift_per_m']:g} m/m, "
+                     f"spread {d['spread_per_sqrt_m']:g} m/sqrt(m){chance})")
     lines += [
         f"grid        {g['cols']} x {g['rows']} cells of {g['cell_m']:g} m = {g['cells']:,} cells "
         f"({g['usable_cells']:,} usable, {g['goal_cells']:,} of them goal; {g['hazard_cells']:,} hazard; "
         f"budget {g['max_cells']:,})",
-        f"model       {m['moves']} moves, slip {m['slip']:g}, stall {m['stall']:g}, drift x{m['drift_scale']:g}, "
+        f"model       {m['headings']} headings, move {m['move_m']:g} m, slip {m['slip']:g}, stall {m['stall']:g}, "
+        f"drift x{m['drift_scale']:g}, "
         f"edge {m['edge']}; about {m['estimated_bytes'] / 2**20:.0f} MiB",
     ]
     if s["warnings"]:
