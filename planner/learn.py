@@ -611,24 +611,31 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
 
     began = time.perf_counter()
     with ThreadPoolExecutor(max_workers=min(int(n_jobs), n_seeds)) as pool:
-        futures = [pool.submit(run, i) for i in range(n_seeds)]
-        try:
-            pending = set(futures)
-            while pending:
-                _, pending = wait(pending, timeout=PROGRESS_SECONDS)
-                if progress is not None:
-                    progress(done[0], n_seeds * n_ep)
-        except BaseException:
-            # Ctrl-C (or a failing callback): let the workers stop after their chunk.
-            stop.set()
-            raise
-        totals = [f.result() for f in futures]
+        totals = _wait_all([pool.submit(run, i) for i in range(n_seeds)], stop, progress, done, n_seeds * n_ep)
     seconds = time.perf_counter() - began
     return Learned(
         method=method, settings=settings, q=q, q_mean=q.mean(axis=0), returns=returns, moves=moves, ends=ends,
         max_steps=int(max_steps), seed_entropy=_entropy(root), seed_spawn_key=tuple(int(k) for k in root.spawn_key),
         steps_total=int(sum(totals)), seconds=seconds,
     )
+
+
+def _wait_all(futures, stop, progress, done, total) -> list:
+    """The results of the seeds' workers, reporting progress while they run.
+
+    Ctrl-C (or a failing progress callback) sets ``stop``, so that the workers end after
+    their current chunk, and is re-raised.
+    """
+    try:
+        pending = set(futures)
+        while pending:
+            _, pending = wait(pending, timeout=PROGRESS_SECONDS)
+            if progress is not None:
+                progress(done[0], total)
+    except BaseException:
+        stop.set()
+        raise
+    return [f.result() for f in futures]
 
 
 def sweep_order(model: Model, cost_to_go: np.ndarray) -> np.ndarray:
@@ -685,18 +692,8 @@ def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_
     swept, stopped = 0, False
     with ThreadPoolExecutor(max_workers=min(int(n_jobs), n_seeds)) as pool:
         for mark in marks:
-            futures = [pool.submit(run, i, swept, mark) for i in range(n_seeds)]
-            try:
-                pending = set(futures)
-                while pending:
-                    _, pending = wait(pending, timeout=PROGRESS_SECONDS)
-                    if progress is not None:
-                        progress(done[0], n_seeds * budget)
-            except BaseException:
-                stop.set()
-                raise
-            for f in futures:
-                f.result()
+            _wait_all([pool.submit(run, i, swept, mark) for i in range(n_seeds)], stop, progress, done,
+                      n_seeds * budget)
             swept = mark
             mean = q.mean(axis=0)
             p_incident = math.nan
