@@ -335,7 +335,7 @@ def test_true_north_drift_under_a_far_utm_zone_follows_the_meridian_convergence(
         feat("drift", "Polygon", ring(lon - 0.001, lat - 0.001, lon + 0.001, lat + 0.001), name="Northward",
              toward_deg=0.0, drift_per_m=0.2),
     ]}
-    with pytest.warns(UserWarning, match="scale distortion"):
+    with pytest.warns(UserWarning, match="distorts distances by up to"):
         site = site_from_geojson(obj, crs="EPSG:32631")
     zone = site.drifts[0]
     p = zone.geometry.representative_point()
