@@ -312,7 +312,10 @@ DEFAULT_TIE_M = 0.01
 #: ``REACH_SWEEPS``); policy improvement on exact chain solves then finishes the job, and
 #: the figures reported come from those solves, not from the sweeps.
 REACH_TOLERANCE = 1e-10
-REACH_SWEEPS = 2_000
+#: Sweeps are cheap but crawl near nearly closed loops; policy improvement on exact
+#: solves converges in a few rounds from wherever they stop. Measured on the ground-robot
+#: demo plan: 200 sweeps give the same policies as 2,000 in a quarter of the time.
+REACH_SWEEPS = 200
 #: Two actions whose P(incident) from a state differ by less than this are equally safe.
 SAFETY_TIE = 1e-12
 #: Policy-improvement rounds on exact solves after the sweeps (each normally confirms).
