@@ -663,7 +663,8 @@ class RiskVerdict:
 
 
 def risk_verdict(model: Model, greedy: np.ndarray, reference: SafestChoice, *, mc_halfwidth: float = 0.0,
-                 seed_policies=(), rel_band: float = 0.10, length_share: float = 0.01, fmt=None) -> RiskVerdict:
+                 seed_policies=(), seed_p_incident=None, rel_band: float = 0.10, length_share: float = 0.01,
+                 fmt=None) -> RiskVerdict:
     """Judge a learned policy by its risk: converged only when it is as safe as the reference.
 
     Parameters
@@ -675,6 +676,8 @@ def risk_verdict(model: Model, greedy: np.ndarray, reference: SafestChoice, *, m
     mc_halfwidth : half-width of the Monte Carlo 99 % interval of the learned policy's
         P(incident) (0 without rollouts).
     seed_policies : the single seeds' greedy policies, for the spread across seeds.
+    seed_p_incident : their exact P(incident) at the reference's noise, when the caller
+        has them already (used instead of solving ``seed_policies`` again).
     rel_band : relative widening of the reference range (10 %).
     length_share : largest relative excess of expected length still converged (1 %).
     fmt : how the message writes a probability (default: percent, 3 significant digits).
@@ -694,7 +697,10 @@ def risk_verdict(model: Model, greedy: np.ndarray, reference: SafestChoice, *, m
     ref_len = reference.expected_m
     long_ok = math.isfinite(length) and length <= ref_len * (1.0 + length_share) + 1e-9
     risk_ok = band_lo - 1e-15 <= p <= band_hi + 1e-15
-    seeds = [float(incident_from_every_state(model, g, eps, check=False)[model.start]) for g in seed_policies]
+    if seed_p_incident is not None:
+        seeds = [float(p) for p in seed_p_incident]
+    else:
+        seeds = [float(incident_from_every_state(model, g, eps, check=False)[model.start]) for g in seed_policies]
     seeds_lo, seeds_hi = (min(seeds), max(seeds)) if seeds else (math.nan, math.nan)
     ref = fmt(lo) if fmt(lo) == fmt(hi) else f"{fmt(lo)}, equally good routes {fmt(lo)} to {fmt(hi)}"
     if risk_ok and long_ok:

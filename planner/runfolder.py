@@ -836,7 +836,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     # Verdicts on risk: a learned policy is converged only when its own exact P(incident)
     # lies in its reference's tie range (widened) and its length is within 1 %.
     for name in POLICIES:
-        verdict = risk_verdict(model, greedy[name], references[name], seed_policies=seed_greedy[name],
+        verdict = risk_verdict(model, greedy[name], references[name], seed_p_incident=seed_p_incident[name],
                                mc_halfwidth=_mc_halfwidth(find_row(risk_rows, name, eps, base)), fmt=format_prob)
         convergence[name] = convergence[name].judged_by(verdict, **_training_notes(learned[name]))
     risk_rows = _with_verdicts(risk_rows, convergence, references, eps, base)
