@@ -23,8 +23,10 @@ OUTSIDE = -2
 FREE = -1
 #: Default budget on the number of grid cells.
 DEFAULT_MAX_CELLS = 400_000
-#: Overlaps thinner than this (metres) are drawing precision, not geometry.
+#: Overlaps thinner than this (metres) are drawing precision, not geometry, at any cell size.
 DRAWING_TOLERANCE_M = 0.01
+#: ... and overlaps thinner than this share of the cell side: below what the grid resolves.
+DRAWING_TOLERANCE_SHARE = 0.02
 #: Hazards are tracked in a 64-bit mask per outcome.
 MAX_HAZARDS = 62
 
@@ -41,8 +43,11 @@ class GridSpec:
     boundary_cover : a cell is inside when the boundary covers at least this fraction
         of it; 1 (default) means wholly.
 
-    Both rules ignore overlaps thinner than ``DRAWING_TOLERANCE_M`` (1 cm) along a
-    cell side: that is projection round-off, not a drawn edge.
+    The boundary rule ignores a gap thinner than :func:`drawing_tolerance_m` along a
+    cell side (2 % of the side, at least 1 cm): that is drawing precision or the
+    frame's curvature, not a drawn edge. The hazard rule ignores only overlaps thinner
+    than ``DRAWING_TOLERANCE_M`` (1 cm, coordinate round-off), so a hazard that
+    reaches into a cell by more than that still makes it hazard, at any cell size.
     max_cells : refuse grids with more cells than this.
     """
 
@@ -168,7 +173,7 @@ def grid_shape(site, cell_m: float) -> tuple[int, int]:
             f"--cell {cell_m:g} m is larger than the site ({width:.0f} m x {height:.0f} m)"
         )
     # Drawing precision keeps coordinate round-off from adding a sliver column.
-    slack = DRAWING_TOLERANCE_M / cell_m
+    slack = drawing_tolerance_m(cell_m) / cell_m
     return (max(1, math.ceil(height / cell_m - slack)), max(1, math.ceil(width / cell_m - slack)))
 
 
@@ -333,21 +338,30 @@ def _overlap_areas(tree, boxes, geometry) -> np.ndarray:
 
 def _covered_fraction_at_least(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
     area = _overlap_areas(tree, boxes, geometry)
-    return (area > 0) & (area >= threshold * cell_area - _sliver_area(cell_area))
+    side = math.sqrt(cell_area)
+    return (area > 0) & (area >= threshold * cell_area - drawing_tolerance_m(side) * side)
 
 
 def _overlap_fraction_above(tree, boxes, geometry, threshold, cell_area) -> np.ndarray:
-    return _overlap_areas(tree, boxes, geometry) > max(threshold * cell_area, _sliver_area(cell_area))
+    # Conservative at any cell size: only coordinate round-off is ignored.
+    return _overlap_areas(tree, boxes, geometry) > max(threshold * cell_area, DRAWING_TOLERANCE_M * math.sqrt(cell_area))
 
 
-def _sliver_area(cell_area: float) -> float:
-    """Overlap too thin to count: a strip of ``DRAWING_TOLERANCE_M`` along one cell side.
+def drawing_tolerance_m(cell_m: float) -> float:
+    """Width of a boundary gap too thin to count: 2 % of the cell side, at least 1 cm.
 
-    Projection round-off moves drawn edges by fractions of a millimetre; without this
-    a hazard drawn exactly on a cell edge would claim the next row of cells, and a
-    boundary drawn on one would lose its edge cells.
+    Projection round-off moves drawn edges by fractions of a millimetre, and an edge
+    drawn straight in lon/lat on a 2 km site lies up to about 0.3 m off the grid's axis
+    at its ends (the local frame's meridian convergence). A fixed width dropped whole
+    rows and columns of boundary cells on large sites. A strip under 1/50 of the side
+    changes a cell's covered area by under 2 %, finer than the grid claims to resolve,
+    so the width scales with the cell. (Hazards keep the fixed 1 cm: see GridSpec.)
+
+    >>> round(drawing_tolerance_m(20.0), 3), round(drawing_tolerance_m(0.25), 3)
+    (0.4, 0.01)
     """
-    return DRAWING_TOLERANCE_M * math.sqrt(cell_area)
+    return max(DRAWING_TOLERANCE_M, DRAWING_TOLERANCE_SHARE * float(cell_m))
+
 
 
 def _centres_in(tree, centres, geometry, boxes) -> np.ndarray:

@@ -399,3 +399,92 @@ def test_ground_yard_layout_survives_rasterising():
     assert np.all(slope_cells[drop_rows.max() + 1:pond_rows.min(), 22:62])
     gravel = grid.cost_factor > 1
     assert gravel.any() and np.nonzero(gravel)[0].max() < drop_rows.min()
+
+
+# ----------------------------------------------------------------------------- drawing tolerance on large sites
+
+
+def _large_site(ring_lonlat):
+    """A site of one drawn boundary ring (lon/lat), start and goal near its centre."""
+    xs = [p[0] for p in ring_lonlat]
+    ys = [p[1] for p in ring_lonlat]
+    lon, lat = sum(xs[:-1]) / 4, sum(ys[:-1]) / 4
+    return site_from_geojson({"type": "FeatureCollection", "features": [
+        feature("boundary", "Polygon", [ring_lonlat], name="Long range"),
+        feature("start", "Point", [lon - 0.001, lat], name="S"),
+        feature("goal", "Point", [lon + 0.001, lat], name="G"),
+    ]})
+
+
+def test_a_2_km_square_drawn_along_meridians_keeps_its_edge_columns():
+    # A square drawn along two meridians and two parallels, coordinates to 7 decimals
+    # (about 1 cm) as GIS editors write them. In the site's local transverse Mercator
+    # frame its meridian edges lean by the meridian convergence (about 0.01 degree
+    # 1 km from the central meridian at 46.8 N), so their ends lie about 0.33 m off
+    # the grid's axis: 1.7 % of a 20 m cell. The grid must keep every column and row
+    # that the square covers but for such a strip.
+    lat0, lon0, half_deg_lat, half_deg_lon = 46.8, 2.7, 0.009, 0.01316
+    ring = [[round(lon0 + sx * half_deg_lon, 7), round(lat0 + sy * half_deg_lat, 7)]
+            for sx, sy in ((-1, -1), (1, -1), (1, 1), (-1, 1), (-1, -1))]
+    site = _large_site(ring)
+    grid = rasterise(site, GridSpec(20.0))
+    xs, ys = np.asarray(site.boundary.exterior.coords).T
+    # The frame polygon is a trapezoid: its height and its narrower (northern) width
+    # in whole cells give the rows and columns that lie wholly inside but for the
+    # lean of the meridian edges.
+    height = ys.max() - ys.min()
+    north_width = xs[ys > ys.mean()].max() - xs[ys > ys.mean()].min()
+    lean = (xs.max() - xs.min() - north_width) / 2
+    assert 0.2 < lean < 0.02 * 20.0  # the premise: the lean is real, and under 2 % of a cell
+    expected = math.floor(height / 20.0) * math.floor(north_width / 20.0)
+    assert int((grid.label != OUTSIDE).sum()) == expected
+
+
+def test_a_rotated_2_km_site_keeps_the_cells_it_covers_and_no_others():
+    # A 2,000 m x 600 m range rotated 30 degrees; the check is made from the corner
+    # positions of every cell against the four edge lines of the projected boundary,
+    # not from polygon areas.
+    lat0, lon0 = 46.8, 2.7
+    t = __import__("pyproj").Transformer.from_crs(
+        f"+proj=tmerc +lat_0={lat0} +lon_0={lon0} +k=1 +ellps=WGS84", "EPSG:4326", always_xy=True)
+    c, s = math.cos(math.radians(30)), math.sin(math.radians(30))
+    corners = [(-1000, -300), (1000, -300), (1000, 300), (-1000, 300), (-1000, -300)]
+    ring = [[round(v, 7) for v in t.transform(x * c - y * s, x * s + y * c)] for x, y in corners]
+    site = _large_site(ring)
+    cell = 20.0
+    grid = rasterise(site, GridSpec(cell))
+    pts = np.asarray(site.boundary.exterior.coords)[:4]
+    # Signed distance of a point outside each edge line (positive = outside), the
+    # ring being counter-clockwise.
+    def outside_by(px, py):
+        worst = np.full(px.shape, -np.inf)
+        for a, b in zip(pts, np.roll(pts, -1, axis=0), strict=True):
+            ex, ey = b - a
+            nx, ny = ey / math.hypot(ex, ey), -ex / math.hypot(ex, ey)
+            worst = np.maximum(worst, (px - a[0]) * nx + (py - a[1]) * ny)
+        return worst
+    rows, cols = np.indices(grid.shape)
+    x0, y0 = grid.x0 + cols * cell, grid.y0 + rows * cell
+    protrusion = np.max([outside_by(x0 + dx, y0 + dy) for dx in (0, cell) for dy in (0, cell)], axis=0)
+    inside = grid.label != OUTSIDE
+    # (a) every cell whose four corners lie inside the range is kept,
+    assert inside[protrusion <= 0].all()
+    # (b) a kept cell loses at most 2 % of its area past an edge at 30 degrees: a
+    # corner triangle of area d^2 / (2 sin 30 cos 30) <= 0.02 cell^2, so d <= 0.132 cell
+    # (1 cm more for the coordinates' rounding).
+    assert protrusion[inside].max() <= math.sqrt(0.02 * 2 * s * c) * cell + 0.01
+    # and the ring of partly covered cells along the edges is kept where it should be
+    assert int(inside.sum()) > int((protrusion <= 0).sum())
+
+
+def test_a_hazard_reaching_2_cm_into_a_large_cell_still_makes_it_hazard():
+    # Hazards stay conservative at any cell size: only 1 cm of coordinate round-off is
+    # ignored, not the 2 % of the side the boundary rule allows.
+    # A wall whose western edge lies 2 cm west of the line x = 60 m (0.1 % of a 20 m
+    # cell): the column x in [40, 60) is touched by a 2 cm strip and must be hazard.
+    # The wall stops at y = 40 m, so the row above it stays open.
+    site = metric_site(zone(0, "Wall", "hazard", box(59.98, 0.0, 70.0, 40.0)),
+                       start=(10.0, 30.0), goal=(90.0, 30.0), boundary=box(0.0, 0.0, 100.0, 60.0))
+    grid = rasterise(site, GridSpec(20.0))
+    assert (grid.label[:2, 2] == 0).all()
+    assert (grid.label[:, 1] == FREE).all()
