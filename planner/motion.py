@@ -161,6 +161,34 @@ class Dynamics:
         return move
 
 
+def travel_budget_m(budget_m: float | None = None, budget_min: float | None = None,
+                    speed_mps: float | None = None) -> float | None:
+    """A travel budget in metres, given in metres or in minutes at a ground speed.
+
+    Parameters
+    ----------
+    budget_m : metres travelled; or
+    budget_min : minutes of travel at ``speed_mps`` metres per second over ground.
+
+    >>> travel_budget_m(budget_min=12.0, speed_mps=2.5)
+    1800.0
+    """
+    if budget_min is None:
+        if speed_mps is not None and budget_m is None:
+            raise SettingsError("--speed-mps is the speed a time budget (--budget-min) is travelled at; "
+                                "give --budget-min with it")
+        return budget_m
+    if budget_m is not None:
+        raise SettingsError("give the travel budget once: --budget-m (metres) or --budget-min (minutes), not both")
+    for name, value in (("--budget-min", budget_min), ("--speed-mps", speed_mps)):
+        if value is None:
+            raise SettingsError("--budget-min needs --speed-mps, the vehicle's speed over ground in metres per "
+                                "second, to turn minutes into metres travelled")
+        if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
+            raise SettingsError(f"{name} must be a positive number, got {value!r}")
+    return float(budget_min) * 60.0 * float(speed_mps)
+
+
 def moves_within(budget_m: float, move_m: float) -> int:
     """Whole moves a travel budget of ``budget_m`` metres allows (each decision travels ``move_m``)."""
     return int(math.floor(budget_m / move_m + 1e-9))

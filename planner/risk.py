@@ -124,7 +124,8 @@ class RiskRow:
         ends at the goal (NaN when ``p_goal`` is 0).
     residual : largest relative residual of the linear solves behind this row.
     n_trapped_states : states from which the run can never end under this policy.
-    budget : step budget T, or None.
+    budget : step budget T in moves, or None; budget_m : T times the move length (the travel
+        budget in metres, rounded down to whole moves; a diagonal move travels farther).
     p_goal_within_budget, p_incident_within_budget, p_timeout : P(goal within T moves),
         P(incident within T moves), P(still going after T moves); None without budget.
     p_entry : P(at least one move passes through the zone) for every hazard that does
@@ -162,6 +163,7 @@ class RiskRow:
     residual: float
     n_trapped_states: int = 0
     budget: int | None = None
+    budget_m: float | None = None
     p_goal_within_budget: float | None = None
     p_incident_within_budget: float | None = None
     p_timeout: float | None = None
@@ -203,7 +205,8 @@ class RiskRow:
                 p_by_event={k: num(v) for k, v in data["p_by_event"].items()}, p_never=num(data["p_never"]),
                 expected_moves=num(data["expected_moves"]), expected_m=num(data["expected_m"]),
                 residual=num(data["residual"]), n_trapped_states=int(data["n_trapped_states"]),
-                budget=data["budget"], p_goal_within_budget=opt(data["p_goal_within_budget"]),
+                budget=data["budget"], budget_m=opt(data.get("budget_m")),
+                p_goal_within_budget=opt(data["p_goal_within_budget"]),
                 p_incident_within_budget=opt(data["p_incident_within_budget"]), p_timeout=opt(data["p_timeout"]),
                 p_entry={k: num(v) for k, v in data["p_entry"].items()}, n_rollouts=int(data["n_rollouts"]),
                 n_truncated=int(data["n_truncated"]),
@@ -226,7 +229,8 @@ class RiskRow:
             "p_by_event": {k: _plain(v) for k, v in self.p_by_event.items()}, "p_never": _plain(self.p_never),
             "expected_moves": _plain(self.expected_moves), "expected_m": _plain(self.expected_m),
             "residual": _plain(self.residual), "n_trapped_states": int(self.n_trapped_states),
-            "budget": self.budget, "p_goal_within_budget": _plain(self.p_goal_within_budget),
+            "budget": self.budget, "budget_m": _plain(self.budget_m),
+            "p_goal_within_budget": _plain(self.p_goal_within_budget),
             "p_incident_within_budget": _plain(self.p_incident_within_budget), "p_timeout": _plain(self.p_timeout),
             "p_entry": {k: _plain(v) for k, v in self.p_entry.items()},
             "n_rollouts": int(self.n_rollouts), "n_truncated": int(self.n_truncated),
@@ -552,7 +556,8 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
         policy=str(name), noise=float(noise), drift_scale=float(model.dynamics.drift_scale), p_goal=p_goal,
         p_incident=p_incident, p_by_event=p_by_event, p_never=p_never, expected_moves=moves, expected_m=metres,
         residual=float(residual), n_trapped_states=int((model.active & ~result.reaches).sum()),
-        budget=None if budget is None else int(budget), p_entry=p_entry, **within,
+        budget=None if budget is None else int(budget),
+        budget_m=None if budget is None else int(budget) * float(np.min(model.move_m)), p_entry=p_entry, **within,
     )
     if rollouts > 0:
         row = _with_monte_carlo(row, model, action_probs, result.reaches, ends, int(rollouts), rng,
@@ -960,6 +965,16 @@ def _format_text(rows: list[RiskRow], details: bool = False) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _budget_words(r: RiskRow) -> str:
+    """'364.5 m (81 moves)': the travel budget in metres first, the moves it allows after.
+
+    The metres are whole moves of the move length (a diagonal move travels farther).
+    """
+    if r.budget_m is None:
+        return f"{r.budget} moves"
+    return f"{r.budget_m:,.1f} m ({r.budget} moves of {r.budget_m / max(r.budget, 1):g} m)"
+
+
 def _row_details(r: RiskRow) -> list[str]:
     details = []
     if r.p_by_event:
@@ -970,7 +985,7 @@ def _row_details(r: RiskRow) -> list[str]:
         details.append("entries: " + ", ".join(parts))
     if r.budget is not None:
         details.append(
-            f"within {r.budget} moves: goal {_mark(r, 'goal_within_budget', format_prob(r.p_goal_within_budget))}"
+            f"within {_budget_words(r)}: goal {_mark(r, 'goal_within_budget', format_prob(r.p_goal_within_budget))}"
             f", incident {_mark(r, 'incident_within_budget', format_prob(r.p_incident_within_budget))}"
             f", timeout {_mark(r, 'timeout', format_prob(r.p_timeout))}"
         )

@@ -379,6 +379,8 @@ class PlanSettings:
     noises: tuple[float, ...] = (0.0, 0.05, 0.1, 0.2)
     drift_scales: tuple[float, ...] = (1.0, 1.5, 2.0)
     budget_m: float | None = None
+    budget_min: float | None = None
+    speed_mps: float | None = None
     rollouts: int = 20000
     seed: int | None = None
     crs: str | None = None
@@ -403,6 +405,12 @@ class PlanSettings:
                 raise SettingsError(f"--table-drifts values must be finite and >= 0, got {m}")
         if self.budget_m is not None and not (np.isfinite(self.budget_m) and self.budget_m > 0):
             raise SettingsError(f"--budget-m must be a positive number of metres, got {self.budget_m}")
+        if self.budget_min is not None:
+            from planner.motion import travel_budget_m
+
+            if not math.isclose(travel_budget_m(None, self.budget_min, self.speed_mps), self.budget_m or 0.0):
+                raise SettingsError(f"--budget-min {self.budget_min:g} at --speed-mps {self.speed_mps:g} is not "
+                                    f"--budget-m {self.budget_m!r}")
         if self.rollouts < 0:
             raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
         if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
@@ -519,7 +527,8 @@ def settings_record(settings: PlanSettings) -> dict:
 
 #: Types of the plain settings in a manifest (the nested ones are checked by their classes).
 SETTING_TYPES = {
-    "episodes_shortest": (int, type(None)), "budget_m": (int, float, type(None)), "rollouts": (int,),
+    "episodes_shortest": (int, type(None)), "budget_m": (int, float, type(None)),
+    "budget_min": (int, float, type(None)), "speed_mps": (int, float, type(None)), "rollouts": (int,),
     "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
     "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
     "cautious_schedule": (str,), "shortest_schedule": (str,),

@@ -430,6 +430,9 @@ def test_progress_shows_every_long_stage_and_how_far_it_is(planned, tmp_path, ca
     (["--crs", "EPSG:4326"], "--crs 'EPSG:4326': is not a projected CRS (a geographic CRS is in degrees"),
     (["--budget-m", "1"], "--budget-m 1 m is shorter than one move (2 m)"),
     (["--moves", "8"], "No such option '--moves'"),
+    (["--budget-min", "5"], "--budget-min needs --speed-mps"),
+    (["--budget-m", "100", "--budget-min", "5", "--speed-mps", "2"], "give the travel budget once"),
+    (["--speed-mps", "2"], "--speed-mps is the speed a time budget (--budget-min) is travelled at"),
 ])
 def test_bad_vehicle_settings_are_one_line_exit_2_nothing_written(tmp_path, args, message):
     site, out, result = plan_small_site(tmp_path, *SMALL, *args)
@@ -469,3 +472,15 @@ def test_briefing_gives_the_half_cell_figure_beside_the_reported_one(planned):
         if check:
             assert format_prob(check["p_incident_fine"]) in html and f"at {check['fine_cell_m']:g} m cells" in html
     assert "move length 2 m between heading decisions" in html
+
+
+def test_a_time_budget_is_minutes_at_the_stated_speed_shown_in_metres(planned):
+    # 0.5 min at 2 m/s is 60 m of travel: 30 moves of the small site's 2 m.
+    _, out, _ = planned
+    result = CliRunner().invoke(cli, ["risk", str(out), "--budget-min", "0.5", "--speed-mps", "2", "--details",
+                                      "--rollouts", "0", "--table-noises", "0.1", "--table-drifts", "1"])
+    assert result.exit_code == 0, result.output
+    assert result.output.count("within 60.0 m (30 moves of 2 m): goal") == 2, result.output
+    no_speed = CliRunner().invoke(cli, ["risk", str(out), "--budget-min", "0.5"])
+    assert no_speed.exit_code == 2 and len(no_speed.output.strip().splitlines()) == 1, no_speed.output
+    assert "--budget-min needs --speed-mps" in no_speed.output

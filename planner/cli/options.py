@@ -23,7 +23,7 @@ SECTIONS = {
     "Vehicle and motion": ("n_actions", "headings", "move_m", "slip", "stall", "drift_scale", "edge", "penalty_m"),
     "Learning": ("epsilon", "step_size", "step_decay", "gamma", "episodes", "max_steps", "n_seeds", "start_mode",
                  "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
-    "Risk table": ("noises", "drift_scales", "budget_m", "rollouts", "rollout_seed", "grid_check"),
+    "Risk table": ("noises", "drift_scales", "budget_m", "budget_min", "speed_mps", "rollouts", "rollout_seed", "grid_check"),
 }
 _SECTION_OF = {name: title for title, names in SECTIONS.items() for name in names}
 _ORDER = {name: k for k, name in enumerate(n for names in SECTIONS.values() for n in names)}
@@ -166,6 +166,11 @@ def risk_table_options(f, *, defaults_from_run: bool = False):
                           "forecast). The planning scale is --plan-drift.")(f)
     f = click.option("--budget-m", "budget_m", type=finite(0, low_open=True), default=None, metavar="M",
                      help="Also report risk within this many metres travelled, and P(timeout).")(f)
+    f = click.option("--budget-min", "budget_min", type=finite(0, low_open=True), default=None, metavar="MIN",
+                     help="The same budget as minutes of travel at --speed-mps (instead of --budget-m).")(f)
+    f = click.option("--speed-mps", "speed_mps", type=finite(0, low_open=True), default=None, metavar="V",
+                     show_default=run_default,
+                     help="Speed over ground, metres per second, that --budget-min is travelled at.")(f)
     f = click.option("--rollouts", type=click.IntRange(0), metavar="N", default=None if defaults_from_run else 20000,
                      show_default=run_default or True,
                      help="Monte Carlo rollouts per row of the risk table (0 = none).")(f)

@@ -82,8 +82,8 @@ EXIT_NOT_READY = 3
                    "both figures.")
 def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
          max_cells, n_actions, move_m, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay,
-         gamma, episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget_m, rollouts,
-         alt_m, tie_m, shortest_schedule, max_sweeps, grid_check):
+         gamma, episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget_m, budget_min,
+         speed_mps, rollouts, alt_m, tie_m, shortest_schedule, max_sweeps, grid_check):
     """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
@@ -102,6 +102,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     """
     from planner.grid import rasterise
     from planner.learn import LearnSettings
+    from planner.motion import travel_budget_m
     from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, run_lock, stop_on_sigterm, write_run
 
     started = time.perf_counter()
@@ -120,7 +121,9 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                           q_init=q_init, max_sweeps=max_sweeps)
     settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn,
                             noises=float_list(noises, "--table-noises", high=1.0),
-                            drift_scales=float_list(drift_scales, "--table-drifts"), budget_m=budget_m,
+                            drift_scales=float_list(drift_scales, "--table-drifts"),
+                            budget_m=travel_budget_m(budget_m, budget_min, speed_mps), budget_min=budget_min,
+                            speed_mps=speed_mps,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
                             tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:

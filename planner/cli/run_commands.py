@@ -39,7 +39,8 @@ def risk_table_options_from_run(f):
 @risk_table_options_from_run
 @click.option("--rollout-seed", type=click.IntRange(0), default=None, metavar="N",
               show_default="spawned from the run's root seed", help="Seed of the Monte Carlo rollouts.")
-def risk(run, fmt, details, policies, noises, drift_scales, budget_m, rollouts, rollout_seed):
+def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min, speed_mps, rollouts,
+         rollout_seed):
     """Print the risk table of the policies in run folder RUN.
 
     Exact probabilities from the absorbing Markov chain of each policy executed with
@@ -64,6 +65,11 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, rollouts, 
     noise_levels = s.noises if noises is None else float_list(noises, "--table-noises", high=1.0)
     scales = s.drift_scales if drift_scales is None else float_list(drift_scales, "--table-drifts")
     n_rollouts = s.rollouts if rollouts is None else rollouts
+    from planner.motion import travel_budget_m
+
+    if budget_min is not None and speed_mps is None:
+        speed_mps = s.speed_mps
+    budget_m = travel_budget_m(budget_m, budget_min, speed_mps)
     check_counts(rollouts=n_rollouts, budget_m=budget_m, table_noises=len(noise_levels), table_drifts=len(scales))
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid = rebuild_grid(loaded)
