@@ -29,7 +29,7 @@ from pathlib import Path
 
 from planner import notation, style
 from planner.errors import RunFolderError
-from planner.risk import find_row, format_prob
+from planner.risk import find_row, format_prob, three_level_words
 
 #: The two policies, in the order the briefing shows them.
 POLICIES = tuple(style.POLICY)
@@ -491,7 +491,9 @@ def _half_cell(row) -> str:
     rel = check.get("relative")
     diff = f"{100 * rel:+.0f}%" if rel is not None else f"{check['difference']:+.1e}"
     verdict = "beyond tolerance: the figure depends on the cell size" if check["flagged"] else "within tolerance"
-    return f"{format_prob(check['p_incident_fine'])} at {check['fine_cell_m']:g} m cells ({diff}; {verdict})"
+    third = three_level_words(check)
+    return (f"{format_prob(check['p_incident_fine'])} at {check['fine_cell_m']:g} m cells ({diff}; {verdict})"
+            + (f"; {third}" if third else ""))
 
 
 def _section_routes(content: dict, p: dict) -> list:

@@ -392,6 +392,7 @@ class PlanSettings:
     cautious_schedule: str = "episodes"
     shortest_schedule: str = "sweeps"
     grid_check: bool = True
+    grid_levels: int = 2
 
     def __post_init__(self):
         if not 0.0 <= self.learn.epsilon < 1.0:
@@ -413,6 +414,8 @@ class PlanSettings:
                                     f"--budget-m {self.budget_m!r}")
         if self.rollouts < 0:
             raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
+        if self.grid_levels not in (2, 3) or isinstance(self.grid_levels, bool):
+            raise SettingsError(f"--grid-levels must be 2 or 3, got {self.grid_levels!r}")
         if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
                 and np.isfinite(self.tie_m) and self.tie_m >= 0):
             raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
@@ -532,7 +535,7 @@ SETTING_TYPES = {
     "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
     "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
     "cautious_schedule": (str,), "shortest_schedule": (str,),
-    "grid_check": (bool,),
+    "grid_check": (bool,), "grid_levels": (int,),
 }
 
 
@@ -908,8 +911,10 @@ def _grid_check(site, grid, settings, model, greedy, rows, progress):
     eps = settings.learn.epsilon
     delivered = {name: greedy[name] for name in POLICIES}
     if settings.grid_check:
-        progress(f"half-cell check: both policies re-evaluated at {grid.cell_m / 2:g} m cells")
-        checks = half_cell_check(site, grid, settings.grid, settings.dynamics, model, delivered, rows, noise=eps)
+        finer = f"{grid.cell_m / 2:g} m" + (f" and {grid.cell_m / 4:g} m" if settings.grid_levels == 3 else "")
+        progress(f"grid check: both policies re-evaluated at {finer} cells")
+        checks = half_cell_check(site, grid, settings.grid, settings.dynamics, model, delivered, rows, noise=eps,
+                                 levels=settings.grid_levels)
     else:
         checks = []
         for name in POLICIES:

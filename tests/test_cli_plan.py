@@ -10,6 +10,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import json
+import math
 import re
 import shutil
 import xml.etree.ElementTree as ET
@@ -484,3 +485,24 @@ def test_a_time_budget_is_minutes_at_the_stated_speed_shown_in_metres(planned):
     no_speed = CliRunner().invoke(cli, ["risk", str(out), "--budget-min", "0.5"])
     assert no_speed.exit_code == 2 and len(no_speed.output.strip().splitlines()) == 1, no_speed.output
     assert "--budget-min needs --speed-mps" in no_speed.output
+
+
+def test_three_grid_levels_give_the_quarter_cell_figure_and_the_observed_order(tmp_path):
+    _, out, result = plan_small_site(tmp_path, *SMALL, "--grid-levels", "3")
+    assert result.exit_code == 0, result.output
+    checks = manifest(out)["grid_check"]
+    assert [c["quarter_cell_m"] for c in checks] == [0.5, 0.5]
+    html = (out / "brief.html").read_text()
+    for c in checks:
+        f3, f2, f1 = c["p_incident"], c["p_incident_fine"], c["p_incident_quarter"]
+        assert f1 is not None and 0.0 <= f1 <= 1.0
+        # Roache (1998), grid refinement ratio 2: p = ln((f3 - f2) / (f2 - f1)) / ln 2, only for
+        # monotone convergence (differences of one sign, shrinking).
+        if (f2 - f3) * (f1 - f2) > 0 and abs(f1 - f2) < abs(f2 - f3):
+            order = math.log((f3 - f2) / (f2 - f1)) / math.log(2.0)
+            assert c["order"] == pytest.approx(order, rel=1e-9)
+            assert c["extrapolated"] == pytest.approx(f1 + (f1 - f2) / (2.0**order - 1.0), rel=1e-9)
+            assert "observed order" in result.output
+        else:
+            assert c["order"] is None and "do not converge monotonically" in result.output
+        assert format_prob(f1) in html and "at quarter cell (0.5 m)" in html

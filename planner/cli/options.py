@@ -23,7 +23,8 @@ SECTIONS = {
     "Vehicle and motion": ("n_actions", "headings", "move_m", "slip", "stall", "drift_scale", "edge", "penalty_m"),
     "Learning": ("epsilon", "step_size", "step_decay", "gamma", "episodes", "max_steps", "n_seeds", "start_mode",
                  "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
-    "Risk table": ("noises", "drift_scales", "budget_m", "budget_min", "speed_mps", "rollouts", "rollout_seed", "grid_check"),
+    "Risk table": ("noises", "drift_scales", "budget_m", "budget_min", "speed_mps", "rollouts", "rollout_seed",
+                   "grid_check", "grid_levels"),
 }
 _SECTION_OF = {name: title for title, names in SECTIONS.items() for name in names}
 _ORDER = {name: k for k, name in enumerate(n for names in SECTIONS.values() for n in names)}

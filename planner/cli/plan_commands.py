@@ -80,10 +80,14 @@ EXIT_NOT_READY = 3
 @click.option("--grid-check/--no-grid-check", "grid_check", default=True, show_default=True,
               help="Re-evaluate each delivered policy on a grid of half the cell (same move length) and report "
                    "both figures.")
+@click.option("--grid-levels", "grid_levels", type=click.IntRange(2, 3), default=2, show_default=True,
+              help="Grids of the check: 2 (the cell and half the cell) or 3 (also a quarter: an observed order "
+                   "and an error estimate by Richardson extrapolation).")
 def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
          max_cells, n_actions, move_m, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay,
          gamma, episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget_m, budget_min,
-         speed_mps, rollouts, alt_m, tie_m, shortest_schedule, max_sweeps, grid_check):
+         speed_mps, rollouts, alt_m, tie_m, shortest_schedule, max_sweeps, grid_check,
+         grid_levels):
     """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
@@ -125,7 +129,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                             budget_m=travel_budget_m(budget_m, budget_min, speed_mps), budget_min=budget_min,
                             speed_mps=speed_mps,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
-                            tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check)
+                            tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check,
+                            grid_levels=grid_levels)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:
         try:
             result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
@@ -145,7 +150,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
 
 def format_grid_check(checks, name) -> str:
     """The half-cell figure beside the reported one: '; at half cell (2.25 m) 1.3% (+8%)'."""
-    from planner.risk import format_prob
+    from planner.risk import format_prob, three_level_words
 
     check = next((c for c in checks if c.policy == name), None)
     if check is None:
@@ -154,7 +159,9 @@ def format_grid_check(checks, name) -> str:
         return f"; half-cell check skipped: {check.skipped}"
     rel = f"{100 * check.relative:+.0f}%" if check.relative is not None else f"{check.difference:+.1e}"
     flag = ", DIFFERS BEYOND TOLERANCE: refine --cell" if check.flagged else ""
-    return f"; at half cell ({check.fine_cell_m:g} m) {format_prob(check.p_incident_fine)} ({rel}{flag})"
+    third = three_level_words(check.as_dict())
+    return (f"; at half cell ({check.fine_cell_m:g} m) {format_prob(check.p_incident_fine)} ({rel}{flag})"
+            + (f"; {third}" if third else ""))
 
 
 def plan_summary(result, settings, out, elapsed_s: float) -> dict:
