@@ -393,6 +393,9 @@ class PlanSettings:
     shortest_schedule: str = "sweeps"
     grid_check: bool = True
     grid_levels: int = 2
+    #: the ``--settings`` file the options were read from, and its SHA-256, or None
+    settings_file: str | None = None
+    settings_sha256: str | None = None
 
     def __post_init__(self):
         if not 0.0 <= self.learn.epsilon < 1.0:
@@ -536,6 +539,7 @@ SETTING_TYPES = {
     "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
     "cautious_schedule": (str,), "shortest_schedule": (str,),
     "grid_check": (bool,), "grid_levels": (int,),
+    "settings_file": (str, type(None)), "settings_sha256": (str, type(None)),
 }
 
 

@@ -24,6 +24,7 @@ from planner.cli.options import (
     site_argument,
     site_options,
 )
+from planner.cli.settings_file import settings_option
 from planner.cli.site_commands import load_site_and_spec, make_dynamics
 from planner.errors import Interrupted
 
@@ -62,6 +63,7 @@ EXIT_NOT_READY = 3
               help=f"Exit with code {EXIT_NOT_READY} (after writing the run) when any policy is not converged or "
                    "its training runs disagree on the route: for scripted campaigns and CI.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress display.")
+@settings_option
 @site_options
 @grid_options
 @dynamics_options
@@ -103,6 +105,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
       veerwise plan maps/ground-yard.geojson run-yard --root-seed 1
       veerwise plan maps/drone-range.geojson run-wind --plan-drift 1.5 --table-drifts 1,2,3
       veerwise plan site.geojson run-ci --training-runs 4 --strict --json
+      veerwise plan site.geojson run-16 --settings yard.toml --headings 16
+      veerwise plan run-yard/site.geojson run-again --settings run-yard/manifest.json
     """
     from planner.grid import rasterise
     from planner.learn import LearnSettings
@@ -116,6 +120,11 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     check_out(run, force=force)
     loaded, spec = load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
                                       max_cells)
+    settings_file, settings_sha256, made_from = click.get_current_context().meta.get("settings_file",
+                                                                                (None, None, None))
+    if made_from is not None and made_from != loaded.sha256:
+        click.echo(f"veerwise: note: {site} is not the site file the run in {settings_file} was made from "
+                   "(its hash differs); the settings are taken all the same", err=True)
     dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m, loaded, spec)
     labelled = rasterise(loaded, spec)
     if episodes is None:
@@ -130,6 +139,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                             speed_mps=speed_mps,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
                             tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check,
+                            settings_file=settings_file, settings_sha256=settings_sha256,
                             grid_levels=grid_levels)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:
         try:
