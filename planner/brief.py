@@ -572,7 +572,7 @@ def _section_risk(content: dict, rows) -> list:
         "the boundary before it reaches the goal. Noise: share of moves made in a uniformly random direction "
         "instead of the planned one. Drift xN: every drift zone pushes N times as hard as drawn. Exact figures "
         "come from the absorbing Markov chain of each policy; Monte Carlo estimates (simulated runs, shown with "
-        "their Wilson 95% interval) check the computation.", small=True)]
+        "their Clopper-Pearson 95% interval) check the computation.", small=True)]
 
     def mark(row):
         return " !" if row.mc_disagrees else ""
@@ -774,7 +774,7 @@ def _assumptions(inputs: BriefInputs, eps: float) -> list[tuple[str, str]]:
                      + (f" (1/n^{learn.step_decay:g})" if learn.step_decay else "")
                      + f", gamma {learn.gamma:g}, starts '{learn.start_mode}', Q init '{learn.q_init}'"),
         ("Seed", f"root entropy {manifest['seeds']['entropy']}"),
-        ("Monte Carlo", f"{settings.rollouts:,} simulated runs per risk row; Wilson 95% intervals shown, "
+        ("Monte Carlo", f"{settings.rollouts:,} simulated runs per risk row; Clopper-Pearson 95% intervals shown, "
                         "checks against the exact figures with Clopper-Pearson intervals at the table's level"),
         # a fixed order: the manifest read back from disk has its keys sorted, the one in memory not
         ("Versions", ", ".join(f"{k} {manifest['versions'][k]}" for k in sorted(

@@ -8,9 +8,9 @@ the run with each event (:class:`Absorption`, :func:`risk_map`); :func:`evaluate
 turns the start cell's figures into a :class:`RiskRow`: P(goal), P(incident) by zone
 and ``boundary``, P(never absorbed), expected moves and metres given success, the
 same within a step budget, P(at least one entry) for zones that do not end the run,
-and a seeded Monte Carlo estimate beside each probability: shown with its Wilson 95%
-score interval, and checked against the exact figure with the Clopper-Pearson (exact
-binomial) interval at the table's level (:meth:`McEstimate.contains`).
+and a seeded Monte Carlo estimate beside each probability: shown with its
+Clopper-Pearson (exact binomial) 95% interval, and checked against the exact figure with
+the same interval at the table's level (:meth:`McEstimate.contains`).
 :func:`sensitivity` repeats that over noise levels and drift scales, and
 :func:`format_table` prints the result for people (text, markdown) and programs (csv,
 json). :func:`clearance_m` measures a route's clearance to the true hazard polygons.
@@ -73,17 +73,17 @@ FORMATS = ("text", "csv", "json", "markdown")
 
 @dataclass(frozen=True)
 class McEstimate:
-    """A Monte Carlo estimate of one probability with its Wilson 95% interval (for display).
+    """A Monte Carlo estimate of one probability with its Clopper-Pearson 95% interval.
 
     Whether an exact figure agrees with the estimate is decided by :meth:`contains`
-    with the Clopper-Pearson interval, not with ``lo`` and ``hi``.
+    with the same (exact binomial) interval, at the table-wide level of the flags.
 
     Attributes
     ----------
     count : rollouts where the event happened.
     n : rollouts made.
     estimate : ``count / n``.
-    lo, hi : Wilson score interval at 95% (``z = 1.959963984540054``).
+    lo, hi : Clopper-Pearson interval at 95% (``z = 1.959963984540054``).
     """
 
     count: int
@@ -96,8 +96,8 @@ class McEstimate:
         """Whether ``p`` is consistent with the count at the two-sided level of ``z``.
 
         Decided with the Clopper-Pearson (exact binomial) interval, which never covers
-        less than its level; the Wilson interval shown beside the figures can, at counts
-        of a few events, exclude a true value far more often than its level says.
+        less than its level (approximate intervals such as Wilson's can, at counts of a
+        few events, exclude a true value far more often than their level says).
         """
         lo, hi = exact_interval(self.count, self.n, z)
         return lo - INTERVAL_SLACK <= p <= hi + INTERVAL_SLACK
@@ -661,33 +661,11 @@ def exact_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
     return lo, hi
 
 
-def wilson_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
-    """Wilson score interval for a binomial proportion.
-
-    Wilson, E. B. (1927), "Probable inference, the law of succession, and statistical
-    inference", Journal of the American Statistical Association 22(158), 209-212.
-
-    Examples
-    --------
-    >>> lo, hi = wilson_interval(0, 100)
-    >>> f"{lo:.4f} {hi:.4f}"
-    '0.0000 0.0370'
-    """
-    if not (n > 0 and 0 <= count <= n):
-        raise SettingsError(f"Wilson interval needs 0 <= count <= n and n > 0, got {count} of {n}")
-    p = count / n
-    z2 = z * z
-    denom = 1.0 + z2 / n
-    centre = (p + z2 / (2 * n)) / denom
-    half = z / denom * math.sqrt(p * (1 - p) / n + z2 / (4 * n * n))
-    lo = 0.0 if count == 0 else max(0.0, centre - half)
-    hi = 1.0 if count == n else min(1.0, centre + half)
-    return lo, hi
-
-
 def mc_estimate(count: int, n: int) -> McEstimate:
-    """A :class:`McEstimate` from a count of ``n`` rollouts."""
-    lo, hi = wilson_interval(count, n)
+    """A :class:`McEstimate` from a count of ``n`` rollouts, with its Clopper-Pearson 95% interval."""
+    if not (n > 0 and 0 <= count <= n):
+        raise SettingsError(f"a Monte Carlo estimate needs 0 <= count <= n and n > 0, got {count} of {n}")
+    lo, hi = exact_interval(count, n, Z95)
     return McEstimate(count=int(count), n=int(n), estimate=count / n, lo=lo, hi=hi)
 
 
@@ -996,7 +974,7 @@ def _row_details(r: RiskRow) -> list[str]:
         parts = [f"{_short_key(k)} {notation.percent(m.estimate)} [{notation.percent(m.lo)}, "
                  f"{notation.percent(m.hi)}]" for k, m in r.mc.items()]
         trunc = f", {r.n_truncated} truncated" if r.n_truncated else ""
-        details.append(f"Monte Carlo ({r.n_rollouts:,} runs{trunc}, Wilson 95%): " + "; ".join(parts))
+        details.append(f"Monte Carlo ({r.n_rollouts:,} runs{trunc}, Clopper-Pearson 95%): " + "; ".join(parts))
     return details
 
 
@@ -1008,7 +986,7 @@ def _footnote(rows: list[RiskRow], width: int | None) -> list[str]:
     else:
         z = ", ".join(f"{v:.2f}" for v in levels)
         text = (f"! exact figure outside the Clopper-Pearson interval of its Monte Carlo count at z = {z}: the "
-                "level that keeps the whole table's checks at 95% together (the intervals shown are Wilson 95%).")
+                "level that keeps the whole table's checks at 95% together (the intervals shown are at 95% each).")
     return [text] if width is None else textwrap.wrap(text, width, subsequent_indent="  ")
 
 
@@ -1064,7 +1042,7 @@ def _union(dicts) -> list[str]:
 __all__ = [
     "DEFAULT_DRIFT_SCALES", "DEFAULT_NOISES", "Z95", "Absorption", "McEstimate", "RiskRow", "absorption",
     "clearance_m", "evaluate", "format_prob", "format_table", "incident_probability",
-    "mc_estimate", "risk_map", "sample_runs", "seed_incidents", "sensitivity", "wilson_interval",
+    "mc_estimate", "risk_map", "sample_runs", "seed_incidents", "sensitivity",
 ]
 
 

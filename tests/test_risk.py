@@ -20,18 +20,19 @@ from planner.grid import FREE, DriftInfo, GridSpec, HazardInfo, grid_from_arrays
 from planner.learn import greedy_actions
 from planner.model import EVENT_GOAL, EVENT_HAZARD, Dynamics, build_model, epsilon_greedy
 from planner.risk import (
+    Z95,
     McEstimate,
     RiskRow,
     absorption,
     clearance_m,
     evaluate,
+    exact_interval,
     format_prob,
     format_table,
     mc_estimate,
     risk_map,
     sample_runs,
     sensitivity,
-    wilson_interval,
 )
 from planner.site import site_from_geojson
 
@@ -290,20 +291,21 @@ def test_frozen_lake_optimal_goal_probability():
 # ----------------------------------------------------------------------------- Monte Carlo
 
 
-def test_wilson_interval_reference_values():
+def test_clopper_pearson_interval_reference_values():
     # Newcombe, R. G. (1998), "Two-sided confidence intervals for the single proportion:
-    # comparison of seven methods", Statistics in Medicine 17, 857-872, Table I, Wilson
-    # score method (values from memory, four decimals).
-    for (k, n), (lo, hi) in {(81, 263): (0.2553, 0.3662), (15, 148): (0.0624, 0.1605),
-                             (0, 20): (0.0, 0.1611), (1, 29): (0.0061, 0.1718)}.items():
-        assert_allclose(wilson_interval(k, n), (lo, hi), atol=5e-5)
-    # Defining property (Wilson, JASA 22(158), 1927): the bounds solve
-    # (k/n - p)^2 = z^2 p (1 - p) / n.
-    k, n, z = 37, 120, 1.959963984540054
-    for p in wilson_interval(k, n):
-        assert_allclose((k / n - p) ** 2, z * z * p * (1 - p) / n, rtol=1e-10)
-    with pytest.raises(SettingsError):
-        wilson_interval(5, 0)
+    # comparison of seven methods", Statistics in Medicine 17, 857-872, Table I, exact
+    # (Clopper-Pearson) method (values from memory, four decimals).
+    for (k, n), (lo, hi) in {(81, 263): (0.2527, 0.3676), (15, 148): (0.0578, 0.1617),
+                             (0, 20): (0.0, 0.1684), (1, 29): (0.0009, 0.1776)}.items():
+        assert_allclose(exact_interval(k, n, Z95), (lo, hi), atol=5e-5)
+    # Defining property (Clopper & Pearson, Biometrika 26(4), 1934), checked with scipy's
+    # binomial distribution: P(X >= k | lo) = P(X <= k | hi) = alpha / 2.
+    from scipy.stats import binom
+
+    k, n = 37, 120
+    lo, hi = exact_interval(k, n, Z95)
+    assert_allclose(binom.sf(k - 1, n, lo), 0.025, rtol=1e-8)
+    assert_allclose(binom.cdf(k, n, hi), 0.025, rtol=1e-8)
 
 
 def small_site_grid(site_dict):
@@ -533,8 +535,8 @@ def hand_row(**changes):
                 p_by_event={"boundary": 1.2e-4, "Pond": 0.02978}, expected_moves=41.25, expected_m=48.0,
                 residual=1e-14, budget=100, p_goal_within_budget=0.95, p_incident_within_budget=0.0299,
                 p_timeout=0.0201, p_entry={"Gravel": 0.33}, n_rollouts=1000,
-                mc={"goal": McEstimate(980, 1000, 0.98, *wilson_interval(980, 1000)),
-                    "incident": McEstimate(20, 1000, 0.02, *wilson_interval(20, 1000))},
+                mc={"goal": McEstimate(980, 1000, 0.98, *exact_interval(980, 1000, Z95)),
+                    "incident": McEstimate(20, 1000, 0.02, *exact_interval(20, 1000, Z95))},
                 mc_disagrees=("goal",))
     base.update(changes)
     return RiskRow(**base)
@@ -569,11 +571,14 @@ def test_format_table_text_csv_json_markdown():
 
 
 def test_flag_level_can_be_widened():
-    # Wilson's formula (JASA 22(158), 1927) worked by hand for 980 of 1000: [0.9693, 0.9870]
-    # at z = 1.96, and a lower bound of 0.9533 at z = 4.
+    # The interval shown is the one the flags use: Clopper-Pearson, 95% for display. For
+    # 980 of 1000 its bounds solve P(X >= 980 | lo) = P(X <= 980 | hi) = 0.025 (checked
+    # with scipy's binomial distribution); at z = 4 the lower bound falls to about 0.956.
+    from scipy.stats import binom
+
     est = mc_estimate(980, 1000)
-    assert_allclose((est.lo, est.hi), (0.9693, 0.9870), atol=5e-5)
-    assert_allclose(wilson_interval(980, 1000, 4.0)[0], 0.9533, atol=5e-5)
+    assert_allclose(binom.sf(979, 1000, est.lo), 0.025, rtol=1e-8)
+    assert_allclose(binom.cdf(980, 1000, est.hi), 0.025, rtol=1e-8)
     assert not est.contains(0.965)
     assert est.contains(0.965, z=4.0)
     text = format_table([hand_row(mc_flag_z=4.0)], "text")
@@ -581,7 +586,7 @@ def test_flag_level_can_be_widened():
 
 
 def test_flags_use_the_exact_binomial_interval_at_small_counts():
-    from planner.risk import Z95, exact_interval, table_flag_z
+    from planner.risk import table_flag_z
 
     # Clopper & Pearson (1934): with no event in n trials the upper bound solves
     # (1 - p)^n = alpha / 2, so p = 1 - (alpha / 2)^(1 / n) (closed form).
@@ -590,10 +595,13 @@ def test_flags_use_the_exact_binomial_interval_at_small_counts():
     assert_allclose(hi, 1.0 - 0.025 ** (1.0 / 20000), rtol=1e-9)
     # One event in 20,000 runs where the exact probability is 8.5e-7 happens in about
     # 1.7% of tables: no evidence against the exact figure at a table-wide 95% level,
-    # though Wilson's lower bound at the same z excludes it.
+    # though Wilson's score interval (Wilson, JASA 22(158), 1927; its lower bound written
+    # out here) at the same z excludes it.
     z = table_flag_z(400)
     assert mc_estimate(1, 20000).contains(8.5e-7, z)
-    assert wilson_interval(1, 20000, z)[0] > 8.5e-7
+    k, n = 1, 20000
+    centre, half = (k / n + z * z / (2 * n)), z * math.sqrt(k / n * (1 - k / n) / n + z * z / (4 * n * n))
+    assert (centre - half) / (1 + z * z / n) > 8.5e-7
 
 
 @pytest.mark.parametrize("name", ["ground-yard", "drone-range"])

@@ -45,7 +45,7 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
 
     Exact probabilities from the absorbing Markov chain of each policy executed with
     noise (greedy, or a uniformly random move with probability epsilon) under each
-    drift scale, with Monte Carlo estimates and their Wilson 95% intervals beside them;
+    drift scale, with Monte Carlo estimates and their Clopper-Pearson 95% intervals beside them;
     a '!' marks an exact figure outside the Clopper-Pearson interval of its Monte Carlo
     count, at the level that keeps the whole table's checks at 95% together. Text
     prints one line per row.
