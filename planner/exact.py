@@ -205,7 +205,7 @@ def _action_value(offsets, next_state, prob, reward, event, gamma, v, k):
     """One Bellman backup of the (state, action) block ``k``."""
     qa = 0.0
     for j in range(offsets[k], offsets[k + 1]):
-        if event[j] == 0:
+        if event[j] == EVENT_NONE:
             qa += prob[j] * (reward[j] + gamma * v[next_state[j]])
         else:
             qa += prob[j] * reward[j]
@@ -541,16 +541,16 @@ def check_tie_tolerance(model: Model, tie_m: float, setting: str = "tie_m") -> N
 
 @numba.njit(cache=True, inline="always")
 def _action_reach(offsets, next_state, prob, event, target, u, k):
-    """P(the run ends with a ``target`` event: 1 the goal, 2 an incident) after block ``k``.
+    """P(the run ends with a ``target`` event: ``EVENT_GOAL``, or ``EVENT_BOUNDARY`` for any incident) after block ``k``.
 
     Block ``k`` is taken once, given ``u`` from every next state.
     """
     r = 0.0
     for j in range(offsets[k], offsets[k + 1]):
         e = event[j]
-        if e == 0:
+        if e == EVENT_NONE:
             r += prob[j] * u[next_state[j]]
-        elif (e == 1) if target == 1 else (e >= 2):
+        elif (e == EVENT_GOAL) if target == EVENT_GOAL else (e >= EVENT_BOUNDARY):
             r += prob[j]
     return r
 

@@ -25,10 +25,18 @@ from planner.errors import SettingsError
 from planner.grid import FREE, OUTSIDE, Grid, cost_to_goal, estimate_model_bytes
 from planner.motion import Dynamics, landing_tables, move_lengths_m
 
-EVENT_NONE = 0
-EVENT_GOAL = 1
-EVENT_BOUNDARY = 2
-EVENT_HAZARD = 3
+# The event codes are defined once, beside the kernels that write them.
+from planner.outcomes import (
+    EVENT_BOUNDARY,
+    EVENT_GOAL,
+    EVENT_HAZARD,
+    EVENT_NONE,
+    Cells,
+    Moves,
+    count_outcomes,
+    fill_outcomes,
+    scratch_for,
+)
 
 #: Probabilities of each (state, action) must sum to 1 within this.
 PROB_TOLERANCE = 1e-9
@@ -141,15 +149,12 @@ def estimate_bytes(grid: Grid, dynamics: Dynamics) -> int:
     return estimate_model_bytes(int(active.sum()), dynamics.n_actions, mean_outcomes) + 8 * grid.n_cells * 8
 
 
-def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
-    """Build the outcome table of the grid MDP.
+def kernel_inputs(grid: Grid, dynamics: Dynamics):
+    """The grid and the vehicle packed as the outcome kernels read them.
 
-    Every (state, action) of an active state gets the merged list of outcomes of:
-    executed heading (intended with ``1 - slip - stall``, each neighbour with
-    ``slip / 2``, a stall with ``stall``) times the landing distribution of that
-    heading in the start cell's drift class (``planner.motion.landing_tables``); the
-    swept path from the start centre to the landing centre is traversed cell by cell
-    (supercover) and the first goal, ending hazard or boundary crossing decides.
+    Returns ``(cells, moves, move_m, penalties, boundary_penalty, notes)``: the
+    :class:`planner.outcomes.Cells` and :class:`planner.outcomes.Moves` records, each
+    action's commanded length, the resolved penalties and the notes about them.
     """
     tables = landing_tables(grid, dynamics)
     n_headings = dynamics.n_actions
@@ -166,17 +171,38 @@ def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
     active = grid.passable().ravel() & ~goal
     move_m = move_lengths_m(n_headings, tables.move_m)
     step_m = move_m if dynamics.step_cost == "length" else np.full(n_headings, tables.move_m)
-    slip_half = dynamics.slip / 2.0
-    args = (
-        n_rows, n_cols, label, goal, active, grid.cost_factor.ravel().astype(np.float64),
-        ends, penalties_k.astype(np.float64), float(boundary_penalty), n_headings, step_m.astype(np.float64),
-        1.0 - dynamics.slip - dynamics.stall, slip_half, dynamics.stall, dynamics.edge == "wall",
-        grid.drift_class.ravel().astype(np.int64), tables.ptr, tables.d_row, tables.d_col, tables.prob, OUTSIDE,
+    cells = Cells(
+        n_rows=n_rows, n_cols=n_cols, label=label, goal=goal, active=active,
+        cost_factor=grid.cost_factor.ravel().astype(np.float64), drift_class=grid.drift_class.ravel().astype(np.int64),
+        ends=ends, penalty=penalties_k.astype(np.float64), boundary_penalty=float(boundary_penalty),
+        wall=dynamics.edge == "wall", outside=OUTSIDE,
     )
-    counts = _count_outcomes(*args)
+    moves = Moves(
+        n_headings=n_headings, step_m=step_m.astype(np.float64), p_main=1.0 - dynamics.slip - dynamics.stall,
+        p_side=dynamics.slip / 2.0, p_stall=float(dynamics.stall), ptr=tables.ptr, d_row=tables.d_row,
+        d_col=tables.d_col, d_prob=tables.prob,
+    )
+    return cells, moves, move_m, penalties, boundary_penalty, notes
+
+
+def build_model(grid: Grid, dynamics: Dynamics = Dynamics()) -> Model:
+    """Build the outcome table of the grid MDP.
+
+    Every (state, action) of an active state gets the merged list of outcomes of:
+    executed heading (intended with ``1 - slip - stall``, each neighbour with
+    ``slip / 2``, a stall with ``stall``) times the landing distribution of that
+    heading in the start cell's drift class (``planner.motion.landing_tables``); the
+    swept path from the start centre to the landing centre is traversed cell by cell
+    (supercover) and the first goal, ending hazard or boundary crossing decides.
+    """
+    cells, moves, move_m, penalties, boundary_penalty, notes = kernel_inputs(grid, dynamics)
+    n_headings = moves.n_headings
+    active, goal = cells.active, cells.goal
+    work = scratch_for(moves)
+    counts = count_outcomes(cells, moves, work)
     offsets = np.zeros(counts.size + 1, dtype=np.int64)
     np.cumsum(counts, out=offsets[1:])
-    next_state, prob, reward, event, crossed = _fill_outcomes(offsets, *args)
+    next_state, prob, reward, event, crossed = fill_outcomes(cells, moves, work, offsets)
     sums = np.add.reduceat(prob, offsets[:-1][counts > 0]) if prob.size else np.zeros(0)
     if sums.size and np.max(np.abs(sums - 1.0)) > PROB_TOLERANCE:
         raise ArithmeticError(f"outcome probabilities sum to {sums.min()}..{sums.max()}, not 1 (a bug)")
@@ -521,205 +547,6 @@ def _factorised(transient, mask: np.ndarray, idx: np.ndarray):
 
     _LAST_FACTOR["entry"] = (weakref.ref(transient, forget), digest, system, lu)
     return system, lu
-
-
-# ----------------------------------------------------------------------------- kernels
-
-
-@numba.njit(cache=True)
-def _trace(r0, c0, dr, dc, n_rows, n_cols, label, goal, ends, wall, outside, path_r, path_c):
-    """Supercover traversal from cell (r0, c0) to (r0 + dr, c0 + dc).
-
-    Writes the cells entered, in order, into ``path_r``/``path_c`` (the start cell
-    excluded; both side cells when the segment passes exactly through a corner) and
-    returns how many. Cells off the grid are written as they are (callers check).
-    """
-    n = 0
-    nx, ny = abs(dc), abs(dr)
-    sx = 1 if dc > 0 else -1
-    sy = 1 if dr > 0 else -1
-    x, y = c0, r0
-    ix, iy = 0, 0
-    while ix < nx or iy < ny:
-        decision = (1 + 2 * ix) * ny - (1 + 2 * iy) * nx
-        if decision == 0:
-            path_r[n] = y
-            path_c[n] = x + sx
-            n += 1
-            path_r[n] = y + sy
-            path_c[n] = x
-            n += 1
-            x += sx
-            y += sy
-            ix += 1
-            iy += 1
-        elif decision < 0:
-            x += sx
-            ix += 1
-        else:
-            y += sy
-            iy += 1
-        path_r[n] = y
-        path_c[n] = x
-        n += 1
-    return n
-
-
-@numba.njit(cache=True)
-def _outcome(s, dr, dc, n_rows, n_cols, label, goal, ends, wall, outside, path_r, path_c):
-    """Where a move from state ``s`` displaced by (dr, dc) cells ends.
-
-    Returns (next_state, event, crossed mask, ending hazard or -1).
-    """
-    r0 = s // n_cols
-    c0 = s - r0 * n_cols
-    r1 = r0 + dr
-    c1 = c0 + dc
-    if wall:
-        r1 = min(max(r1, 0), n_rows - 1)
-        c1 = min(max(c1, 0), n_cols - 1)
-        if label[r1 * n_cols + c1] == outside:
-            return s, 0, np.int64(0), -1
-    if r1 == r0 and c1 == c0:
-        return s, 0, np.int64(0), -1
-    n = _trace(r0, c0, r1 - r0, c1 - c0, n_rows, n_cols, label, goal, ends, wall, outside, path_r, path_c)
-    crossed = np.int64(0)
-    for i in range(n):
-        r = path_r[i]
-        c = path_c[i]
-        if r < 0 or r >= n_rows or c < 0 or c >= n_cols:
-            if wall:
-                return s, 0, np.int64(0), -1
-            return -1, 2, crossed, -1
-        cell = r * n_cols + c
-        lab = label[cell]
-        if lab == outside:
-            if wall:
-                return s, 0, np.int64(0), -1
-            return -1, 2, crossed, -1
-        if goal[cell]:
-            return cell, 1, crossed, -1
-        if lab >= 0:
-            if ends[lab]:
-                return cell, 3 + lab, crossed, lab
-            crossed |= np.int64(1) << lab
-    return r1 * n_cols + c1, 0, crossed, -1
-
-
-@numba.njit(cache=True)
-def _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-           n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
-           d_prob, outside, path_r, path_c, out_next, out_prob, out_reward, out_event, out_crossed):
-    """Merged outcomes of (s, a) into the ``out_*`` scratch arrays; returns the count.
-
-    The landing table of drift class ``c`` and executed heading ``k`` (``k = n_a``: a
-    stall) is entry block ``c * (n_a + 1) + k`` of ``d_ptr``.
-    """
-    k = 0
-    base_block = drift_class[s] * (n_a + 1)
-    base = -step_m[a] * cost_factor[s]
-    for j in range(4):
-        if j == 0:
-            p_dir, heading = p_main, a
-        elif j == 1:
-            p_dir, heading = p_side, (a + 1) % n_a
-        elif j == 2:
-            p_dir, heading = p_side, (a - 1) % n_a
-        else:
-            p_dir, heading = p_stall, n_a
-        if p_dir <= 0.0:
-            continue
-        block = base_block + heading
-        for q in range(d_ptr[block], d_ptr[block + 1]):
-            p = p_dir * d_prob[q]
-            if p <= 0.0:
-                continue
-            nxt, ev, crossed, haz = _outcome(s, d_row[q], d_col[q], n_rows, n_cols, label, goal,
-                                             ends, wall, outside, path_r, path_c)
-            found = -1
-            for i in range(k):
-                if out_next[i] == nxt and out_event[i] == ev and out_crossed[i] == crossed:
-                    found = i
-                    break
-            if found >= 0:
-                out_prob[found] += p
-                continue
-            reward = base
-            for h in range(penalty.size):
-                if (crossed >> h) & 1:
-                    reward -= penalty[h]
-            if ev == 2:
-                reward -= boundary_penalty
-            elif ev >= 3:
-                reward -= penalty[haz]
-            out_next[k] = nxt
-            out_prob[k] = p
-            out_reward[k] = reward
-            out_event[k] = ev
-            out_crossed[k] = crossed
-            k += 1
-    return k
-
-
-@numba.njit(cache=True)
-def _scratch(d_ptr, d_row, d_col):
-    span = 4
-    for q in range(d_row.size):
-        span = max(span, abs(d_row[q]) + abs(d_col[q]) + 4)
-    widest = 1
-    for b in range(d_ptr.size - 1):
-        widest = max(widest, d_ptr[b + 1] - d_ptr[b])
-    max_out = 4 * widest
-    return (np.empty(2 * span + 4, np.int64), np.empty(2 * span + 4, np.int64), np.empty(max_out, np.int64),
-            np.empty(max_out, np.float64), np.empty(max_out, np.float64), np.empty(max_out, np.int64),
-            np.empty(max_out, np.int64))
-
-
-@numba.njit(cache=True)
-def _count_outcomes(n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-                    n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
-                    d_col, d_prob, outside):
-    n_s = n_rows * n_cols
-    counts = np.zeros(n_s * n_a, np.int64)
-    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_ptr, d_row, d_col)
-    for s in range(n_s):
-        if not active[s]:
-            continue
-        for a in range(n_a):
-            counts[s * n_a + a] = _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty,
-                                         boundary_penalty, n_a, step_m, p_main, p_side, p_stall,
-                                         wall, drift_class, d_ptr, d_row, d_col, d_prob, outside, path_r,
-                                         path_c, o_next, o_prob, o_reward, o_event, o_crossed)
-    return counts
-
-
-@numba.njit(cache=True)
-def _fill_outcomes(offsets, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-                   n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row, d_col,
-                   d_prob, outside):
-    n_s = n_rows * n_cols
-    total = offsets[-1]
-    next_state = np.empty(total, np.int32)
-    prob = np.empty(total, np.float64)
-    reward = np.empty(total, np.float64)
-    event = np.empty(total, np.int16)
-    crossed = np.empty(total, np.int64)
-    path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed = _scratch(d_ptr, d_row, d_col)
-    for s in range(n_s):
-        if not active[s]:
-            continue
-        for a in range(n_a):
-            k = _block(s, a, n_rows, n_cols, label, goal, active, cost_factor, ends, penalty, boundary_penalty,
-                       n_a, step_m, p_main, p_side, p_stall, wall, drift_class, d_ptr, d_row,
-                       d_col, d_prob, outside, path_r, path_c, o_next, o_prob, o_reward, o_event, o_crossed)
-            lo = offsets[s * n_a + a]
-            for i in range(k):
-                next_state[lo + i] = o_next[i]
-                prob[lo + i] = o_prob[i]
-                reward[lo + i] = o_reward[i]
-                event[lo + i] = o_event[i]
-                crossed[lo + i] = o_crossed[i]
-    return next_state, prob, reward, event, crossed
 
 
 __all__ = [

@@ -48,6 +48,7 @@ from planner.model import (
     reaches_absorption,
     solve_transient,
 )
+from planner.outcomes import END_NEVER, END_TRUNCATED
 
 #: Normal quantile of a two-sided 95% interval.
 Z95 = 1.959963984540054
@@ -712,10 +713,10 @@ def _rollout_kernel(rng, start, cum, offsets, next_state, prob, event, crossed, 
         s = start
         steps = 0
         mask = np.int64(0)
-        end = -1
+        end = END_TRUNCATED
         while True:
             if trapped[s]:
-                end = 0
+                end = END_NEVER
                 break
             if steps >= max_steps:
                 break
@@ -738,7 +739,7 @@ def _rollout_kernel(rng, start, cum, offsets, next_state, prob, event, crossed, 
                     break
             steps += 1
             ev = event[o]
-            if ev != 0:
+            if ev != EVENT_NONE:
                 end = ev
                 break
             mask |= crossed[o]
@@ -756,7 +757,7 @@ def _with_monte_carlo(row: RiskRow, model: Model, action_probs, reaches, ends, n
     mc = {
         "goal": mc_estimate(int(np.sum(end == EVENT_GOAL)), n),
         "incident": mc_estimate(int(np.sum(end >= EVENT_BOUNDARY)), n),
-        "never": mc_estimate(int(np.sum(end == 0)), n),
+        "never": mc_estimate(int(np.sum(end == END_NEVER)), n),
     }
     for code in [EVENT_BOUNDARY] + [EVENT_HAZARD + h for h in np.flatnonzero(ends)]:
         mc[f"event:{names[code]}"] = mc_estimate(int(np.sum(end == code)), n)
@@ -769,7 +770,7 @@ def _with_monte_carlo(row: RiskRow, model: Model, action_probs, reaches, ends, n
         mc["timeout"] = mc_estimate(int(np.sum(~((end > 0) & in_time))), n)
     exact = row.exact()
     disagrees = tuple(k for k, est in mc.items() if not est.contains(exact[k], flag_z))
-    return replace(row, n_rollouts=n, n_truncated=int(np.sum(end == -1)), mc=mc, mc_disagrees=disagrees,
+    return replace(row, n_rollouts=n, n_truncated=int(np.sum(end == END_TRUNCATED)), mc=mc, mc_disagrees=disagrees,
                    mc_flag_z=flag_z)
 
 
