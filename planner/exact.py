@@ -157,17 +157,14 @@ def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int
         v[finite] = -start_cost[finite]
     v[model.active & ~escapes] = -np.inf
     orders = _sweep_orders(model, model.active & escapes)
-    iterations, residual = _value_iteration(
-        model.offsets, model.next_state, model.prob, model.reward, model.event, n_a, float(gamma), epsilon,
-        float(tol), int(max_iter), orders, v,
-    )
+    iterations, residual = _value_iteration(model.table(), n_a, float(gamma), epsilon, float(tol), int(max_iter),
+                                            orders, v)
     if not residual <= tol:
         raise SolverError(
             f"value iteration (epsilon {epsilon:g}) did not converge in {max_iter} sweeps: residual {residual:.3e} "
             f"> tol {tol:.0e}"
         )
-    q = _q_from_v(model.offsets, model.next_state, model.prob, model.reward, model.event, n_a, float(gamma), v,
-                  model.active).reshape(n_s, n_a)
+    q = _q_from_v(model.table(), n_a, float(gamma), v, model.active).reshape(n_s, n_a)
     return ExactSolution(q=q, v=v, epsilon=epsilon, gamma=float(gamma), iterations=int(iterations),
                          residual=float(residual), converged=True)
 
@@ -201,23 +198,23 @@ def _can_end(model: Model) -> np.ndarray:
 
 
 @numba.njit(cache=True, inline="always")
-def _action_value(offsets, next_state, prob, reward, event, gamma, v, k):
+def _action_value(t, gamma, v, k):
     """One Bellman backup of the (state, action) block ``k``."""
     qa = 0.0
-    for j in range(offsets[k], offsets[k + 1]):
-        if event[j] == EVENT_NONE:
-            qa += prob[j] * (reward[j] + gamma * v[next_state[j]])
+    for j in range(t.offsets[k], t.offsets[k + 1]):
+        if t.event[j] == EVENT_NONE:
+            qa += t.prob[j] * (t.reward[j] + gamma * v[t.next_state[j]])
         else:
-            qa += prob[j] * reward[j]
+            qa += t.prob[j] * t.reward[j]
     return qa
 
 
 @numba.njit(cache=True)
-def _state_value(offsets, next_state, prob, reward, event, n_actions, gamma, epsilon, v, s):
+def _state_value(t, n_actions, gamma, epsilon, v, s):
     best = -np.inf
     total = 0.0
     for a in range(n_actions):
-        qa = _action_value(offsets, next_state, prob, reward, event, gamma, v, s * n_actions + a)
+        qa = _action_value(t, gamma, v, s * n_actions + a)
         if qa > best:
             best = qa
         total += qa
@@ -225,7 +222,7 @@ def _state_value(offsets, next_state, prob, reward, event, n_actions, gamma, eps
 
 
 @numba.njit(cache=True)
-def _value_iteration(offsets, next_state, prob, reward, event, n_actions, gamma, epsilon, tol, max_iter, orders, v):
+def _value_iteration(t, n_actions, gamma, epsilon, tol, max_iter, orders, v):
     """Value iteration in place; returns (sweeps, residual).
 
     Sweeps until one sweep changes no value by more than ``tol`` and a synchronous
@@ -240,7 +237,7 @@ def _value_iteration(offsets, next_state, prob, reward, event, n_actions, gamma,
         change = 0.0
         for i in range(order.size):
             s = order[i]
-            new = _state_value(offsets, next_state, prob, reward, event, n_actions, gamma, epsilon, v, s)
+            new = _state_value(t, n_actions, gamma, epsilon, v, s)
             old = v[s]
             v[s] = new
             if new != old:
@@ -252,7 +249,7 @@ def _value_iteration(offsets, next_state, prob, reward, event, n_actions, gamma,
             residual = 0.0
             for i in range(order.size):
                 s = order[i]
-                fresh[s] = _state_value(offsets, next_state, prob, reward, event, n_actions, gamma, epsilon, v, s)
+                fresh[s] = _state_value(t, n_actions, gamma, epsilon, v, s)
             for i in range(order.size):
                 s = order[i]
                 if fresh[s] != v[s]:
@@ -267,7 +264,7 @@ def _value_iteration(offsets, next_state, prob, reward, event, n_actions, gamma,
 
 
 @numba.njit(cache=True)
-def _q_from_v(offsets, next_state, prob, reward, event, n_actions, gamma, v, active):
+def _q_from_v(t, n_actions, gamma, v, active):
     n_s = active.size
     q = np.zeros(n_s * n_actions, np.float64)
     for s in range(n_s):
@@ -275,7 +272,7 @@ def _q_from_v(offsets, next_state, prob, reward, event, n_actions, gamma, v, act
             continue
         for a in range(n_actions):
             k = s * n_actions + a
-            q[k] = _action_value(offsets, next_state, prob, reward, event, gamma, v, k)
+            q[k] = _action_value(t, gamma, v, k)
     return q
 
 
@@ -485,17 +482,15 @@ def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np
     rounds = 0
     # Safest: the most likely to reach the goal (so a loop that never ends counts as a
     # failure, not as safety); riskiest: the most likely to end in an incident.
-    # Safest: the most likely to reach the goal (so a loop that never ends counts as a
-    # failure, not as safety); riskiest: the most likely to end in an incident.
     targets = (EVENT_GOAL, EVENT_BOUNDARY) if riskiest else (EVENT_GOAL,)
     picks = []
     for target in targets:
         u = np.zeros(n_s)
         # The sweeps only need to get close: policy improvement on exact solves finishes
         # the job (and copes with near-closed loops, where sweeps crawl).
-        _reach_iteration(model.offsets, model.next_state, model.prob, model.event, target, n_a, float(epsilon),
+        _reach_iteration(model.table(), target, n_a, float(epsilon),
                          flat, -1.0, float(tol), int(max_iter), orders, u)
-        greedy = _pick(model.offsets, model.next_state, model.prob, model.event, target, n_a, flat, -1.0, u,
+        greedy = _pick(model.table(), target, n_a, flat, -1.0, u,
                        rank, active, np.full(n_s, -1, np.int64))
         best, best_value, seen = None, -np.inf, set()
         for _ in range(MAX_IMPROVEMENTS):
@@ -508,7 +503,7 @@ def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np
             if u[model.start] > best_value:
                 best, best_value = (greedy, chain), float(u[model.start])
             seen.add(greedy.tobytes())
-            greedy = _pick(model.offsets, model.next_state, model.prob, model.event, target, n_a, flat, -1.0, u,
+            greedy = _pick(model.table(), target, n_a, flat, -1.0, u,
                            rank, active, greedy)
             if greedy.tobytes() in seen:
                 break
@@ -540,28 +535,28 @@ def check_tie_tolerance(model: Model, tie_m: float, setting: str = "tie_m") -> N
 
 
 @numba.njit(cache=True, inline="always")
-def _action_reach(offsets, next_state, prob, event, target, u, k):
+def _action_reach(t, target, u, k):
     """P(the run ends with a ``target`` event: ``EVENT_GOAL``, or ``EVENT_BOUNDARY`` for any incident) after block ``k``.
 
     Block ``k`` is taken once, given ``u`` from every next state.
     """
     r = 0.0
-    for j in range(offsets[k], offsets[k + 1]):
-        e = event[j]
+    for j in range(t.offsets[k], t.offsets[k + 1]):
+        e = t.event[j]
         if e == EVENT_NONE:
-            r += prob[j] * u[next_state[j]]
+            r += t.prob[j] * u[t.next_state[j]]
         elif (e == EVENT_GOAL) if target == EVENT_GOAL else (e >= EVENT_BOUNDARY):
-            r += prob[j]
+            r += t.prob[j]
     return r
 
 
 @numba.njit(cache=True)
-def _state_reach(offsets, next_state, prob, event, target, n_actions, epsilon, allowed, sense, u, s):
+def _state_reach(t, target, n_actions, epsilon, allowed, sense, u, s):
     best = np.inf if sense > 0 else -np.inf
     total = 0.0
     for a in range(n_actions):
         k = s * n_actions + a
-        r = _action_reach(offsets, next_state, prob, event, target, u, k)
+        r = _action_reach(t, target, u, k)
         total += r
         if allowed[k]:
             if sense > 0:
@@ -572,7 +567,7 @@ def _state_reach(offsets, next_state, prob, event, target, n_actions, epsilon, a
 
 
 @numba.njit(cache=True)
-def _reach_iteration(offsets, next_state, prob, event, target, n_actions, epsilon, allowed, sense, tol, max_iter,
+def _reach_iteration(t, target, n_actions, epsilon, allowed, sense, tol, max_iter,
                      orders, u):
     """In-place sweeps of the restricted reachability problem; returns (sweeps, last change)."""
     n_orders = orders.shape[0]
@@ -583,7 +578,7 @@ def _reach_iteration(offsets, next_state, prob, event, target, n_actions, epsilo
         change = 0.0
         for i in range(order.size):
             s = order[i]
-            new = _state_reach(offsets, next_state, prob, event, target, n_actions, epsilon, allowed, sense, u, s)
+            new = _state_reach(t, target, n_actions, epsilon, allowed, sense, u, s)
             d = abs(new - u[s])
             if d > change:
                 change = d
@@ -595,7 +590,7 @@ def _reach_iteration(offsets, next_state, prob, event, target, n_actions, epsilo
 
 
 @numba.njit(cache=True)
-def _pick(offsets, next_state, prob, event, target, n_actions, allowed, sense, u, rank, active, current):
+def _pick(t, target, n_actions, allowed, sense, u, rank, active, current):
     """Per state, the allowed action of least (``sense`` 1) or greatest (-1) ``R(s, a)``.
 
     Among equal ones the one of highest ``rank`` (value), then the first. Where
@@ -611,7 +606,7 @@ def _pick(offsets, next_state, prob, event, target, n_actions, allowed, sense, u
         best = np.inf if sense > 0 else -np.inf
         for a in range(n_actions):
             k = s * n_actions + a
-            r[a] = _action_reach(offsets, next_state, prob, event, target, u, k)
+            r[a] = _action_reach(t, target, u, k)
             if allowed[k]:
                 if sense > 0:
                     best = min(best, r[a])

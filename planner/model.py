@@ -33,6 +33,7 @@ from planner.outcomes import (
     EVENT_NONE,
     Cells,
     Moves,
+    Table,
     count_outcomes,
     fill_outcomes,
     scratch_for,
@@ -103,6 +104,10 @@ class Model:
             "next_state": self.next_state[lo:hi], "prob": self.prob[lo:hi], "reward": self.reward[lo:hi],
             "event": self.event[lo:hi], "crossed": self.crossed[lo:hi],
         }
+
+    def table(self) -> Table:
+        """The outcome arrays as one record, the form the numba kernels take."""
+        return Table(self.offsets, self.next_state, self.prob, self.reward, self.event, self.crossed)
 
 
 def default_penalty_m(grid: Grid, n_actions: int = 8) -> float:

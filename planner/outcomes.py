@@ -44,6 +44,8 @@ Cells = namedtuple("Cells", "n_rows n_cols label goal active cost_factor drift_c
 #: ``d_prob`` for block ``b = drift_class * (n_headings + 1) + executed heading``
 #: (heading ``n_headings``: a stall).
 Moves = namedtuple("Moves", "n_headings step_m p_main p_side p_stall ptr d_row d_col d_prob")
+#: The outcome table as the solvers' and samplers' kernels read it (see ``planner.model.Model``).
+Table = namedtuple("Table", "offsets next_state prob reward event crossed")
 #: Work arrays of one kernel call: the swept path and one (state, action)'s outcomes.
 Scratch = namedtuple("Scratch", "path_r path_c next prob reward event crossed")
 

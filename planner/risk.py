@@ -700,14 +700,14 @@ def sample_runs(model: Model, action_probs: np.ndarray, n: int, rng: np.random.G
     end = np.empty(n, dtype=np.int16)
     steps = np.empty(n, dtype=np.int64)
     crossed = np.empty(n, dtype=np.int64)
-    _rollout_kernel(rng, int(model.start), cum, model.offsets, model.next_state, model.prob, model.event,
-                    model.crossed, np.ascontiguousarray(trapped, dtype=np.bool_), int(max_steps), end, steps, crossed)
+    _rollout_kernel(rng, int(model.start), cum, model.table(), np.ascontiguousarray(trapped, dtype=np.bool_),
+                    int(max_steps), end, steps, crossed)
     return end, steps, crossed
 
 
 @numba.njit(cache=True)
-def _rollout_kernel(rng, start, cum, offsets, next_state, prob, event, crossed, trapped, max_steps,
-                    out_end, out_steps, out_crossed):
+def _rollout_kernel(rng, start, cum, t, trapped, max_steps, out_end, out_steps, out_crossed):
+    """Sample ``out_end.size`` runs from ``start`` on table ``t`` with cumulative action probabilities ``cum``."""
     n_a = cum.shape[1]
     for i in range(out_end.size):
         s = start
@@ -727,23 +727,23 @@ def _rollout_kernel(rng, start, cum, offsets, next_state, prob, event, crossed, 
                     a = j
                     break
             k = s * n_a + a
-            lo = offsets[k]
-            hi = offsets[k + 1]
+            lo = t.offsets[k]
+            hi = t.offsets[k + 1]
             u = rng.random()
             acc = 0.0
             o = hi - 1
             for j in range(lo, hi):
-                acc += prob[j]
+                acc += t.prob[j]
                 if u < acc:
                     o = j
                     break
             steps += 1
-            ev = event[o]
+            ev = t.event[o]
             if ev != EVENT_NONE:
                 end = ev
                 break
-            mask |= crossed[o]
-            s = next_state[o]
+            mask |= t.crossed[o]
+            s = t.next_state[o]
         out_end[i] = end
         out_steps[i] = steps
         out_crossed[i] = mask
