@@ -39,10 +39,11 @@ sys.path.insert(0, str(REPO))
 
 from planner.exact import on_policy_q, optimal_q  # noqa: E402
 from planner.grid import GridSpec, default_cell_m, rasterise  # noqa: E402
+from planner.gridcheck import carry_policy, richardson
 from planner.learn import greedy_actions  # noqa: E402
 from planner.model import build_model, estimate_bytes  # noqa: E402
 from planner.motion import Dynamics  # noqa: E402
-from planner.risk import carry_policy, evaluate, format_prob, richardson  # noqa: E402
+from planner.risk import evaluate, format_prob  # noqa: E402
 from planner.site import load_site  # noqa: E402
 
 DEMO_SITES = ("maps/ground-yard.geojson", "maps/drone-range.geojson")

@@ -29,7 +29,8 @@ from pathlib import Path
 
 from planner import notation, style
 from planner.errors import RunFolderError
-from planner.risk import find_row, format_prob, three_level_words
+from planner.risk import find_row, format_prob
+from planner.risk_table import three_level_words
 
 #: The two policies, in the order the briefing shows them.
 POLICIES = tuple(style.POLICY)

@@ -13,7 +13,7 @@ Clopper-Pearson (exact binomial) 95% interval, and checked against the exact fig
 the same interval at the table's level (:meth:`McEstimate.contains`).
 :func:`sensitivity` repeats that over noise levels and drift scales, and
 :func:`format_table` prints the result for people (text, markdown) and programs (csv,
-json). :func:`clearance_m` measures a route's clearance to the true hazard polygons.
+json).
 
 States from which the policy can never end the run ("trapped") are found by graph
 reachability and reported as ``p_never``, never as a solver error or a silent zero.
@@ -21,15 +21,10 @@ reachability and reported as ``p_never``, never as a solver error or a silent ze
 
 from __future__ import annotations
 
-import csv
-import io
-import json
 import math
-import textwrap
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 
-import numba
 import numpy as np
 
 from planner import notation
@@ -48,21 +43,25 @@ from planner.model import (
     reaches_absorption,
     solve_transient,
 )
-from planner.outcomes import END_NEVER, END_TRUNCATED
+from planner.montecarlo import (
+    DEFAULT_MAX_ROLLOUT_STEPS,
+    END_NEVER,
+    END_TRUNCATED,
+    Z95,
+    McEstimate,
+    exact_interval,
+    mc_estimate,
+    sample_runs,
+    table_flag_z,
+)
 
-#: Normal quantile of a two-sided 95% interval.
-Z95 = 1.959963984540054
 #: Default noise levels and drift scales of the sensitivity table.
 DEFAULT_NOISES = (0.0, 0.05, 0.1, 0.2)
 DEFAULT_DRIFT_SCALES = (1.0, 1.5, 2.0)
-#: Default cap on the moves of one Monte Carlo rollout.
-DEFAULT_MAX_ROLLOUT_STEPS = 100_000
 #: Relative residual every linear solve must meet.
 SOLVE_TOLERANCE = 1e-8
 #: The probabilities of the ways a run can end must sum to 1 within this.
 SUM_TOLERANCE = 1e-8
-#: Slack when comparing an exact figure with its Monte Carlo interval (round-off only).
-INTERVAL_SLACK = 1e-12
 #: Probabilities below this print as "< 1 in 10^12": the solves are not that accurate.
 PRINT_FLOOR = notation.FLOOR
 #: Output formats of :func:`format_table`.
@@ -70,38 +69,6 @@ FORMATS = ("text", "csv", "json", "markdown")
 
 
 # ----------------------------------------------------------------------------- results
-
-
-@dataclass(frozen=True)
-class McEstimate:
-    """A Monte Carlo estimate of one probability with its Clopper-Pearson 95% interval.
-
-    Whether an exact figure agrees with the estimate is decided by :meth:`contains`
-    with the same (exact binomial) interval, at the table-wide level of the flags.
-
-    Attributes
-    ----------
-    count : rollouts where the event happened.
-    n : rollouts made.
-    estimate : ``count / n``.
-    lo, hi : Clopper-Pearson interval at 95% (``z = 1.959963984540054``).
-    """
-
-    count: int
-    n: int
-    estimate: float
-    lo: float
-    hi: float
-
-    def contains(self, p: float, z: float = Z95) -> bool:
-        """Whether ``p`` is consistent with the count at the two-sided level of ``z``.
-
-        Decided with the Clopper-Pearson (exact binomial) interval, which never covers
-        less than its level (approximate intervals such as Wilson's can, at counts of a
-        few events, exclude a true value far more often than their level says).
-        """
-        lo, hi = exact_interval(self.count, self.n, z)
-        return lo - INTERVAL_SLACK <= p <= hi + INTERVAL_SLACK
 
 
 @dataclass(frozen=True)
@@ -217,7 +184,7 @@ class RiskRow:
                 verdict=str(data.get("verdict", "")),
                 p_incident_range=None if data.get("p_incident_range") is None
                 else (num(data["p_incident_range"][0]), num(data["p_incident_range"][1])),
-                grid_check=GridCheck.from_dict(data["grid_check"]).as_dict() if data.get("grid_check") else None,
+                grid_check=_grid_check_record(data.get("grid_check")),
             )
         except (KeyError, TypeError, ValueError, AttributeError) as err:
             raise SettingsError(f"a risk table row is malformed ({err!r})") from err
@@ -243,6 +210,15 @@ class RiskRow:
             else [_plain(self.p_incident_range[0]), _plain(self.p_incident_range[1])],
             "grid_check": self.grid_check,
         }
+
+
+def _grid_check_record(data):
+    """A row's grid-check record, validated (``planner.gridcheck.GridCheck``), or None."""
+    if not data:
+        return None
+    from planner.gridcheck import GridCheck
+
+    return GridCheck.from_dict(data).as_dict()
 
 
 @dataclass(frozen=True)
@@ -633,122 +609,6 @@ def find_row(rows: Iterable[RiskRow], policy: str, noise: float, drift_scale: fl
     return None
 
 
-def table_flag_z(n_checks: int, level: float = 0.95) -> float:
-    """Normal quantile that keeps a whole table's checks at ``level`` together (Bonferroni).
-
-    With ``n_checks`` independent 95% intervals, about one in twenty misses by chance;
-    flagging at ``z = Phi^-1(1 - (1 - level) / (2 n_checks))`` keeps the chance of any
-    false flag in the table below ``1 - level``.
-    """
-    from scipy.stats import norm
-
-    n = max(1, int(n_checks))
-    return float(norm.ppf(1.0 - (1.0 - level) / (2.0 * n)))
-
-
-def exact_interval(count: int, n: int, z: float = Z95) -> tuple[float, float]:
-    """Clopper-Pearson interval for ``count`` events in ``n`` trials.
-
-    At the two-sided level of the normal quantile ``z`` (Clopper, C. J. and Pearson,
-    E. S. (1934), Biometrika 26(4), 404-413).
-    """
-    from scipy.stats import beta, norm
-
-    if n <= 0:
-        return 0.0, 1.0
-    alpha = 2.0 * float(norm.sf(z))
-    lo = 0.0 if count <= 0 else float(beta.ppf(alpha / 2.0, count, n - count + 1))
-    hi = 1.0 if count >= n else float(beta.isf(alpha / 2.0, count + 1, n - count))
-    return lo, hi
-
-
-def mc_estimate(count: int, n: int) -> McEstimate:
-    """A :class:`McEstimate` from a count of ``n`` rollouts, with its Clopper-Pearson 95% interval."""
-    if not (n > 0 and 0 <= count <= n):
-        raise SettingsError(f"a Monte Carlo estimate needs 0 <= count <= n and n > 0, got {count} of {n}")
-    lo, hi = exact_interval(count, n, Z95)
-    return McEstimate(count=int(count), n=int(n), estimate=count / n, lo=lo, hi=hi)
-
-
-def sample_runs(model: Model, action_probs: np.ndarray, n: int, rng: np.random.Generator, *,
-             trapped: np.ndarray | None = None, max_steps: int = DEFAULT_MAX_ROLLOUT_STEPS):
-    """Sample ``n`` runs of a stochastic policy from the start on the model's table.
-
-    Parameters
-    ----------
-    trapped : bool ``(n_states,)``; a run entering such a state is stopped and counted
-        as never ending (they cannot end the run; see :class:`Absorption`).
-    max_steps : a run still going after this many moves is stopped (truncated).
-
-    Returns
-    -------
-    end : int16 ``(n,)``, the event code that ended each run (``EVENT_GOAL``,
-        ``EVENT_BOUNDARY``, ``EVENT_HAZARD + h``), 0 for never (trapped), -1 truncated.
-    steps : int64 ``(n,)``, moves made.
-    crossed : int64 ``(n,)``, bit mask of non-ending zones crossed by moves after
-        which the run went on.
-    """
-    action_probs = np.asarray(action_probs, dtype=float)
-    cum = np.cumsum(action_probs, axis=1)
-    # The last action with positive probability takes any round-off shortfall, so the
-    # sampler cannot fall off the end of the table nor pick an impossible action.
-    positive = action_probs > 0
-    last = action_probs.shape[1] - 1 - np.argmax(positive[:, ::-1], axis=1)
-    cum[np.arange(cum.shape[1])[None, :] >= last[:, None]] = 1.0
-    if trapped is None:
-        trapped = np.zeros(model.n_states, dtype=bool)
-    end = np.empty(n, dtype=np.int16)
-    steps = np.empty(n, dtype=np.int64)
-    crossed = np.empty(n, dtype=np.int64)
-    _rollout_kernel(rng, int(model.start), cum, model.table(), np.ascontiguousarray(trapped, dtype=np.bool_),
-                    int(max_steps), end, steps, crossed)
-    return end, steps, crossed
-
-
-@numba.njit(cache=True)
-def _rollout_kernel(rng, start, cum, t, trapped, max_steps, out_end, out_steps, out_crossed):
-    """Sample ``out_end.size`` runs from ``start`` on table ``t`` with cumulative action probabilities ``cum``."""
-    n_a = cum.shape[1]
-    for i in range(out_end.size):
-        s = start
-        steps = 0
-        mask = np.int64(0)
-        end = END_TRUNCATED
-        while True:
-            if trapped[s]:
-                end = END_NEVER
-                break
-            if steps >= max_steps:
-                break
-            u = rng.random()
-            a = n_a - 1
-            for j in range(n_a):
-                if u < cum[s, j]:
-                    a = j
-                    break
-            k = s * n_a + a
-            lo = t.offsets[k]
-            hi = t.offsets[k + 1]
-            u = rng.random()
-            acc = 0.0
-            o = hi - 1
-            for j in range(lo, hi):
-                acc += t.prob[j]
-                if u < acc:
-                    o = j
-                    break
-            steps += 1
-            ev = t.event[o]
-            if ev != EVENT_NONE:
-                end = ev
-                break
-            mask |= t.crossed[o]
-            s = t.next_state[o]
-        out_end[i] = end
-        out_steps[i] = steps
-        out_crossed[i] = mask
-
-
 def _with_monte_carlo(row: RiskRow, model: Model, action_probs, reaches, ends, n: int, rng, max_steps: int,
                       flag_z: float):
     end, steps, crossed = sample_runs(model, action_probs, n, rng, trapped=model.active & ~reaches,
@@ -772,36 +632,6 @@ def _with_monte_carlo(row: RiskRow, model: Model, action_probs, reaches, ends, n
     disagrees = tuple(k for k, est in mc.items() if not est.contains(exact[k], flag_z))
     return replace(row, n_rollouts=n, n_truncated=int(np.sum(end == END_TRUNCATED)), mc=mc, mc_disagrees=disagrees,
                    mc_flag_z=flag_z)
-
-
-# ----------------------------------------------------------------------------- clearance
-
-
-def clearance_m(path_xy, hazards) -> dict[str, float]:
-    """Clearance of a route to each hazard polygon, in metres (0 where they touch).
-
-    Parameters
-    ----------
-    path_xy : float ``(n, 2)``, east/north metres of the route's points in order (a
-        polyline through cell centres; one point is a point).
-    hazards : mapping name -> shapely geometry, or site zones (objects with ``name``
-        and ``geometry``, e.g. ``site.hazards``): the true polygons, unbuffered.
-
-    Returns
-    -------
-    dict
-        hazard name -> shortest distance from the route to the polygon, metres.
-    """
-    import shapely
-
-    xy = np.asarray(path_xy, dtype=float).reshape(-1, 2)
-    if xy.shape[0] == 0:
-        raise SettingsError("clearance needs a route with at least one point")
-    if not np.all(np.isfinite(xy)):
-        raise SettingsError("route coordinates must be finite")
-    route = shapely.points(xy[0]) if xy.shape[0] == 1 else shapely.linestrings(xy)
-    items = hazards.items() if isinstance(hazards, Mapping) else ((z.name, z.geometry) for z in hazards)
-    return {str(name): float(shapely.distance(route, geom)) for name, geom in items}
 
 
 # ----------------------------------------------------------------------------- formatting
@@ -832,458 +662,10 @@ def _plain(x):
     return x if math.isfinite(x) else None
 
 
-def format_table(rows: Iterable[RiskRow], fmt: str = "text", *, details: bool = False) -> str:
-    """The risk table as text (one line per row, under 100 columns), csv, json or markdown.
-
-    Exact figures whose Monte Carlo interval does not contain them are marked ``!``
-    in text and markdown, with a footnote; csv and json carry ``mc_disagrees``.
-    JSON is plain data (no NaN: ``null``) with sorted keys.
-
-    Parameters
-    ----------
-    rows : the rows (from :func:`evaluate` or :func:`sensitivity`).
-    fmt : ``"text"``, ``"csv"``, ``"json"`` or ``"markdown"``.
-    details : text only: follow each row with its zones' shares, entries, budget
-        figures and Monte Carlo estimates.
-
-    Returns
-    -------
-    str
-    """
-    rows = list(rows)
-    if fmt not in FORMATS:
-        raise SettingsError(f"--format must be one of {', '.join(FORMATS)}, got {fmt!r}")
-    if fmt == "json":
-        return json.dumps([r.as_dict() for r in rows], sort_keys=True, indent=2, allow_nan=False) + "\n"
-    if fmt == "csv":
-        return _format_csv(rows)
-    if fmt == "markdown":
-        return _format_markdown(rows)
-    return _format_text(rows, details)
-
-
-def _flat(row: RiskRow) -> dict:
-    out = {
-        "policy": row.policy, "noise": row.noise, "drift_scale": row.drift_scale, "p_goal": row.p_goal,
-        "p_incident": row.p_incident,
-    }
-    out.update({f"p_event:{k}": v for k, v in row.p_by_event.items()})
-    out.update({"p_never": row.p_never, "expected_moves": row.expected_moves, "expected_m": row.expected_m})
-    out.update({"budget": row.budget, "p_goal_within_budget": row.p_goal_within_budget,
-                "p_incident_within_budget": row.p_incident_within_budget, "p_timeout": row.p_timeout})
-    out.update({f"p_entry:{k}": v for k, v in row.p_entry.items()})
-    out.update({"n_rollouts": row.n_rollouts, "n_truncated": row.n_truncated})
-    for k, m in row.mc.items():
-        out.update({f"mc_{k}": m.estimate, f"mc_{k}_lo": m.lo, f"mc_{k}_hi": m.hi})
-    out.update({"mc_disagrees": " ".join(row.mc_disagrees), "mc_flag_z": row.mc_flag_z, "residual": row.residual,
-                "n_trapped_states": row.n_trapped_states})
-    return out
-
-
-def _format_csv(rows: list[RiskRow]) -> str:
-    flat = [_flat(r) for r in rows]
-    columns = []
-    for f in flat:
-        columns.extend(k for k in f if k not in columns)
-    buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(columns)
-    for f in flat:
-        writer.writerow(["" if _blank(f.get(c)) else (repr(float(f[c])) if isinstance(f[c], float) else f[c])
-                         for c in columns])
-    return buf.getvalue()
-
-
-def _blank(x) -> bool:
-    return x is None or (isinstance(x, float) and math.isnan(x))
-
-
-def _mark(row: RiskRow, key: str, text: str) -> str:
-    return text + ("!" if key in row.mc_disagrees else "")
-
-
-def _format_text(rows: list[RiskRow], details: bool = False) -> str:
-    """The text table, one line per row.
-
-    With ``details`` each row's incidents by zone, entries, budget figures and Monte
-    Carlo estimates follow it, indented.
-    """
-    with_never = any(r.p_never > 0 for r in rows)
-    with_mc = any(r.mc for r in rows)
-    head = ["policy", "noise", "drift", "P(incident)", "P(goal)"] + (["P(never)"] if with_never else [])
-    head += ["m|goal"] + (["Monte Carlo"] if with_mc else [])
-    right = {"noise", "drift", "m|goal"}
-    table = []
-    for r in rows:
-        cells = [r.policy, f"{r.noise:.2f}", f"{r.drift_scale:.2f}", _mark(r, "incident", format_prob(r.p_incident)),
-                 _mark(r, "goal", notation.percent(r.p_goal))]
-        if with_never:
-            cells.append(_mark(r, "never", format_prob(r.p_never)))
-        cells.append(_num(r.expected_m))
-        if with_mc:
-            cells.append("not run" if not r.mc else ("! differs" if r.mc_disagrees else "agrees"))
-        table.append(cells)
-    widths = [max(len(c) for c in col) for col in zip(head, *table, strict=True)]
-
-    def line(cells):
-        return " ".join(c.rjust(w) if h in right else c.ljust(w)
-                        for h, c, w in zip(head, cells, widths, strict=True)).rstrip()
-
-    header = line(head)
-    lines = [header, "-" * len(header)]
-    wrap = textwrap.TextWrapper(width=98, initial_indent="    ", subsequent_indent="      ",
-                                break_on_hyphens=False)
-    for r, cells in zip(rows, table, strict=True):
-        lines.append(line(cells))
-        if details:
-            lines.extend(wrap.fill(d) for d in _row_details(r))
-    if any(r.mc_disagrees for r in rows):
-        lines.extend(_footnote(rows, 98))
-    if not details:
-        lines.append("(one line per row; --details adds each zone's share, entries and the Monte Carlo estimates)")
-    return "\n".join(lines) + "\n"
-
-
-def _budget_words(r: RiskRow) -> str:
-    """'364.5 m (81 moves)': the travel budget in metres first, the moves it allows after.
-
-    The metres are whole moves of the move length (a diagonal move travels farther).
-    """
-    if r.budget_m is None:
-        return f"{r.budget} moves"
-    return f"{r.budget_m:,.1f} m ({r.budget} moves of {r.budget_m / max(r.budget, 1):g} m)"
-
-
-def _row_details(r: RiskRow) -> list[str]:
-    details = []
-    if r.p_by_event:
-        parts = [f"{k} {_mark(r, f'event:{k}', format_prob(v))}" for k, v in r.p_by_event.items()]
-        details.append("incidents: " + ", ".join(parts))
-    if r.p_entry:
-        parts = [f"{k} {_mark(r, f'entry:{k}', format_prob(v))}" for k, v in r.p_entry.items()]
-        details.append("entries: " + ", ".join(parts))
-    if r.budget is not None:
-        details.append(
-            f"within {_budget_words(r)}: goal {_mark(r, 'goal_within_budget', format_prob(r.p_goal_within_budget))}"
-            f", incident {_mark(r, 'incident_within_budget', format_prob(r.p_incident_within_budget))}"
-            f", timeout {_mark(r, 'timeout', format_prob(r.p_timeout))}"
-        )
-    details.append(f"expected moves given goal {_num(r.expected_moves)}; solve residual {r.residual:.1e}")
-    if r.n_trapped_states:
-        details.append(f"{r.n_trapped_states} states can never end the run under this policy")
-    if r.mc:
-        parts = [f"{_short_key(k)} {notation.percent(m.estimate)} [{notation.percent(m.lo)}, "
-                 f"{notation.percent(m.hi)}]" for k, m in r.mc.items()]
-        trunc = f", {r.n_truncated} truncated" if r.n_truncated else ""
-        details.append(f"Monte Carlo ({r.n_rollouts:,} runs{trunc}, Clopper-Pearson 95%): " + "; ".join(parts))
-    return details
-
-
-def _footnote(rows: list[RiskRow], width: int | None) -> list[str]:
-    levels = sorted({r.mc_flag_z for r in rows if r.mc_disagrees})
-    if levels == [Z95]:
-        text = ("! exact figure outside the 95% Clopper-Pearson interval of its Monte Carlo count. About 1 "
-                "check in 20 misses by chance: one mark is weak evidence, many marks are strong.")
-    else:
-        z = ", ".join(f"{v:.2f}" for v in levels)
-        text = (f"! exact figure outside the Clopper-Pearson interval of its Monte Carlo count at z = {z}: the "
-                "level that keeps the whole table's checks at 95% together (the intervals shown are at 95% each).")
-    return [text] if width is None else textwrap.wrap(text, width, subsequent_indent="  ")
-
-
-def _short_key(key: str) -> str:
-    return key.split(":", 1)[1] if ":" in key else key.replace("_within_budget", " in budget")
-
-
-def _format_markdown(rows: list[RiskRow]) -> str:
-    events = _union(r.p_by_event for r in rows)
-    entries = _union(r.p_entry for r in rows)
-    with_budget = any(r.budget is not None for r in rows)
-    with_mc = any(r.mc for r in rows)
-    head = ["policy", "noise", "drift", "P(goal)", "P(incident)"] + [f"P({e})" for e in events] + ["P(never)"]
-    head += ["moves given goal", "metres given goal"]
-    if with_budget:
-        head += ["budget", "P(goal) in budget", "P(incident) in budget", "P(timeout)"]
-    head += [f"P(entry {e})" for e in entries]
-    if with_mc:
-        head += ["MC runs", "MC P(goal) [95%]", "MC P(incident) [95%]"]
-    lines = ["| " + " | ".join(head) + " |", "|" + "|".join("---" for _ in head) + "|"]
-    flagged = False
-    for r in rows:
-        cells = [r.policy.replace("|", "/"), f"{r.noise:.2f}", f"{r.drift_scale:.2f}",
-                 _mark(r, "goal", format_prob(r.p_goal)), _mark(r, "incident", format_prob(r.p_incident))]
-        cells += [_mark(r, f"event:{e}", format_prob(r.p_by_event.get(e))) for e in events]
-        cells += [_mark(r, "never", format_prob(r.p_never)), _num(r.expected_moves), _num(r.expected_m)]
-        if with_budget:
-            cells += ["-" if r.budget is None else str(r.budget),
-                      _mark(r, "goal_within_budget", format_prob(r.p_goal_within_budget)),
-                      _mark(r, "incident_within_budget", format_prob(r.p_incident_within_budget)),
-                      _mark(r, "timeout", format_prob(r.p_timeout))]
-        cells += [_mark(r, f"entry:{e}", format_prob(r.p_entry.get(e))) for e in entries]
-        if with_mc:
-            cells += [str(r.n_rollouts)] + [
-                f"{notation.percent(r.mc[k].estimate)} [{notation.percent(r.mc[k].lo)}, "
-                f"{notation.percent(r.mc[k].hi)}]" if k in r.mc else "-" for k in ("goal", "incident")
-            ]
-        flagged = flagged or bool(r.mc_disagrees)
-        lines.append("| " + " | ".join(cells) + " |")
-    if flagged:
-        lines.append("")
-        lines.append(" ".join(_footnote(rows, None)))
-    return "\n".join(lines) + "\n"
-
-
-def _union(dicts) -> list[str]:
-    out = []
-    for d in dicts:
-        out.extend(k for k in d if k not in out)
-    return out
-
-
 __all__ = [
     "DEFAULT_DRIFT_SCALES", "DEFAULT_NOISES", "Z95", "Absorption", "McEstimate", "RiskRow", "absorption",
-    "clearance_m", "evaluate", "format_prob", "format_table", "incident_probability",
+    "evaluate", "format_prob", "incident_probability",
     "mc_estimate", "risk_map", "sample_runs", "seed_incidents", "sensitivity",
+    # computed in planner.montecarlo, used with the rows
+    "exact_interval", "table_flag_z",
 ]
-
-
-# ----------------------------------------------------------------------------- grid convergence
-
-
-#: A half-cell figure further than this share from the reported one is flagged (unless
-#: the Monte Carlo interval of the reported figure is wider).
-GRID_CHECK_SHARE = 0.10
-#: Normal quantile of the Monte Carlo interval the half-cell check also allows (99%).
-Z99 = 2.5758293035489004
-#: Safety factor of the grid convergence index with three grids (Roache, Verification
-#: and Validation in Computational Science and Engineering, 1998).
-GCI_SAFETY = 1.25
-
-
-@dataclass(frozen=True)
-class GridCheck:
-    """One delivered policy re-evaluated on a grid of half the cell, same move length.
-
-    Attributes
-    ----------
-    policy, noise : the policy and the execution noise of both figures.
-    cell_m, fine_cell_m : the reported grid's cell and the half cell.
-    p_incident : P(incident) on the reported grid.
-    p_incident_fine : the same policy's P(incident) on the half-cell grid (None when skipped).
-    difference : ``p_incident_fine - p_incident``; relative : that over ``p_incident``
-        (None when ``p_incident`` is 0).
-    tolerance : ``max(GRID_CHECK_SHARE * p_incident, half-width of its 99% Monte Carlo
-        interval)`` (:func:`mc_halfwidth`); flagged : ``|difference| > tolerance``.
-    skipped : why the check was not made, or None.
-    quarter_cell_m, p_incident_quarter : with three levels (``levels=3`` in
-        :func:`half_cell_check`), the quarter cell and the figure there; order,
-        extrapolated, gci : the observed order, the Richardson-extrapolated figure and the
-        grid convergence index on the finest grid (:func:`richardson`; None when the three
-        figures do not converge monotonically); quarter_skipped : why the third level was
-        not computed, or None.
-    """
-
-    policy: str
-    noise: float
-    cell_m: float
-    fine_cell_m: float
-    p_incident: float
-    p_incident_fine: float | None = None
-    difference: float | None = None
-    relative: float | None = None
-    tolerance: float | None = None
-    flagged: bool = False
-    skipped: str | None = None
-    quarter_cell_m: float | None = None
-    p_incident_quarter: float | None = None
-    order: float | None = None
-    extrapolated: float | None = None
-    gci: float | None = None
-    quarter_skipped: str | None = None
-
-    def as_dict(self) -> dict:
-        return {k: _plain(v) if isinstance(v, float) else v for k, v in self.__dict__.items()}
-
-    @classmethod
-    def from_dict(cls, data: dict) -> GridCheck:
-        try:
-            return cls(**{f: data[f] if f not in THIRD_LEVEL_FIELDS else data.get(f)
-                          for f in cls.__dataclass_fields__})
-        except (KeyError, TypeError) as err:
-            raise SettingsError(f"a grid check record is malformed ({err!r})") from err
-
-
-#: GridCheck fields of the third level; records written before it existed lack them.
-THIRD_LEVEL_FIELDS = ("quarter_cell_m", "p_incident_quarter", "order", "extrapolated", "gci", "quarter_skipped")
-
-
-def three_level_words(check: Mapping) -> str:
-    """The third level of a grid check in words, or '' without one.
-
-    'at quarter cell (1.125 m) 9.0% (1 in 11); observed order 3.1, extrapolated 8.9% (1 in 11),
-    grid convergence index 0.18% (1 in 540)'.
-    """
-    if check.get("quarter_skipped"):
-        return f"quarter-cell level skipped: {check['quarter_skipped']}"
-    if check.get("p_incident_quarter") is None:
-        return ""
-    text = f"at quarter cell ({check['quarter_cell_m']:g} m) {format_prob(check['p_incident_quarter'])}"
-    if check.get("order") is None:
-        return text + "; the three figures do not converge monotonically, so no order or error estimate"
-    return (text + f"; observed order {check['order']:.1f}, extrapolated {format_prob(check['extrapolated'])}, "
-            f"grid convergence index {format_prob(check['gci'])}")
-
-
-def carry_policy(coarse, coarse_active: np.ndarray, greedy: np.ndarray, fine) -> np.ndarray:
-    """A policy carried as a heading per position from grid ``coarse`` to grid ``fine``.
-
-    Each fine cell takes the heading of the coarse cell that contains its centre; where
-    that coarse cell is not active (a hazard or outside there, not at the finer
-    drawing) it takes the heading of the nearest active coarse cell. Both grids must
-    share the heading set (same dynamics). Returns int64 ``(fine.n_cells,)``.
-    """
-    from scipy.ndimage import distance_transform_edt
-
-    greedy = np.asarray(greedy, dtype=np.int64).reshape(coarse.shape)
-    active = np.asarray(coarse_active, dtype=bool).reshape(coarse.shape)
-    if active.any():
-        _, (near_r, near_c) = distance_transform_edt(~active, return_indices=True)
-        greedy = greedy[near_r, near_c]
-    xs, ys = fine.centres()
-    cols = np.clip(np.floor((xs - coarse.x0) / coarse.cell_m).astype(np.int64), 0, coarse.shape[1] - 1)
-    rows = np.clip(np.floor((ys - coarse.y0) / coarse.cell_m).astype(np.int64), 0, coarse.shape[0] - 1)
-    return greedy[rows, cols].ravel()
-
-
-def half_cell_check(site, grid, spec, dynamics, model: Model, policies: Mapping[str, np.ndarray], rows, *,
-                    noise: float, max_cells: int | None = None, levels: int = 2) -> list[GridCheck]:
-    """Re-evaluate each delivered policy on a grid of half the cell size, same move length.
-
-    With ``levels=3`` also on a quarter-cell grid, and estimate the discretisation
-    error and observed order from the three figures (:func:`richardson`).
-
-    Parameters
-    ----------
-    site, grid, spec, dynamics, model : the plan's site, grid, grid settings, vehicle and model.
-    policies : name -> greedy actions on ``grid``.
-    rows : the plan's risk rows (the reported figure and its Monte Carlo interval are
-        read from the row of each policy at ``noise`` and the dynamics' drift scale).
-    noise : execution noise of both figures.
-    max_cells : refuse (skip, with the reason) a finer grid above this; default the spec's.
-    levels : 2 (the reported and the half cell) or 3 (and the quarter cell).
-
-    Returns
-    -------
-    list of GridCheck, one per policy, in the mapping's order.
-    """
-    from planner.errors import PlannerError
-    from planner.grid import rasterise
-
-    fine_cell = grid.cell_m / 2.0
-    move = dynamics.move_length_m(grid.cell_m)
-    limit = spec.max_cells if max_cells is None else max_cells
-    reported = {}
-    for name in policies:
-        row = find_row(rows, name, noise, dynamics.drift_scale)
-        if row is None:
-            raise SettingsError(f"half-cell check: no risk row for {name!r} at noise {noise:g}")
-        reported[name] = row
-    skipped = None
-    n_fine = (2 * grid.shape[0]) * (2 * grid.shape[1])
-    if n_fine > limit:
-        skipped = (f"the half-cell grid ({fine_cell:g} m) would have about {n_fine:,} cells, over the cell limit "
-                   f"of {limit:,}")
-    else:
-        try:
-            fine = rasterise(site, replace(spec, cell_m=fine_cell, max_cells=limit))
-            fine_model = build_model(fine, replace(dynamics, move_m=move))
-        except PlannerError as err:
-            skipped = f"the half-cell grid ({fine_cell:g} m) cannot be built: {err}"
-    if levels not in (2, 3):
-        raise SettingsError(f"grid check levels must be 2 or 3, got {levels!r}")
-    quarter_cell = grid.cell_m / 4.0
-    quarter = quarter_skipped = None
-    if levels == 3 and skipped is None:
-        n_quarter = (4 * grid.shape[0]) * (4 * grid.shape[1])
-        if n_quarter > limit:
-            quarter_skipped = (f"the quarter-cell grid ({quarter_cell:g} m) would have about {n_quarter:,} cells, "
-                               f"over the cell limit of {limit:,}")
-        else:
-            try:
-                quarter = rasterise(site, replace(spec, cell_m=quarter_cell, max_cells=limit))
-                quarter_model = build_model(quarter, replace(dynamics, move_m=move))
-            except PlannerError as err:
-                quarter_skipped = f"the quarter-cell grid ({quarter_cell:g} m) cannot be built: {err}"
-                quarter = None
-    out = []
-    for name, greedy in policies.items():
-        row = reported[name]
-        base = GridCheck(policy=name, noise=float(noise), cell_m=float(grid.cell_m), fine_cell_m=fine_cell,
-                         p_incident=float(row.p_incident))
-        if skipped is not None:
-            out.append(replace(base, skipped=skipped))
-            continue
-        carried = carry_policy(grid, model.active, greedy, fine)
-        fine_row = evaluate(fine_model, carried, noise=float(noise), name=name, hazards=fine.hazards)
-        check = compare_levels(base, float(fine_row.p_incident), row)
-        if quarter is not None:
-            # Carried from the reported grid, as the half-cell figure is: the same policy on all three.
-            carried = carry_policy(grid, model.active, greedy, quarter)
-            p_quarter = float(evaluate(quarter_model, carried, noise=float(noise), name=name,
-                                       hazards=quarter.hazards).p_incident)
-            fit = richardson([check.p_incident, check.p_incident_fine, p_quarter])
-            check = replace(check, quarter_cell_m=quarter_cell, p_incident_quarter=p_quarter, order=fit["order"],
-                            extrapolated=fit["extrapolated"], gci=fit["gci_fine"])
-        elif quarter_skipped is not None:
-            check = replace(check, quarter_cell_m=quarter_cell, quarter_skipped=quarter_skipped)
-        out.append(check)
-    return out
-
-
-def compare_levels(base: GridCheck, p_fine: float, row: RiskRow | None = None) -> GridCheck:
-    """Fill in the fine figure, the differences and the flag of a :class:`GridCheck`."""
-    diff = p_fine - base.p_incident
-    tolerance = max(GRID_CHECK_SHARE * base.p_incident, mc_halfwidth(row))
-    relative = diff / base.p_incident if base.p_incident > 0 else None
-    return replace(base, p_incident_fine=p_fine, difference=diff, relative=relative, tolerance=tolerance,
-                   flagged=bool(abs(diff) > tolerance))
-
-
-def mc_halfwidth(row: RiskRow | None) -> float:
-    """Half-width of the Clopper-Pearson 99 % interval of a row's Monte Carlo P(incident).
-
-    The larger side from the estimate; 0 without rollouts.
-    """
-    mc = None if row is None else row.mc.get("incident")
-    if mc is None or mc.n <= 0:
-        return 0.0
-    lo, hi = exact_interval(mc.count, mc.n, Z99)
-    return max(mc.estimate - lo, hi - mc.estimate)
-
-
-def richardson(values: Sequence[float], ratio: float = 2.0) -> dict:
-    """Observed order, extrapolated value and grid convergence index from three grids.
-
-    ``values`` are a figure on grids refined by ``ratio`` each time, coarsest first
-    (Roache, Verification and Validation in Computational Science and Engineering,
-    1998: ``p = ln((f3 - f2) / (f2 - f1)) / ln r`` with ``f1`` the finest,
-    ``f_exact = f1 + (f1 - f2) / (r^p - 1)``, ``GCI = Fs |f1 - f2| / (r^p - 1)`` on the
-    finest grid, ``Fs = 1.25``). Without monotone convergence (the differences change
-    sign or do not shrink) the order and index are None.
-    """
-    if len(values) != 3:
-        raise SettingsError(f"Richardson extrapolation needs three grids, got {len(values)}")
-    f3, f2, f1 = (float(v) for v in values)
-    d_coarse, d_fine = f2 - f3, f1 - f2
-    out = {"values": [f3, f2, f1], "ratio_of_differences": None, "order": None, "extrapolated": None,
-           "gci_fine": None}
-    if d_coarse == 0.0:
-        return out
-    shrink = d_fine / d_coarse
-    out["ratio_of_differences"] = shrink
-    if not 0.0 < shrink < 1.0:
-        return out
-    order = math.log(1.0 / shrink) / math.log(ratio)
-    factor = ratio**order - 1.0
-    out.update(order=order, extrapolated=f1 + d_fine / factor, gci_fine=GCI_SAFETY * abs(d_fine) / factor)
-    return out

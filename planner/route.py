@@ -9,6 +9,7 @@ hazard polygons.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -305,3 +306,30 @@ def build_route(name: str, path: NominalPath, grid, site, model: Model) -> Route
         length_m=float(steps.sum()), path_m=points, waypoints=waypoints,
         min_clearance_m=float(route_clear[0]), min_clearance_hazard=route_nearest[0],
     )
+
+
+def clearance_m(path_xy, hazards) -> dict[str, float]:
+    """Clearance of a route to each hazard polygon, in metres (0 where they touch).
+
+    Parameters
+    ----------
+    path_xy : float ``(n, 2)``, east/north metres of the route's points in order (a
+        polyline through cell centres; one point is a point).
+    hazards : mapping name -> shapely geometry, or site zones (objects with ``name``
+        and ``geometry``, e.g. ``site.hazards``): the true polygons, unbuffered.
+
+    Returns
+    -------
+    dict
+        hazard name -> shortest distance from the route to the polygon, metres.
+    """
+    import shapely
+
+    xy = np.asarray(path_xy, dtype=float).reshape(-1, 2)
+    if xy.shape[0] == 0:
+        raise SettingsError("clearance needs a route with at least one point")
+    if not np.all(np.isfinite(xy)):
+        raise SettingsError("route coordinates must be finite")
+    route = shapely.points(xy[0]) if xy.shape[0] == 1 else shapely.linestrings(xy)
+    items = hazards.items() if isinstance(hazards, Mapping) else ((z.name, z.geometry) for z in hazards)
+    return {str(name): float(shapely.distance(route, geom)) for name, geom in items}

@@ -696,7 +696,7 @@ class PlanResult:
     seed_p_incident: dict = field(default_factory=dict)
     #: policy name -> (drift scale, the same per-seed figures at the table's strongest drift)
     seed_p_incident_strong: dict = field(default_factory=dict)
-    #: the half-cell check of each delivered policy (``planner.risk.GridCheck``)
+    #: the half-cell check of each delivered policy (``planner.gridcheck.GridCheck``)
     grid_checks: list = field(default_factory=list)
 
 
@@ -882,7 +882,7 @@ def _training_notes(learned) -> dict:
 
 def _mc_halfwidth(row) -> float:
     """Half-width of the Clopper-Pearson 99 % interval of a row's Monte Carlo P(incident)."""
-    from planner.risk import mc_halfwidth
+    from planner.gridcheck import mc_halfwidth
 
     return mc_halfwidth(row)
 
@@ -910,7 +910,8 @@ def _with_verdicts(rows, convergence, references, eps: float, base: float) -> li
 
 def _grid_check(site, grid, settings, model, greedy, rows, progress):
     """The half-cell check of the delivered policies, attached to their risk rows."""
-    from planner.risk import GridCheck, find_row, half_cell_check
+    from planner.gridcheck import GridCheck, half_cell_check
+    from planner.risk import find_row
 
     eps = settings.learn.epsilon
     delivered = {name: greedy[name] for name in POLICIES}
@@ -986,7 +987,8 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
     from planner import plots
     from planner.brief import BriefInputs, write_brief
     from planner.export import write_csv, write_geojson
-    from planner.risk import format_table, risk_map
+    from planner.risk import risk_map
+    from planner.risk_table import format_table
 
     # The bytes that were hashed and parsed, not the file again: it may have changed since.
     data = result.site.data

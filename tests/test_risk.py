@@ -24,16 +24,16 @@ from planner.risk import (
     McEstimate,
     RiskRow,
     absorption,
-    clearance_m,
     evaluate,
     exact_interval,
     format_prob,
-    format_table,
     mc_estimate,
     risk_map,
     sample_runs,
     sensitivity,
 )
+from planner.risk_table import format_table
+from planner.route import clearance_m
 from planner.site import site_from_geojson
 
 EAST, WEST = 1, 3  # 4-move action indices (N, E, S, W)
@@ -635,7 +635,7 @@ def test_demo_site_default_table_exact_and_monte_carlo_agree(name):
 
 
 def test_a_policy_is_carried_to_the_finer_grid_by_position():
-    from planner.risk import carry_policy
+    from planner.gridcheck import carry_policy
 
     # 2 x 3 coarse cells of 2 m; the northern row is a hazard (not active).
     label = np.full((2, 3), FREE)
@@ -656,7 +656,8 @@ def test_a_policy_is_carried_to_the_finer_grid_by_position():
 def test_grid_check_tolerance_is_ten_percent_or_the_99_percent_interval():
     from scipy.stats import beta
 
-    from planner.risk import GridCheck, McEstimate, compare_levels
+    from planner.gridcheck import GridCheck, compare_levels
+    from planner.risk import McEstimate
 
     base = GridCheck(policy="shortest", noise=0.1, cell_m=4.0, fine_cell_m=2.0, p_incident=0.2)
     loose = compare_levels(base, 0.21)
@@ -671,7 +672,7 @@ def test_grid_check_tolerance_is_ten_percent_or_the_99_percent_interval():
 
 
 def test_richardson_recovers_a_second_order_error():
-    from planner.risk import richardson
+    from planner.gridcheck import richardson
 
     # f(h) = 1 + 0.5 h^2 on h = 4, 2, 1: order 2, limit 1, and the grid convergence index
     # 1.25 |f1 - f2| / (2^2 - 1) (Roache, Verification and Validation in Computational
@@ -685,8 +686,9 @@ def test_richardson_recovers_a_second_order_error():
 
 def test_half_cell_check_is_skipped_with_the_reason_above_the_cell_limit(site_dict):
     from planner.exact import optimal_q
+    from planner.gridcheck import half_cell_check
     from planner.learn import greedy_actions
-    from planner.risk import half_cell_check, sensitivity
+    from planner.risk import sensitivity
     from planner.site import site_from_geojson
 
     site = site_from_geojson(site_dict)

@@ -160,7 +160,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
 
 def format_grid_check(checks, name) -> str:
     """The half-cell figure beside the reported one: '; at half cell (2.25 m) 1.3% (+8%)'."""
-    from planner.risk import format_prob, three_level_words
+    from planner.risk import format_prob
+    from planner.risk_table import three_level_words
 
     check = next((c for c in checks if c.policy == name), None)
     if check is None:

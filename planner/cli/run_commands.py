@@ -56,7 +56,7 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
       veerwise risk run-yard --table-drifts 1,2,3 --details
       veerwise risk run-yard --format csv > risk-again.csv
     """
-    from planner.risk import format_table
+    from planner.risk_table import format_table
     from planner.runfolder import check_counts, check_seed, load_run, rebuild_grid, run_risk
 
     check_seed(rollout_seed, "--rollout-seed")
