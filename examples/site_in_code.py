@@ -24,7 +24,7 @@ import numpy as np
 from pyproj import Transformer
 
 from planner.errors import PlannerError
-from planner.exact import convergence_report, equally_good, on_policy_q, optimal_q, risk_verdict, safest_among
+from planner.exact import on_policy_q, optimal_q
 from planner.export import write_csv, write_geojson, write_gpx
 from planner.grid import GridSpec, rasterise
 from planner.learn import LearnSettings, learned_ties, train
@@ -33,6 +33,8 @@ from planner.motion import Dynamics
 from planner.risk import evaluate, format_prob
 from planner.route import build_route, nominal_path
 from planner.site import site_from_geojson
+from planner.ties import equally_good, safest_among
+from planner.verdict import convergence_report, risk_verdict
 
 #: Where the yard's local metres are anchored (any point on land would do).
 ORIGIN_LON, ORIGIN_LAT = 11.58, 48.14

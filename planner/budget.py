@@ -13,7 +13,7 @@ policies (Altman, *Constrained Markov Decision Processes*, 1999, ch. 3 and 12).
 neighbouring vertices (each new solve either finds a vertex between them or proves they
 are adjacent); :func:`risk_budget` walks the same way towards the budget from the
 model's own penalty. Each solve is warm-started from the previous one's values. Ties
-in every solve are broken by safety (:func:`planner.exact.safest_among`).
+in every solve are broken by safety (:func:`planner.ties.safest_among`).
 :func:`constrained_lp` solves the constrained problem directly as a linear programme
 over occupancy measures (HiGHS through ``scipy.optimize.linprog``), for cross-checks on
 small grids.
@@ -32,8 +32,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from planner.errors import SettingsError
-from planner.exact import equally_good, on_policy_q, safest_among
+from planner.exact import on_policy_q
 from planner.model import EVENT_BOUNDARY, EVENT_HAZARD, EVENT_NONE, Model
+from planner.ties import equally_good, safest_among
 
 #: Largest penalty the search tries (metres-equivalent per incident): beyond this the
 #: value iteration's convergence tolerance stops resolving the move costs.

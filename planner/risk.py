@@ -29,7 +29,6 @@ import numpy as np
 
 from planner import notation
 from planner.errors import SettingsError, SolverError
-from planner.exact import equally_good, safest_among
 from planner.model import (
     EVENT_BOUNDARY,
     EVENT_GOAL,
@@ -54,6 +53,7 @@ from planner.montecarlo import (
     sample_runs,
     table_flag_z,
 )
+from planner.ties import equally_good, safest_among
 
 #: Default noise levels and drift scales of the sensitivity table.
 DEFAULT_NOISES = (0.0, 0.05, 0.1, 0.2)
@@ -458,7 +458,7 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
     model : the model (its ``dynamics.drift_scale`` is the row's drift scale).
     greedy_action : int ``(n_states,)`` greedy actions, or a Q table
         ``(n_states, n_actions)`` to take them from (ties to the safest at ``noise``,
-        see :func:`planner.exact.safest_among`).
+        see :func:`planner.ties.safest_among`).
     noise : execution noise epsilon in [0, 1].
     name : the policy's name in the table.
     budget : step budget T (moves), or None.

@@ -731,20 +731,14 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     ``site`` and ``grid``, when the caller has already loaded and rasterised
     ``site_path`` with these settings, are used instead of doing it again.
     """
-    from planner.exact import (
-        check_tie_tolerance,
-        convergence_report,
-        equally_good,
-        on_policy_q,
-        optimal_q,
-        risk_verdict,
-        safest_among,
-    )
+    from planner.exact import on_policy_q, optimal_q
     from planner.grid import cost_to_goal, rasterise
     from planner.learn import learned_ties, train
     from planner.model import build_model
     from planner.route import nominal_path
     from planner.site import load_site
+    from planner.ties import check_tie_tolerance, equally_good, safest_among
+    from planner.verdict import convergence_report, risk_verdict
 
     progress = progress or Progress()
     timings = {}

@@ -11,9 +11,10 @@ from numpy.testing import assert_allclose
 from test_ties import EPS, two_lanes_model
 
 from planner.causes import failure_paths, leg_shares
-from planner.exact import equally_good, incident_from_every_state, on_policy_q, optimal_q, safest_among
+from planner.exact import on_policy_q, optimal_q
 from planner.model import EVENT_BOUNDARY, Dynamics, build_model
 from planner.route import nominal_path
+from planner.ties import equally_good, incident_from_every_state, safest_among
 
 MAPS = Path(__file__).parents[1] / "maps"
 

@@ -9,20 +9,13 @@ import pytest
 from numpy.testing import assert_allclose
 
 from planner.errors import SettingsError, SolverError
-from planner.exact import (
-    ExactSolution,
-    convergence_report,
-    near_best,
-    occupancy,
-    on_policy_q,
-    optimal_q,
-    policy_value,
-)
+from planner.exact import ExactSolution, near_best, on_policy_q, optimal_q
 from planner.grid import FREE, OUTSIDE, DriftInfo, HazardInfo, grid_from_arrays
 from planner.learn import Learned, LearnSettings, greedy_actions
 from planner.model import EVENT_GOAL, EVENT_NONE, Dynamics, build_model
 from planner.motion import moves_for
 from planner.route import nominal_path
+from planner.verdict import convergence_report, occupancy, policy_value
 
 #: Unit-cost moves, no slip, walls at the edge: the textbook gridworld dynamics.
 BOOK = dict(slip=0.0, edge="wall", step_cost="move")

@@ -18,12 +18,13 @@ import pytest
 from numpy.testing import assert_allclose
 from pyproj import Geod
 
-from planner.exact import equally_good, optimal_q, safest_among
+from planner.exact import optimal_q
 from planner.export import GPX_NAMESPACE, SIMULATION_NOTICE
 from planner.grid import GridSpec, rasterise
 from planner.model import Dynamics, build_model
 from planner.risk import evaluate, format_prob
 from planner.site import load_site
+from planner.ties import equally_good, safest_among
 
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLES = ROOT / "examples"

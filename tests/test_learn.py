@@ -10,7 +10,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 from planner.errors import SettingsError
-from planner.exact import convergence_report, on_policy_q, optimal_q, policy_value
+from planner.exact import on_policy_q, optimal_q
 from planner.grid import FREE, DriftInfo, HazardInfo, cost_to_goal, grid_from_arrays
 from planner.learn import (
     END_STEP_CAP,
@@ -29,6 +29,7 @@ from planner.learn import (
 )
 from planner.model import Dynamics, build_model
 from planner.route import nominal_path
+from planner.verdict import convergence_report, policy_value
 
 
 def cliff_grid():

@@ -14,18 +14,11 @@ from numpy.testing import assert_allclose
 from test_exact import BOOK, cliff_model
 
 from planner.errors import SettingsError
-from planner.exact import (
-    DEFAULT_TIE_M,
-    check_tie_tolerance,
-    equally_good,
-    incident_from_every_state,
-    on_policy_q,
-    optimal_q,
-    risk_verdict,
-    safest_among,
-)
+from planner.exact import on_policy_q, optimal_q
 from planner.learn import greedy_actions
 from planner.model import Dynamics, build_model
+from planner.ties import DEFAULT_TIE_M, check_tie_tolerance, equally_good, incident_from_every_state, safest_among
+from planner.verdict import risk_verdict
 
 #: Noise of the hand-worked case.
 EPS = 0.1
