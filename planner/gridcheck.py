@@ -130,9 +130,6 @@ def half_cell_check(site, grid, spec, dynamics, model: Model, policies: Mapping[
     -------
     list of GridCheck, one per policy, in the mapping's order.
     """
-    from planner.errors import PlannerError
-    from planner.grid import rasterise
-
     fine_cell = grid.cell_m / 2.0
     move = dynamics.move_length_m(grid.cell_m)
     limit = spec.max_cells if max_cells is None else max_cells
@@ -142,33 +139,13 @@ def half_cell_check(site, grid, spec, dynamics, model: Model, policies: Mapping[
         if row is None:
             raise SettingsError(f"half-cell check: no risk row for {name!r} at noise {noise:g}")
         reported[name] = row
-    skipped = None
-    n_fine = (2 * grid.shape[0]) * (2 * grid.shape[1])
-    if n_fine > limit:
-        skipped = (f"the half-cell grid ({fine_cell:g} m) would have about {n_fine:,} cells, over the cell limit "
-                   f"of {limit:,}")
-    else:
-        try:
-            fine = rasterise(site, replace(spec, cell_m=fine_cell, max_cells=limit))
-            fine_model = build_model(fine, replace(dynamics, move_m=move))
-        except PlannerError as err:
-            skipped = f"the half-cell grid ({fine_cell:g} m) cannot be built: {err}"
     if levels not in (2, 3):
         raise SettingsError(f"grid check levels must be 2 or 3, got {levels!r}")
+    fine, fine_model, skipped = _finer(site, grid, spec, dynamics, move, 2, "half", limit)
     quarter_cell = grid.cell_m / 4.0
     quarter = quarter_skipped = None
     if levels == 3 and skipped is None:
-        n_quarter = (4 * grid.shape[0]) * (4 * grid.shape[1])
-        if n_quarter > limit:
-            quarter_skipped = (f"the quarter-cell grid ({quarter_cell:g} m) would have about {n_quarter:,} cells, "
-                               f"over the cell limit of {limit:,}")
-        else:
-            try:
-                quarter = rasterise(site, replace(spec, cell_m=quarter_cell, max_cells=limit))
-                quarter_model = build_model(quarter, replace(dynamics, move_m=move))
-            except PlannerError as err:
-                quarter_skipped = f"the quarter-cell grid ({quarter_cell:g} m) cannot be built: {err}"
-                quarter = None
+        quarter, quarter_model, quarter_skipped = _finer(site, grid, spec, dynamics, move, 4, "quarter", limit)
     out = []
     for name, greedy in policies.items():
         row = reported[name]
@@ -192,6 +169,26 @@ def half_cell_check(site, grid, spec, dynamics, model: Model, policies: Mapping[
             check = replace(check, quarter_cell_m=quarter_cell, quarter_skipped=quarter_skipped)
         out.append(check)
     return out
+
+
+def _finer(site, grid, spec, dynamics, move: float, factor: int, word: str, limit: int):
+    """The grid and model at ``1/factor`` of the cell (same move), or why they cannot be made.
+
+    Returns ``(grid, model, None)`` or ``(None, None, reason)``.
+    """
+    from planner.errors import PlannerError
+    from planner.grid import rasterise
+
+    cell = grid.cell_m / factor
+    n_cells = (factor * grid.shape[0]) * (factor * grid.shape[1])
+    if n_cells > limit:
+        return None, None, (f"the {word}-cell grid ({cell:g} m) would have about {n_cells:,} cells, over the cell "
+                            f"limit of {limit:,}")
+    try:
+        finer = rasterise(site, replace(spec, cell_m=cell, max_cells=limit))
+        return finer, build_model(finer, replace(dynamics, move_m=move)), None
+    except PlannerError as err:
+        return None, None, f"the {word}-cell grid ({cell:g} m) cannot be built: {err}"
 
 
 def compare_levels(base: GridCheck, p_fine: float, row: RiskRow | None = None) -> GridCheck:
