@@ -213,6 +213,7 @@ def brief_content(inputs: BriefInputs) -> dict:
             "p_incident_reference": _with_range(ref) if ref else "-",
             "delivered": conv.get("delivered", "learned"),
             "half_cell": _half_cell(row),
+            "half_cell_short": _half_cell(row, short=True),
             "half_cell_flagged": bool(row and row.grid_check and row.grid_check.get("flagged")),
             "expected_m": row.expected_m if row else math.nan,
             "main_event": f"{main[0]} ({format_prob(main[1])})" if main else "none",
@@ -249,7 +250,9 @@ def _with_range(ref) -> str:
     text = format_prob(ref.p_incident)
     rng = ref.p_incident_range
     if rng is not None and rng[1] > rng[0]:
-        text += f" (equally good routes: {notation.probability_range(*rng)})"
+        words = notation.probability_range(*rng)
+        if words != text:  # a range too narrow to print is no range to the reader
+            text += f" (equally good routes: {words})"
     return text
 
 
@@ -476,14 +479,22 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
     for x in split:
         trust += (f" But the training runs disagree on the {x['name']} route: only {x['seed_routes_matching']} of "
                   f"{x['n_seeds']} keep within 2 cells of it, so it is not yet a property of the yard alone.")
+    coarse = [x for x in (c, s) if x["half_cell_flagged"]]
+    if coarse:
+        trust += (" The grid check differs beyond its tolerance for the " + " and ".join(
+            f"{x['name']} route ({x['p_incident']} here, {x['half_cell_short']})" for x in coarse) + ": the figure still depends on how finely "
+            "the site is drawn; re-run with a smaller --cell before relying on it.")
     trust += " The figures are exact for the model only (section 6)."
     return [("Which route?", which, which_alert), ("How risky?", risky, False),
             ("Under what assumptions?", assume, False),
-            ("Is the answer trustworthy?", trust, bool(bad) or bool(split) or never > 0)]
+            ("Is the answer trustworthy?", trust, bool(bad) or bool(split) or never > 0 or bool(coarse))]
 
 
-def _half_cell(row) -> str:
-    """The half-cell check of a row: '9.7e-5 at 2.25 m cells (-87%; beyond tolerance)' or why it was skipped."""
+def _half_cell(row, *, short: bool = False) -> str:
+    """The half-cell check of a row: '9.7e-5 at 2.25 m cells (-87%; beyond tolerance)' or why it was skipped.
+
+    ``short``: the figure, the cell and the difference only ('9.7e-5 at 2.25 m cells, -87%').
+    """
     check = row.grid_check if row is not None else None
     if not check:
         return "-"
@@ -491,6 +502,8 @@ def _half_cell(row) -> str:
         return f"not checked: {check['skipped']}"
     rel = check.get("relative")
     diff = f"{100 * rel:+.0f}%" if rel is not None else f"{check['difference']:+.1e}"
+    if short:
+        return f"{format_prob(check['p_incident_fine'])} at {check['fine_cell_m']:g} m cells, {diff}"
     verdict = "beyond tolerance: the figure depends on the cell size" if check["flagged"] else "within tolerance"
     third = three_level_words(check)
     return (f"{format_prob(check['p_incident_fine'])} at {check['fine_cell_m']:g} m cells ({diff}; {verdict})"

@@ -750,3 +750,26 @@ def test_without_the_python_package_the_note_says_pip(monkeypatch):
     real = importlib.util.find_spec
     monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "weasyprint" else real(name, *a))
     assert "pip install weasyprint" in planner.brief.pdf_unavailable()
+
+
+@pytest.mark.parametrize("flagged", [False, True])
+def test_the_trust_answer_names_a_grid_check_beyond_tolerance(inputs, flagged):
+    # The rows' half-cell records set by hand: the shortest route's figure at half the
+    # cell is 0.5 x (flagged) or 1.02 x (within tolerance) the reported one.
+    rows = []
+    for r in inputs.risk_rows:
+        if r.grid_check and r.policy == "shortest":
+            ratio = 0.5 if flagged else 1.02
+            check = dict(r.grid_check, p_incident_fine=r.p_incident * ratio, relative=ratio - 1.0,
+                         difference=r.p_incident * (ratio - 1.0), flagged=flagged, skipped=None)
+            r = dataclasses.replace(r, grid_check=check)
+        elif r.grid_check:
+            r = dataclasses.replace(r, grid_check=dict(r.grid_check, flagged=False))
+        rows.append(r)
+    changed = dataclasses.replace(inputs, risk_rows=rows)
+    content = brief_content(changed)
+    trust, alert = next((a, flag) for q, a, flag in content["glance"] if q == "Is the answer trustworthy?")
+    assert ("The grid check differs beyond its tolerance for the shortest route" in trust) == flagged
+    assert "cautious route (" not in trust.split("grid check")[-1]
+    if flagged:
+        assert "-50%" in trust and alert
