@@ -88,6 +88,14 @@ class GridCheck:
 THIRD_LEVEL_FIELDS = ("quarter_cell_m", "p_incident_quarter", "order", "extrapolated", "gci", "quarter_skipped")
 
 
+def row_from_record(data: dict) -> RiskRow:
+    """A risk row read back from ``risk.json``, its grid-check record checked field by field."""
+    row = RiskRow.from_dict(data)
+    if row.grid_check is None:
+        return row
+    return replace(row, grid_check=GridCheck.from_dict(row.grid_check).as_dict())
+
+
 def carry_policy(coarse, coarse_active: np.ndarray, greedy: np.ndarray, fine) -> np.ndarray:
     """A policy carried as a heading per position from grid ``coarse`` to grid ``fine``.
 

@@ -213,12 +213,10 @@ class RiskRow:
 
 
 def _grid_check_record(data):
-    """A row's grid-check record, validated (``planner.gridcheck.GridCheck``), or None."""
-    if not data:
-        return None
-    from planner.gridcheck import GridCheck
-
-    return GridCheck.from_dict(data).as_dict()
+    """A row's grid-check record as read (a dict) or None; :func:`planner.gridcheck.row_from_record` checks it."""
+    if data is None or isinstance(data, dict):
+        return data or None
+    raise TypeError(f"grid_check is {type(data).__name__}, not a record")
 
 
 @dataclass(frozen=True)

@@ -1503,7 +1503,7 @@ def rewrite_brief(run) -> tuple[Path, Path | None]:
     added is carried over by hard link, and the new folder replaces the old in one step.
     """
     from planner.brief import BriefInputs, write_brief
-    from planner.risk import RiskRow
+    from planner.gridcheck import row_from_record
 
     folder = run.folder if isinstance(run, Run) else Path(run)
     with run_lock(folder) as path:
@@ -1516,7 +1516,7 @@ def rewrite_brief(run) -> tuple[Path, Path | None]:
         try:
             if not (isinstance(records, list) and records and all(isinstance(r, dict) for r in records)):
                 raise ValueError("expected a non-empty list of rows")
-            rows = [RiskRow.from_dict(r) for r in records]
+            rows = [row_from_record(r) for r in records]
         except (TypeError, KeyError, ValueError, AttributeError) as err:
             raise RunFolderError(f"{path}: cannot read risk.json ({err})") from err
         manifest = dict(run.manifest)
