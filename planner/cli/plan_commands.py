@@ -111,7 +111,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     from planner.grid import rasterise
     from planner.learn import LearnSettings
     from planner.motion import travel_budget_m
-    from planner.runfolder import PlanSettings, Progress, check_out, compute_plan, run_lock, stop_on_sigterm, write_run
+    from planner.runfolder import PlanSettings, Progress, compute_plan, write_run
+    from planner.transactions import check_out, run_lock, stop_on_sigterm
 
     started = time.perf_counter()
     check_out(run, force=force)

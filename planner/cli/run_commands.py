@@ -115,7 +115,8 @@ def export(run, output, force, fmt, policy, alt_m):
         write_geojson,
         write_gpx,
     )
-    from planner.runfolder import load_run, read_lock, rebuild, run_routes
+    from planner.runfolder import load_run, rebuild, run_routes
+    from planner.transactions import read_lock
 
     out = Path(output)
     names = ("cautious", "shortest") if policy == "both" else (policy,)
