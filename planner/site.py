@@ -115,11 +115,14 @@ class Zone:
     spread_per_sqrt_m: float = 0.0
     chance: float = 1.0
     grid_toward_deg: float = 0.0
+    #: Where the zone was drawn, when site files were merged: ``hazards.gpkg layer 'hazard':
+    #: feature 2 ('North pond')`` (``feature`` is then its index in the merged collection).
+    drawn_in: str = field(default="", compare=False)
 
     @property
     def label(self) -> str:
         """How messages name this zone: ``feature 3 ('North pond')``."""
-        return f"feature {self.feature} ({self.name!r})"
+        return self.drawn_in or f"feature {self.feature} ({self.name!r})"
 
     def drift_vector(self) -> tuple[float, float]:
         """Drift as (east, north) metres per metre travelled in the working frame (``chance`` aside)."""
@@ -219,6 +222,12 @@ class Site:
     warnings: tuple[str, ...] = field(default=())
     #: The site file's bytes as read (empty for a site built from a value in memory).
     data: bytes = field(default=b"", repr=False, compare=False)
+    #: Things said about how the file was read that are no warning (a legacy ``crs``
+    #: member naming WGS 84, a reprojection from the CRS the file names).
+    notes: tuple[str, ...] = field(default=())
+    #: Every input file with the SHA-256 of its bytes, as ``(path, sha256)`` pairs (one
+    #: for a single GeoJSON file; several when site files were merged).
+    inputs: tuple[tuple[str, str], ...] = field(default=())
 
     @property
     def hazards(self) -> tuple[Zone, ...]:
@@ -401,14 +410,22 @@ def load_site(
     return site_from_bytes(read_site_bytes(path, max_bytes=max_bytes), source=str(path), crs=crs, fix=fix)
 
 
-def site_from_bytes(data: bytes, *, source: str, crs: str | None = None, fix: bool = False) -> Site:
+def site_from_bytes(data: bytes, *, source: str, crs: str | None = None, fix: bool = False,
+                    origins: list | None = None, notes: tuple[str, ...] = (),
+                    inputs: tuple[tuple[str, str], ...] | None = None) -> Site:
     """Validate a site file's bytes.
 
     The :class:`Site` keeps them (``data``) with their hash, so what is copied is
-    exactly what was hashed and read.
+    exactly what was hashed and read. ``origins`` (one ``(file and layer, index
+    there)`` per feature) and ``notes`` come from a merge of several site files
+    (:mod:`planner.gis`); ``inputs`` lists the files read, by default ``source``.
     """
     obj, digest = parse_site_bytes(data, source)
-    return dataclasses.replace(site_from_geojson(obj, crs=crs, fix=fix, source=source, sha256=digest), data=data)
+    try:
+        site = _build_site(obj, crs=crs, fix=fix, source=source, sha256=digest, origins=origins, notes=notes)
+    except RecursionError as err:
+        raise SiteError(f"{source}: coordinates are nested too deeply") from err
+    return dataclasses.replace(site, data=data, inputs=((source, digest),) if inputs is None else inputs)
 
 
 def site_from_geojson(
@@ -436,20 +453,12 @@ def site_from_geojson(
         raise SiteError(f"{source}: coordinates are nested too deeply") from err
 
 
-def _build_site(obj, *, crs, fix, source, sha256) -> Site:
-    if not isinstance(obj, dict) or obj.get("type") != "FeatureCollection":
-        kind = obj.get("type") if isinstance(obj, dict) else type(obj).__name__
-        raise SiteError(f"{source}: not a GeoJSON FeatureCollection (found {kind!r})")
-    if "crs" in obj:
-        _check_crs_member(obj["crs"], source)
-    _refuse_repeated(obj, source)
-    _refuse_repeated(obj.get("properties"), f"{source}: top-level properties")
-    features = obj.get("features")
-    if not isinstance(features, list):
-        raise SiteError(f"{source}: 'features' must be a list")
-    _check_schema(obj, source)
-
-    parsed = [_parse_feature(i, f, source) for i, f in enumerate(features)]
+def _build_site(obj, *, crs, fix, source, sha256, origins=None, notes=()) -> Site:
+    features, read_notes = lonlat_features(obj, source)
+    notes = (*notes, *read_notes)
+    if origins is not None and len(origins) != len(features):
+        raise SiteError(f"{source}: {len(origins)} feature origins for {len(features)} features")
+    parsed = [_parse_feature(i, f, source, None if origins is None else origins[i]) for i, f in enumerate(features)]
 
     by_role: dict[str, list] = {r: [] for r in ROLES}
     for item in parsed:
@@ -469,18 +478,18 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
     drawn: dict[str, str] = {}
     for item in parsed:
         if item["role"] == "hazard" and file_key(item["name"]) in reserved:
-            raise SiteError(f"{source}: {item['label']}: hazard name {item['name']!r} is reserved "
+            raise SiteError(f"{item['where']}: hazard name {item['name']!r} is reserved "
                             f"({', '.join(RESERVED_NAMES)} name outcomes in the risk table); rename it")
         if item["role"] in ZONE_ROLES:
             if item["name"] in seen:
                 raise SiteError(
-                    f"{source}: {item['label']}: zone name {item['name']!r} is already used by {seen[item['name']]}"
+                    f"{item['where']}: zone name {item['name']!r} is already used by {seen[item['name']]}"
                 )
             seen[item["name"]] = item["label"]
             # The same zone drawn twice would count twice (two pushes, two entries): refuse it.
             key = json.dumps([item["role"], item["geometry"]], sort_keys=True)
             if key in drawn:
-                raise SiteError(f"{source}: {item['label']}: repeats the {item['role']} zone {drawn[key]} "
+                raise SiteError(f"{item['where']}: repeats the {item['role']} zone {drawn[key]} "
                                 "(same geometry); remove one")
             drawn[key] = item["label"]
     check_unique([(item["label"], item["name"]) for item in parsed if item["role"] in ZONE_ROLES], source)
@@ -489,12 +498,12 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
     lon_b, lat_b = _all_lonlat(boundary_item["geometry"])
     if np.any(np.abs(lat_b) >= 89.5):
         raise SiteError(
-            f"{source}: {boundary_item['label']}: boundary reaches latitude 89.5 or beyond; "
+            f"{boundary_item['where']}: boundary reaches latitude 89.5 or beyond; "
             "sites at a pole are not supported"
         )
     if lon_b.max() - lon_b.min() > 180.0:
         raise SiteError(
-            f"{source}: {boundary_item['label']}: boundary spans more than 180 degrees of longitude "
+            f"{boundary_item['where']}: boundary spans more than 180 degrees of longitude "
             "(it straddles the antimeridian); split the site or name a --crs that covers it"
         )
     frame = _make_frame(crs, lon_b, lat_b)
@@ -520,42 +529,42 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
         if item["role"] == "drift":
             props = dict(props, grid_toward_deg=_grid_bearing(frame, geom, props["toward_deg"]))
         zones.append(Zone(feature=item["index"], name=item["name"], role=item["role"], geometry=geom,
-                          buffered=buffered, **props))
+                          buffered=buffered, drawn_in=item["label"] if origins is not None else "", **props))
 
     # Strictly inside: a start or goal on the boundary line (or a goal area sharing only
     # an edge with it) has no usable cell, and would be accepted by a sloppier test.
     if not boundary.covers(start):
-        raise SiteError(f"{source}: {start_item['label']}: start lies outside the boundary")
+        raise SiteError(f"{start_item['where']}: start lies outside the boundary")
     if not boundary.contains(start):
-        raise SiteError(f"{source}: {start_item['label']}: start lies on the boundary's edge; move it strictly "
+        raise SiteError(f"{start_item['where']}: start lies on the boundary's edge; move it strictly "
                         "inside")
     goal_probe = goal if goal.geom_type == "Point" else goal.representative_point()
     if not boundary.intersects(goal):
-        raise SiteError(f"{source}: {goal_item['label']}: goal lies outside the boundary")
+        raise SiteError(f"{goal_item['where']}: goal lies outside the boundary")
     if not boundary.contains(goal):
-        raise SiteError(f"{source}: {goal_item['label']}: goal is not strictly inside the boundary (on its edge "
+        raise SiteError(f"{goal_item['where']}: goal is not strictly inside the boundary (on its edge "
                         "or partly outside); move it inside")
     if start.equals(goal) or (goal.geom_type != "Point" and goal.covers(start)):
-        raise SiteError(f"{source}: {start_item['label']}: start is at the goal; nothing to plan")
+        raise SiteError(f"{start_item['where']}: start is at the goal; nothing to plan")
     for z in zones:
         if z.role != "hazard":
             continue
         if z.geometry.covers(start):
             if z.ends_run:
-                raise SiteError(f"{source}: {start_item['label']}: start lies inside hazard {z.label}")
+                raise SiteError(f"{start_item['where']}: start lies inside hazard {z.label}")
             site_warnings.append(f"{start_item['label']}: start lies inside hazard {z.label}, which does not end "
                                  "the run; leaving it is charged its penalty")
         elif z.buffered.covers(start) and z.ends_run:
             raise SiteError(
-                f"{source}: {start_item['label']}: start lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
+                f"{start_item['where']}: start lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
             )
         if not z.ends_run:
             continue
         if z.geometry.covers(goal_probe) or (goal.geom_type == "Point" and z.buffered.covers(goal)):
-            raise SiteError(f"{source}: {goal_item['label']}: goal lies inside hazard {z.label}")
+            raise SiteError(f"{goal_item['where']}: goal lies inside hazard {z.label}")
         if goal.geom_type != "Point" and z.buffered.covers(goal):
             raise SiteError(
-                f"{source}: {goal_item['label']}: goal lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
+                f"{goal_item['where']}: goal lies inside the {z.buffer_m:g} m buffer of hazard {z.label}"
             )
 
     hazards = [z for z in zones if z.role == "hazard"]
@@ -578,7 +587,7 @@ def _build_site(obj, *, crs, fix, source, sha256) -> Site:
     return Site(
         name=name, source=source, sha256=sha256, frame=frame, boundary=boundary, start=start, goal=goal,
         start_name=start_item["name"], goal_name=goal_item["name"], zones=tuple(zones),
-        scale_distortion=distortion, warnings=tuple(site_warnings),
+        scale_distortion=distortion, warnings=tuple(site_warnings), notes=tuple(notes),
     )
 
 
@@ -604,9 +613,15 @@ def _overlapping(geometries: list, items: list) -> list[tuple]:
 # ----------------------------------------------------------------------------- features
 
 
-def _parse_feature(index: int, feature: Any, source: str) -> dict:
-    """Check one feature's role, properties and geometry shape (not yet projected)."""
-    where = f"{source}: feature {index}"
+def _parse_feature(index: int, feature: Any, source: str, origin: tuple[str, int] | None = None) -> dict:
+    """Check one feature's role, properties and geometry shape (not yet projected).
+
+    ``origin`` (file and layer, index there) names a feature of a merged collection
+    by where it was drawn. A property whose value is ``null`` counts as absent: GIS
+    editors store a layer as a table, so every feature carries every column.
+    """
+    prefix, local = (source, index) if origin is None else origin
+    where = f"{prefix}: feature {local}"
     if not isinstance(feature, dict) or feature.get("type") != "Feature":
         raise SiteError(f"{where}: not a GeoJSON Feature")
     props = feature.get("properties")
@@ -614,14 +629,17 @@ def _parse_feature(index: int, feature: Any, source: str) -> dict:
         raise SiteError(f"{where}: has no 'properties' object (every feature needs a 'role')")
     raw_name = props.get("name")
     if raw_name is None or (isinstance(raw_name, str) and not raw_name.strip()):
-        name = f"#{index}"
+        name = f"#{local}"
     else:
-        name = clean_name(raw_name, f"{where} ('#{index}')")
-    label = f"feature {index} ({name!r})"
-    where = f"{source}: {label}"
+        name = clean_name(raw_name, f"{where} ('#{local}')")
+    label = f"feature {local} ({name!r})"
+    where = f"{prefix}: {label}"
+    if origin is not None:
+        label = where
     _refuse_repeated(feature, where)
     _refuse_repeated(props, f"{where} properties")
     _refuse_repeated(feature.get("geometry"), f"{where} geometry")
+    props = {k: v for k, v in props.items() if v is not None}
     role = props.get("role")
     if role not in ROLES:
         raise SiteError(f"{where}: unknown role {role!r}; expected one of {', '.join(ROLES)}")
@@ -633,7 +651,7 @@ def _parse_feature(index: int, feature: Any, source: str) -> dict:
     if unknown:
         allowed = ", ".join(sorted(_PROPERTIES[role] - {"role"}))
         raise SiteError(f"{where}: unknown property {unknown[0]!r} for role '{role}' (allowed: {allowed})")
-    geometry = feature.get("geometry")
+    geometry = _single_part(feature.get("geometry"), role)
     if not isinstance(geometry, dict) or geometry.get("type") not in _GEOMETRY_TYPES[role]:
         found = geometry.get("type") if isinstance(geometry, dict) else geometry
         raise SiteError(
@@ -641,15 +659,28 @@ def _parse_feature(index: int, feature: Any, source: str) -> dict:
         )
     _check_coordinates(geometry, where)
     return {
-        "index": index, "name": name, "label": label, "role": role, "geometry": geometry,
+        "index": index, "name": name, "label": label, "where": where, "role": role, "geometry": geometry,
         "props": _zone_properties(role, props, where),
     }
 
 
+def _single_part(geometry, role: str):
+    """A one-part MultiPoint or MultiPolygon as its part, where the role needs a single one.
+
+    GIS layers often store every shape as a multi-part one; a start drawn as a
+    MultiPoint of one point is that point.
+    """
+    if not isinstance(geometry, dict) or role not in ("start", "goal"):
+        return geometry
+    coords = geometry.get("coordinates")
+    kind = {"MultiPoint": "Point", "MultiPolygon": "Polygon"}.get(geometry.get("type"))
+    if kind is not None and isinstance(coords, list) and len(coords) == 1:
+        return {"type": kind, "coordinates": coords[0]}
+    return geometry
+
+
 def _number(props: dict, key: str, where: str, *, default=None, low=None, high=None,
             low_open=False) -> float | None:
-    if key in props and props[key] is None:
-        raise SiteError(f"{where}: '{key}' is null; give a number or leave the property out")
     value = props.get(key, default)
     if value is None:
         return None
@@ -667,8 +698,11 @@ def _number(props: dict, key: str, where: str, *, default=None, low=None, high=N
 def _zone_properties(role: str, props: dict, where: str) -> dict:
     if role == "hazard":
         ends_run = props.get("ends_run", True)
+        # a boolean column of a GIS table comes back as 0/1 (or 0.0/1.0 when it has gaps)
+        if not isinstance(ends_run, bool) and isinstance(ends_run, (int, float)) and ends_run in (0, 1):
+            ends_run = bool(ends_run)
         if not isinstance(ends_run, bool):
-            raise SiteError(f"{where}: 'ends_run' must be true or false, got {ends_run!r}")
+            raise SiteError(f"{where}: 'ends_run' must be true or false (or 1 or 0), got {ends_run!r:.40}")
         return {
             "ends_run": ends_run,
             "penalty_m": _number(props, "penalty_m", where, low=0.0, high=MAX_PENALTY_M),
@@ -731,7 +765,7 @@ def _check_coordinates(geometry: dict, where: str) -> None:
                 raise SiteError(f"{where}: a polygon ring is not closed (first and last positions differ)")
 
 
-def _check_position(pos, where: str) -> None:
+def _check_position(pos, where: str, *, lonlat: bool = True) -> None:
     if not isinstance(pos, list) or not 2 <= len(pos) <= 3:
         raise SiteError(f"{where}: a position must be [lon, lat] or [lon, lat, alt], got {pos!r:.60}")
     for v in pos:
@@ -739,6 +773,8 @@ def _check_position(pos, where: str) -> None:
             raise SiteError(f"{where}: a coordinate is not a number: {v!r:.40}")
         if not _finite(v):
             raise SiteError(f"{where}: a coordinate is not finite ({v!r:.40})")
+    if not lonlat:
+        return
     lon, lat = pos[0], pos[1]
     if abs(lon) > 180.0 and abs(lat) > 90.0:
         raise SiteError(f"{where}: position [{lon}, {lat}] looks projected (metres, not degrees); "
@@ -758,14 +794,120 @@ def _finite(value) -> bool:
         return False
 
 
-def _check_crs_member(member, source: str) -> None:
-    """Accept a legacy ``crs`` member naming WGS 84 lon/lat; refuse any other, advising reprojection."""
-    name = member.get("properties", {}).get("name") if isinstance(member, dict) else None
-    if isinstance(name, str) and name.strip().lower() in LONLAT_CRS_NAMES:
-        return
-    named = f" naming {name!r:.80}" if isinstance(name, str) else ""
-    raise SiteError(f"{source}: has a 'crs' member{named}; RFC 7946 GeoJSON positions are WGS 84 lon/lat, so "
-                    f"{REPROJECT_ADVICE}")
+def crs_member_transform(member, source: str):
+    """What a legacy GeoJSON ``crs`` member means for a file's positions.
+
+    Returns ``(transform, note)``: ``transform`` is None when the member names WGS 84
+    lon/lat (CRS84, or EPSG:4326 with positions in lon/lat order as RFC 7946 has them),
+    else a function taking arrays of x and y in the named CRS to lon and lat (pyproj,
+    ``always_xy``). ``note`` says in one line what was done.
+
+    Raises
+    ------
+    SiteError
+        When the member names no CRS pyproj can resolve, or one that is not horizontal
+        (geographic or projected), with the exact fix.
+    """
+    props = member.get("properties") if isinstance(member, dict) else None
+    name = props.get("name") if isinstance(props, dict) else None
+    fix = ("delete the member if the positions are WGS 84 lon/lat, name the CRS as 'EPSG:NNNN' (for example "
+           f"'urn:ogc:def:crs:EPSG::32632'), or {REPROJECT_ADVICE}")
+    if not isinstance(name, str) or not name.strip():
+        raise SiteError(f"{source}: has a 'crs' member that names no CRS (only the 'name' form is read); {fix}")
+    if name.strip().lower() in LONLAT_CRS_NAMES:
+        return None, (f"{source}: its legacy 'crs' member names {name.strip()!r:.80}, which is WGS 84 lon/lat; "
+                      "positions read as [lon, lat] as RFC 7946 has them")
+    from pyproj import CRS, Transformer
+    from pyproj.exceptions import CRSError
+
+    try:
+        named = CRS.from_user_input(name.strip())
+    except CRSError as err:
+        raise SiteError(f"{source}: has a 'crs' member naming {name!r:.80}, which pyproj cannot resolve; "
+                        f"{fix}") from err
+    if not (named.is_projected or named.is_geographic):
+        raise SiteError(f"{source}: has a 'crs' member naming {name!r:.80}, a {named.type_name}, not a horizontal "
+                        f"CRS; {fix}")
+    transformer = Transformer.from_crs(named, CRS.from_epsg(4326), always_xy=True)
+
+    def transform(x, y):
+        lon, lat = transformer.transform(np.asarray(x, float), np.asarray(y, float))
+        return np.asarray(lon, float), np.asarray(lat, float)
+
+    code = named.to_authority()
+    called = f"{named.name} ({':'.join(code)})" if code else named.name
+    return transform, (f"{source}: positions are in {called} as its 'crs' member says; reprojected to WGS 84 "
+                       "lon/lat with pyproj")
+
+
+def _reproject_positions(geometry, transform, where: str):
+    """A copy of a GeoJSON geometry with every position taken to lon/lat by ``transform``.
+
+    Positions must be 2 or 3 finite numbers; anything else is left for the feature's
+    own checks to name. A third coordinate is kept as it is.
+    """
+    if not isinstance(geometry, dict) or not isinstance(geometry.get("coordinates"), list):
+        return geometry
+    positions: list = []
+
+    def collect(node):
+        if isinstance(node, list) and node and all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                                   for v in node):
+            _check_position(node, where, lonlat=False)
+            positions.append(node)
+        elif isinstance(node, list):
+            for child in node:
+                collect(child)
+
+    collect(geometry["coordinates"])
+    if not positions:
+        return geometry
+    x, y = transform([p[0] for p in positions], [p[1] for p in positions])
+    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        raise SiteError(f"{where}: positions cannot be reprojected to lon/lat from the CRS the file names")
+    moved = {id(p): [float(a), float(b), *p[2:]] for p, a, b in zip(positions, x, y, strict=True)}
+
+    def rebuild(node):
+        if id(node) in moved:
+            return moved[id(node)]
+        return [rebuild(c) for c in node] if isinstance(node, list) else node
+
+    return {**geometry, "coordinates": rebuild(geometry["coordinates"])}
+
+
+def lonlat_features(obj: Any, source: str) -> tuple[list, list[str]]:
+    """The features of a parsed site collection with positions in WGS 84 lon/lat, and notes.
+
+    Checks the collection itself (type, repeated keys, schema version, ``features``)
+    and reads a legacy ``crs`` member (:func:`crs_member_transform`). GeoJSON's
+    ``id``, ``bbox`` and a top-level ``name`` are accepted and not used.
+    """
+    if not isinstance(obj, dict) or obj.get("type") != "FeatureCollection":
+        kind = obj.get("type") if isinstance(obj, dict) else type(obj).__name__
+        raise SiteError(f"{source}: not a GeoJSON FeatureCollection (found {kind!r})")
+    notes = []
+    transform = None
+    if "crs" in obj and obj["crs"] is not None:
+        transform, note = crs_member_transform(obj["crs"], source)
+        notes.append(note)
+    _refuse_repeated(obj, source)
+    _refuse_repeated(obj.get("properties"), f"{source}: top-level properties")
+    features = obj.get("features")
+    if not isinstance(features, list):
+        raise SiteError(f"{source}: 'features' must be a list")
+    _check_schema(obj, source)
+    if transform is not None:
+        features = [_reprojected_feature(i, f, transform, source) for i, f in enumerate(features)]
+    return features, notes
+
+
+def _reprojected_feature(index: int, feature, transform, source: str):
+    if not isinstance(feature, dict) or not isinstance(feature.get("geometry"), dict):
+        return feature
+    props = feature.get("properties")
+    name = props.get("name") if isinstance(props, dict) else None
+    where = f"{source}: feature {index}" + (f" ({name[:100]!r})" if isinstance(name, str) else "")
+    return {**feature, "geometry": _reproject_positions(feature["geometry"], transform, where)}
 
 
 def _location_warnings(frame: Frame, extent_m: tuple[float, float], named_crs: str | None,
@@ -852,7 +994,7 @@ def _make_frame(crs: str | None, lon: np.ndarray, lat: np.ndarray) -> Frame:
 
 def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_warnings: list[str]):
     geometry = item["geometry"]
-    where = f"{source}: {item['label']}"
+    where = f"{item['where']}"
     kind = geometry["type"]
     coords = geometry["coordinates"]
     if kind == "Point":

@@ -369,9 +369,11 @@ BAD_CONTENT = [
     ("not-a-collection", set_top("type", "GeometryCollection"),
      SiteError, r"not a GeoJSON FeatureCollection \(found 'GeometryCollection'\)"),
     ("features-not-a-list", set_top("features", {}), SiteError, r"'features' must be a list"),
-    ("crs-member", set_top("crs", {"type": "name", "properties": {"name": "EPSG:32632"}}),
-     SiteError, r"has a 'crs' member naming 'EPSG:32632'; RFC 7946 GeoJSON positions are WGS 84 lon/lat, so "
-                r"reproject the file to WGS 84 longitude/latitude \(EPSG:4326\)"),
+    ("crs-member", set_top("crs", {"type": "name", "properties": {"name": "EPSG:999999"}}),
+     SiteError, r"has a 'crs' member naming 'EPSG:999999', which pyproj cannot resolve; delete the member if the "
+                r"positions are WGS 84 lon/lat, name the CRS as 'EPSG:NNNN'"),
+    ("crs-member-vertical", set_top("crs", {"type": "name", "properties": {"name": "EPSG:5773"}}),
+     SiteError, r"naming 'EPSG:5773', a Vertical CRS, not a horizontal CRS"),
     ("no-boundary", drop_feature(0), SiteError, r"no feature with role 'boundary' \(exactly one is required\)"),
     ("two-boundaries", add_feature("boundary", "Polygon", rect(0, 0, 50, 50), name="Second yard"),
      SiteError, r"2 features with role 'boundary' \(feature 0 \('Test yard'\) and feature 6 \('Second yard'\)\)"),
@@ -406,7 +408,7 @@ BAD_CONTENT = [
      SiteError, r"feature 3 \('Pond'\): role 'hazard' needs geometry Polygon or MultiPolygon, found 'Point'"),
     ("boundary-as-line", set_geometry(0, "LineString", to_lonlat([(0, 0), (100, 60)])),
      SiteError, r"feature 0 \('Test yard'\): role 'boundary' needs geometry Polygon or MultiPolygon"),
-    ("goal-as-multipolygon", set_geometry(2, "MultiPolygon", [rect(85, 25, 95, 35)]),
+    ("goal-as-multipolygon", set_geometry(2, "MultiPolygon", [rect(85, 25, 95, 35), rect(70, 25, 75, 35)]),
      SiteError, r"feature 2 \('Target'\): role 'goal' needs geometry Point or Polygon, found 'MultiPolygon'"),
     ("no-geometry", set_top("features", [feature("boundary", "Polygon", rect(0, 0, 100, 60), name="Test yard")]
                             + [{"type": "Feature", "properties": {"role": "start", "name": "Launch"},
@@ -477,7 +479,11 @@ BAD_CONTENT = [
     ("negative-penalty", set_prop(3, "penalty_m", -10.0),
      SiteError, r"feature 3 \('Pond'\): 'penalty_m' must be >= 0, got -10"),
     ("ends-run-not-boolean", set_prop(3, "ends_run", "yes"),
-     SiteError, r"feature 3 \('Pond'\): 'ends_run' must be true or false, got 'yes'"),
+     SiteError, r"feature 3 \('Pond'\): 'ends_run' must be true or false \(or 1 or 0\), got 'yes'"),
+    ("ends-run-two", set_prop(3, "ends_run", 2),
+     SiteError, r"feature 3 \('Pond'\): 'ends_run' must be true or false \(or 1 or 0\), got 2"),
+    ("unknown-property-not-null", set_prop(0, "buffer_m", 0.0),
+     SiteError, r"feature 0 \('Test yard'\): unknown property 'buffer_m' for role 'boundary'"),
     ("cost-factor-below-one", set_prop(5, "cost_factor", 0.5),
      SiteError, r"feature 5 \('Gravel'\): 'cost_factor' must be >= 1, got 0.5"),
     ("no-cost-factor", drop_prop(5, "cost_factor"),
@@ -698,3 +704,105 @@ def test_a_site_at_null_island_or_of_continental_size_is_warned_about(site_dict)
         feature("start", "Point", [0.1, 0.3], name="S"), feature("goal", "Point", [0.8, 0.3], name="G")]}
     with pytest.warns(SiteWarning, match=r"far larger than a test yard"):
         site_from_geojson(local)
+
+
+# ----------------------------------------------------------------------------- read as GIS editors save
+
+
+#: Every column a GIS table of the small test site has (a layer stores every feature's
+#: attributes in one table).
+ALL_COLUMNS = ("role", "name", "ends_run", "penalty_m", "buffer_m", "cost_factor", "toward_deg", "from_deg",
+               "drift_per_m", "spread_per_sqrt_m", "chance")
+
+
+def _zones_as_data(site):
+    return [(z.role, z.name, z.ends_run, z.penalty_m, z.buffer_m, z.cost_factor, z.toward_deg, z.drift_per_m,
+             z.spread_per_sqrt_m, z.chance, z.geometry.wkt) for z in site.zones]
+
+
+def test_null_properties_count_as_absent_as_a_gis_table_writes_them(site_dict):
+    table = copy.deepcopy(site_dict)
+    for f in table["features"]:
+        f["properties"] = {c: f["properties"].get(c) for c in ALL_COLUMNS}
+    original, read = site_from_geojson(site_dict), site_from_geojson(table)
+    assert _zones_as_data(read) == _zones_as_data(original)
+    assert read.boundary.equals(original.boundary) and read.start.equals(original.start)
+
+
+@pytest.mark.parametrize("value", [0, 0.0, 1, 1.0])
+def test_zero_and_one_are_booleans_for_ends_run(site_dict, value):
+    site_dict["features"][3]["properties"]["ends_run"] = value
+    (pond,) = site_from_geojson(site_dict).hazards
+    assert pond.ends_run is bool(value)
+
+
+@pytest.mark.parametrize("name", ["urn:ogc:def:crs:OGC:1.3:CRS84", "EPSG:4326", "urn:ogc:def:crs:EPSG::4326"])
+def test_a_crs_member_naming_wgs84_lonlat_is_accepted_with_a_note(site_dict, name):
+    plain = site_from_geojson(copy.deepcopy(site_dict))
+    site_dict["crs"] = {"type": "name", "properties": {"name": name}}
+    site = site_from_geojson(site_dict)
+    assert site.boundary.equals(plain.boundary)
+    assert len(site.notes) == 1 and name in site.notes[0] and "WGS 84 lon/lat" in site.notes[0]
+    assert not site.warnings
+
+
+def _to_projected(data, crs):
+    t = Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+
+    def walk(node):
+        if node and isinstance(node[0], (int, float)):
+            return list(t.transform(node[0], node[1]))
+        return [walk(n) for n in node]
+
+    for f in data["features"]:
+        f["geometry"]["coordinates"] = walk(f["geometry"]["coordinates"])
+    data["crs"] = {"type": "name", "properties": {"name": f"urn:ogc:def:crs:{crs.replace(':', '::')}"}}
+    return data
+
+
+def test_a_crs_member_naming_a_projected_crs_is_reprojected_and_said(site_dict):
+    plain = site_from_geojson(copy.deepcopy(site_dict))
+    site = site_from_geojson(_to_projected(site_dict, "EPSG:32632"))
+    (note,) = site.notes
+    assert "WGS 84 / UTM zone 32N (EPSG:32632)" in note and "reprojected to WGS 84 lon/lat with pyproj" in note
+    # the same site to well under a millimetre: UTM there and back is exact to round-off
+    assert site.boundary.symmetric_difference(plain.boundary).area < 1e-6
+    assert site.start.distance(plain.start) < 1e-6 and site.goal.distance(plain.goal) < 1e-6
+    assert_allclose(site.centre_lonlat, plain.centre_lonlat, atol=1e-9)
+
+
+def test_a_malformed_position_in_a_projected_file_names_the_feature(site_dict):
+    data = _to_projected(site_dict, "EPSG:32632")
+    data["features"][3]["geometry"]["coordinates"][0][1] = [500000.0, "north"]
+    with pytest.raises(SiteError, match=r"feature 3 \('Pond'\): a coordinate is not a number"):
+        site_from_geojson(data)
+
+
+def test_geojson_id_bbox_and_a_collection_name_are_accepted(site_dict):
+    site_dict["name"] = "yard layer"
+    site_dict["bbox"] = [9.2, 47.3, 9.3, 47.5]
+    for k, f in enumerate(site_dict["features"]):
+        f["id"] = k
+        f["bbox"] = [9.2, 47.3, 9.3, 47.5]
+    assert site_from_geojson(site_dict).name == "Test yard"
+
+
+def test_a_one_part_multipolygon_goal_and_multipoint_start_are_their_part(site_dict):
+    plain = site_from_geojson(copy.deepcopy(site_dict))
+    start = site_dict["features"][1]["geometry"]
+    site_dict["features"][1]["geometry"] = {"type": "MultiPoint", "coordinates": [start["coordinates"]]}
+    site = site_from_geojson(site_dict)
+    assert site.start.equals(plain.start)
+    set_geometry(2, "MultiPolygon", [rect(85, 25, 95, 35)])(site_dict)
+    assert site_from_geojson(site_dict).goal.geom_type == "Polygon"
+
+
+def test_duplicate_keys_stay_errors_when_nulls_are_allowed(tmp_path):
+    from conftest import small_site_dict
+
+    data = json.dumps(small_site_dict())
+    data = data.replace('"buffer_m": 2.0', '"buffer_m": null, "buffer_m": 2.0')
+    path = tmp_path / "dup.geojson"
+    path.write_text(data)
+    with pytest.raises(SiteError, match=r"feature 3 \('Pond'\) properties: key 'buffer_m' appears more than once"):
+        load_site(path)
