@@ -422,11 +422,11 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     ``site_path`` with these settings, are used instead of doing it again.
     """
     from planner.exact import on_policy_q, optimal_q
+    from planner.gis import load_sites
     from planner.grid import cost_to_goal, rasterise
     from planner.learn import learned_ties, train
     from planner.model import build_model
     from planner.route import nominal_path
-    from planner.site import load_site
     from planner.ties import check_tie_tolerance, equally_good, safest_among
     from planner.verdict import convergence_report, risk_verdict
 
@@ -434,7 +434,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     timings = {}
     t = time.perf_counter()
     if site is None:
-        site = load_site(site_path, crs=settings.crs, fix=settings.fix, max_bytes=settings.max_bytes)
+        site = load_sites(site_path, crs=settings.crs, fix=settings.fix, max_bytes=settings.max_bytes)
     if grid is None:
         grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
@@ -680,7 +680,8 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
         raise RunFolderError(f"{result.site.source}: the site was not read from a file, so there are no bytes to "
                              "copy into the run folder; load it with planner.site.load_site")
     if hashlib.sha256(data).hexdigest() != result.site.sha256:
-        raise RunFolderError(f"{site_path}: the site's bytes in memory do not match its hash; nothing was written")
+        raise RunFolderError(f"{site_paths_text(site_path)}: the site's bytes in memory do not match its hash; "
+                             "nothing was written")
     (folder / "site.geojson").write_bytes(data)
     arrays = {
         "greedy_cautious": result.greedy["cautious"].astype(np.int64),
@@ -803,6 +804,13 @@ def _verdict_record(verdict, reference) -> dict | None:
     }
 
 
+def site_paths_text(site_path) -> str:
+    """The site file, or the files merged into the site (joined by ' + '), as the manifest names them."""
+    if isinstance(site_path, (str, Path)):
+        return str(site_path)
+    return " + ".join(str(p) for p in site_path)
+
+
 def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder: Path) -> dict:
     """The manifest: inputs with hashes, settings, seeds, versions, results in brief."""
     root = result.root_seed
@@ -837,8 +845,9 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
         "created_utc": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "notice": "For simulation and review only; not approved for field operation. Follow the site's safety "
                   "rules, certified operators and local regulations.",
-        "input": {"site": str(site_path), "site_copy": "site.geojson", "sha256": result.site.sha256,
-                  "name": result.site.name},
+        "input": {"site": site_paths_text(site_path), "site_copy": "site.geojson", "sha256": result.site.sha256,
+                  "name": result.site.name,
+                  "files": [{"path": path, "sha256": digest} for path, digest in result.site.inputs]},
         "settings": settings_record(settings),
         "seeds": {"entropy": str(root.entropy), "spawn": {"cautious": 0, "shortest": 1, "risk": 2},
                   "given": settings.seed},

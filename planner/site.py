@@ -901,6 +901,24 @@ def lonlat_features(obj: Any, source: str) -> tuple[list, list[str]]:
     return features, notes
 
 
+def plain_feature(index: int, feature, source: str):
+    """A feature as the merged site copy keeps it: type, non-null properties and geometry.
+
+    Repeated keys are refused here, where the file's own parse still knows them; what
+    is not a Feature is passed on unchanged for the site checks to name.
+    """
+    if not isinstance(feature, dict) or not isinstance(feature.get("properties"), dict):
+        return feature
+    props = feature["properties"]
+    name = props.get("name")
+    where = f"{source}: feature {index}" + (f" ({name[:100]!r})" if isinstance(name, str) else "")
+    _refuse_repeated(feature, where)
+    _refuse_repeated(props, f"{where} properties")
+    _refuse_repeated(feature.get("geometry"), f"{where} geometry")
+    return {"type": feature.get("type"), "properties": {k: v for k, v in props.items() if v is not None},
+            "geometry": feature.get("geometry")}
+
+
 def _reprojected_feature(index: int, feature, transform, source: str):
     if not isinstance(feature, dict) or not isinstance(feature.get("geometry"), dict):
         return feature

@@ -66,7 +66,9 @@ def finite(low=None, high=None, *, low_open: bool = False, high_open: bool = Fal
     return Finite(low, high, min_open=low_open, max_open=high_open)
 
 
-site_argument = click.argument("site", type=click.Path(dir_okay=False, path_type=str))
+#: One or more site files: GeoJSON, or with the gis extra any vector format GDAL reads;
+#: several are merged into one site (a boundary in one, hazards in another).
+site_argument = click.argument("site", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=str))
 run_argument = click.argument("run", type=click.Path(path_type=str))
 
 

@@ -92,6 +92,10 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
          grid_levels):
     """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
+    SITE is one or more site files (GeoJSON, or with the gis extra any vector format
+    GDAL reads), merged into one site; the run folder keeps the merged site as
+    site.geojson and the manifest hashes every file.
+
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
     shortest with Q-learning, checks both against exact value iteration, computes the
     risk table (exact, with a Monte Carlo cross-check) over noise levels and drift

@@ -20,10 +20,12 @@ from planner.cli.options import (
 
 def load_site_and_spec(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells):
     """Read the site and make the grid settings (the cell size defaults from the site)."""
+    from planner.gis import load_sites
     from planner.grid import GridSpec, default_cell_m, grid_shape
-    from planner.site import load_site
 
-    loaded = load_site(site, crs=crs, fix=fix, max_bytes=max_bytes)
+    loaded = load_sites(site, crs=crs, fix=fix, max_bytes=max_bytes)
+    for note in loaded.notes:
+        click.echo(f"veerwise: note: {note}", err=True)
     if cell_m is None:
         cell_m = default_cell_m(loaded)
     spec = GridSpec(cell_m=cell_m, hazard_overlap=hazard_overlap, boundary_cover=boundary_cover,
@@ -56,7 +58,7 @@ def make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m, 
 @dynamics_options
 def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max_cells, n_actions, move_m, slip,
           stall, drift_scale, edge, penalty_m, as_json):
-    """Validate SITE and print its summary.
+    """Validate SITE (one or more files, merged) and print its summary.
 
     Reports where on Earth the site is (its centre in lat/lon), the working frame and
     its largest scale distortion, the extent in metres, the zones by role, the grid
@@ -64,10 +66,15 @@ def check(site, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover, max
     swapped or projected among them). Exit code 2 and one line naming the feature when
     the site is invalid.
 
+    SITE is GeoJSON, or with the gis extra any vector format GDAL reads (a GeoPackage
+    with one layer per role, a Shapefile, ...). Several files are merged into one site:
+    a boundary in one, hazards in another.
+
     \b
     Examples:
       veerwise check maps/ground-yard.geojson
       veerwise check maps/drone-range.geojson --cell 5 --json
+      veerwise check yard-outline.gpkg hazards.geojson
     """
     from planner.model import site_summary
 
