@@ -1,8 +1,13 @@
 """Waypoint files: GeoJSON (RFC 7946), CSV and GPX 1.1 routes, for simulators only.
 
-This stage owns the waypoint file formats. Every file says, in a field or comment that
-survives its format, that it is for simulation only and not approved for field
-operation. Files are written atomically (a temporary file in the same folder, then
+This stage owns the waypoint file formats. Every file says, in a field that survives
+its format, that it is for simulation only and not approved for field operation: the
+GeoJSON ``use`` property, the CSV's ``use`` column and its sidecar text file, the GPX
+descriptions. Every CSV starts with its header line, so data tools read it with their
+defaults. Heights mean what each format says (see :mod:`planner.elevation`): the
+altitude above ground has a named field of its own, GPX ``<ele>`` is an elevation above
+sea level and a GeoJSON third coordinate a height above the WGS 84 ellipsoid, each
+written only when the ground elevation is known. Files are written atomically (a temporary file in the same folder, then
 ``os.replace``) and deterministically: the same routes give byte-identical files, and
 nothing time-dependent is written unless the caller passes it in.
 """
@@ -37,9 +42,16 @@ GPX_NAMESPACE = "http://www.topografix.com/GPX/1/1"
 LONLAT_DECIMALS = 9
 #: Decimals of metres (positions, lengths, clearances, altitude) in every file.
 METRE_DECIMALS = 3
-#: Columns of the waypoint CSV, in order (``alt_m`` is inserted after ``lat`` when set).
+#: Columns of the waypoint CSV, in order; the height columns (:data:`HEIGHT_COLUMNS`)
+#: follow ``lat`` when they have values, and ``use`` (the notice) is always last.
 CSV_COLUMNS = ("policy", "seq", "east_m", "north_m", "lon", "lat", "leg_m", "cumulative_m",
-               "clearance_m", "nearest_hazard")
+               "clearance_m", "nearest_hazard", "use")
+#: Height columns and properties: altitude above ground, ground elevation and its datum,
+#: elevation above sea level (GPX ``ele``), height above the WGS 84 ellipsoid.
+HEIGHT_COLUMNS = ("alt_above_ground_m", "ground_elevation_m", "vertical_datum", "elevation_m",
+                  "ellipsoidal_height_m")
+#: Namespace of our GPX extension elements (GPX 1.1 allows any in ``<extensions>``).
+GPX_EXTENSION_NAMESPACE = "urn:veerwise:gpx-extensions:1"
 
 
 def _check_alt(alt_m) -> float | None:
@@ -92,35 +104,65 @@ def _lon_normalised(lon: float) -> float:
 # ----------------------------------------------------------------------------- GeoJSON
 
 
-def to_geojson(route_or_routes, *, site, alt_m: float | None = None) -> dict:
+def _height_records(route: Route, alt_m: float | None, ground) -> dict:
+    """Per waypoint heights of one route (see :func:`planner.elevation.heights`), rounded to mm."""
+    from planner.elevation import heights
+
+    found = heights(ground, [w.lon for w in route.waypoints], [w.lat for w in route.waypoints], alt_m)
+    for key in ("ground_m", "sea_level_m", "ellipsoidal_m"):
+        if found[key] is not None:
+            found[key] = [_metres(v) for v in found[key]]
+    found["datum"] = ground.datum_name if ground is not None else None
+    return found
+
+
+def heights_said(alt_m: float | None, ground, found: dict, what: str) -> str:
+    """One sentence on what a file's heights are, or why it has none."""
+    above = (f"altitude {alt_m:.{METRE_DECIMALS}f} m above ground in alt_above_ground_m" if alt_m is not None
+             else "no altitude above ground given (--alt-m)")
+    key, reason = {"ele": ("sea_level_m", "no_sea_level"), "z": ("ellipsoidal_m", "no_ellipsoidal")}[what]
+    if found[key] is None:
+        target = "no <ele>" if what == "ele" else "no third coordinate"
+        return f"{above}; {target}: {found[reason]}"
+    kind = ("<ele> is the elevation above sea level" if what == "ele"
+            else "the third coordinate is the height above the WGS 84 ellipsoid (RFC 7946 section 4)")
+    return f"{above}; {kind}, from the ground elevation ({ground.described}) plus the altitude above ground"
+
+
+def to_geojson(route_or_routes, *, site, alt_m: float | None = None, ground=None) -> dict:
     """The routes as an RFC 7946 FeatureCollection (a plain dict, JSON-ready).
 
     Per route: one LineString feature through its waypoints (``geometry`` is ``null``
     when the route has a single waypoint, since a LineString needs two positions) and
-    one Point feature per waypoint. Positions are ``[lon, lat]`` (``[lon, lat, alt]``
-    with ``alt_m``) rounded to 9 decimals. Every feature's properties carry ``use``,
-    the simulation-only notice; so does the collection (a foreign member).
+    one Point feature per waypoint. Positions are ``[lon, lat]`` rounded to 9
+    decimals; a third coordinate, the height above the WGS 84 ellipsoid (RFC 7946
+    section 4), only when the ground elevation is known (``ground``, a
+    :class:`planner.elevation.Ground`) in that datum or convertible to it. Every
+    feature's properties carry ``use``, the simulation-only notice, and the heights
+    by name (``alt_above_ground_m``, ``ground_elevation_m``, ``vertical_datum``,
+    ``elevation_m``, ``ellipsoidal_height_m``); so does the collection (foreign
+    members ``use`` and ``heights``, the latter saying what the positions hold).
 
     Parameters
     ----------
     route_or_routes : a :class:`~planner.route.Route` or several (distinct names).
     site : the :class:`~planner.site.Site` the routes were planned on (its name and
         input hash are recorded).
-    alt_m : constant altitude above ground level, metres, added as a third coordinate.
+    alt_m : constant altitude above ground level, metres.
+    ground : the ground elevation and its vertical datum, or None (no heights).
     """
     routes = _routes(route_or_routes)
     alt_m = _check_alt(alt_m)
     use = notice(alt_m)
 
-    def position(w) -> list[float]:
-        pos = [_degrees(_lon_normalised(w.lon)), _degrees(w.lat)]
-        if alt_m is not None:
-            pos.append(_metres(alt_m))
-        return pos
-
     features = []
+    said = None
     for r in routes:
-        coords = [position(w) for w in r.waypoints]
+        found = _height_records(r, alt_m, ground)
+        said = said or heights_said(alt_m, ground, found, "z")
+        z = found["ellipsoidal_m"]
+        coords = [[_degrees(_lon_normalised(w.lon)), _degrees(w.lat), *([z[k]] if z is not None else [])]
+                  for k, w in enumerate(r.waypoints)]
         features.append({
             "type": "Feature",
             "geometry": {"type": "LineString", "coordinates": coords} if len(coords) >= 2 else None,
@@ -128,30 +170,41 @@ def to_geojson(route_or_routes, *, site, alt_m: float | None = None) -> dict:
                 "kind": "route", "policy": r.name, "reached_goal": r.reached_goal, "end_event": r.end_event,
                 "n_moves": r.n_moves, "cell_path_m": _metres(r.length_m), "length_m": _metres(r.waypoint_length_m),
                 "n_waypoints": len(r.waypoints), "min_clearance_m": _clearance(r.min_clearance_m),
-                "min_clearance_hazard": r.min_clearance_hazard, "alt_m_above_ground": alt_m, "use": use,
+                "min_clearance_hazard": r.min_clearance_hazard, "alt_above_ground_m": alt_m,
+                "vertical_datum": found["datum"], "use": use,
             },
         })
-        for w, pos in zip(r.waypoints, coords, strict=True):
+        for k, (w, pos) in enumerate(zip(r.waypoints, coords, strict=True)):
             features.append({
                 "type": "Feature",
                 "geometry": {"type": "Point", "coordinates": pos},
                 "properties": {
                     "kind": "waypoint", "policy": r.name, "seq": w.seq, "east_m": _metres(w.east_m),
                     "north_m": _metres(w.north_m), "leg_m": _metres(w.leg_m), "cumulative_m": _metres(w.cumulative_m),
-                    "clearance_m": _clearance(w.clearance_m), "nearest_hazard": w.nearest_hazard, "use": use,
+                    "clearance_m": _clearance(w.clearance_m), "nearest_hazard": w.nearest_hazard,
+                    "alt_above_ground_m": alt_m, **_height_fields(found, k), "use": use,
                 },
             })
     return {
         "type": "FeatureCollection",
         "use": use,
+        "heights": said,
         "site": {"name": site.name, "sha256": site.sha256},
         "features": features,
     }
 
 
-def geojson_text(route_or_routes, *, site, alt_m: float | None = None) -> str:
+def _height_fields(found: dict, k: int) -> dict:
+    def at(key):
+        return found[key][k] if found[key] is not None else None
+
+    return {"ground_elevation_m": at("ground_m"), "vertical_datum": found["datum"], "elevation_m": at("sea_level_m"),
+            "ellipsoidal_height_m": at("ellipsoidal_m")}
+
+
+def geojson_text(route_or_routes, *, site, alt_m: float | None = None, ground=None) -> str:
     """:func:`to_geojson` as the exact text :func:`write_geojson` writes."""
-    obj = to_geojson(route_or_routes, site=site, alt_m=alt_m)
+    obj = to_geojson(route_or_routes, site=site, alt_m=alt_m, ground=ground)
 
     def dump(value) -> str:
         # allow_nan=False: a NaN or inf that slipped through would make the file invalid JSON.
@@ -163,9 +216,9 @@ def geojson_text(route_or_routes, *, site, alt_m: float | None = None) -> str:
     return f'{head[:-1]}, "features": [\n{body}\n]}}\n'
 
 
-def write_geojson(route_or_routes, path, *, site, alt_m: float | None = None) -> Path:
+def write_geojson(route_or_routes, path, *, site, alt_m: float | None = None, ground=None) -> Path:
     """Write :func:`to_geojson` to ``path`` atomically; returns the path."""
-    return _write_atomic(path, geojson_text(route_or_routes, site=site, alt_m=alt_m))
+    return _write_atomic(path, geojson_text(route_or_routes, site=site, alt_m=alt_m, ground=ground))
 
 
 def read_waypoints_geojson(path, *, policy: str | None = None) -> list[tuple[float, float]]:
@@ -210,44 +263,84 @@ def read_waypoints_geojson(path, *, policy: str | None = None) -> list[tuple[flo
 # ----------------------------------------------------------------------------- CSV
 
 
-def csv_text(route: Route, *, alt_m: float | None = None) -> str:
-    """The waypoint CSV as text: ``#`` notice lines, a header row, one row per waypoint.
+def csv_text(route: Route, *, alt_m: float | None = None, ground=None) -> str:
+    """The waypoint CSV as text: a header line, then one row per waypoint.
 
-    Fixed decimals: east/north and lengths 3, lon/lat 9. ``clearance_m`` and
-    ``nearest_hazard`` are empty when the site has no hazards.
+    Fixed decimals: east/north, lengths and heights 3, lon/lat 9. ``clearance_m``
+    and ``nearest_hazard`` are empty when the site has no hazards. The height columns
+    (:data:`HEIGHT_COLUMNS`) are there only when they have values; ``use``, the
+    simulation-only notice, is on every row. No comment lines: what used to be said
+    in them is in the sidecar text file (:func:`csv_sidecar_text`).
     """
     (route,) = _routes([route])
     alt_m = _check_alt(alt_m)
+    found = _height_records(route, alt_m, ground)
+    present = {"alt_above_ground_m": alt_m is not None, "ground_elevation_m": found["ground_m"] is not None,
+               "vertical_datum": found["ground_m"] is not None, "elevation_m": found["sea_level_m"] is not None,
+               "ellipsoidal_height_m": found["ellipsoidal_m"] is not None}
     columns = list(CSV_COLUMNS)
-    if alt_m is not None:
-        columns.insert(columns.index("lat") + 1, "alt_m")
+    at = columns.index("lat") + 1
+    columns[at:at] = [c for c in HEIGHT_COLUMNS if present[c]]
     buf = io.StringIO()
-    buf.write(f"# {notice(alt_m)}\n")
-    clearance = "none" if not math.isfinite(route.min_clearance_m) else (
-        f"{route.min_clearance_m:.{METRE_DECIMALS}f} m ({route.min_clearance_hazard})")
-    buf.write(f"# policy {route.name}: reached goal {'yes' if route.reached_goal else 'no'} "
-              f"(ended: {route.end_event}), {len(route.waypoints)} waypoints, "
-              f"{route.waypoint_length_m:.{METRE_DECIMALS}f} m, least clearance to a hazard {clearance}\n")
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(columns)
     m, d = METRE_DECIMALS, LONLAT_DECIMALS
-    for w in route.waypoints:
+    use = notice(alt_m)
+    for k, w in enumerate(route.waypoints):
+        heights = _height_fields(found, k)
         row = {
             "policy": route.name, "seq": str(w.seq), "east_m": f"{w.east_m:.{m}f}", "north_m": f"{w.north_m:.{m}f}",
             "lon": f"{_lon_normalised(w.lon):.{d}f}", "lat": f"{w.lat:.{d}f}", "leg_m": f"{w.leg_m:.{m}f}",
             "cumulative_m": f"{w.cumulative_m:.{m}f}",
             "clearance_m": f"{w.clearance_m:.{m}f}" if math.isfinite(w.clearance_m) else "",
-            "nearest_hazard": csv_cell(w.nearest_hazard or ""),
+            "nearest_hazard": csv_cell(w.nearest_hazard or ""), "use": use,
+            "alt_above_ground_m": f"{alt_m:.{m}f}" if alt_m is not None else "",
+            "vertical_datum": csv_cell(heights["vertical_datum"] or ""),
         }
-        if alt_m is not None:
-            row["alt_m"] = f"{alt_m:.{m}f}"
+        for key in ("ground_elevation_m", "elevation_m", "ellipsoidal_height_m"):
+            row[key] = f"{heights[key]:.{m}f}" if heights[key] is not None else ""
         writer.writerow([row[c] for c in columns])
     return buf.getvalue()
 
 
-def write_csv(route: Route, path, *, alt_m: float | None = None) -> Path:
-    """Write :func:`csv_text` of one route to ``path`` atomically; returns the path."""
-    return _write_atomic(path, csv_text(route, alt_m=alt_m))
+def sidecar_path(csv_path) -> Path:
+    """The text file beside a waypoint CSV: the same name with ``.txt`` for ``.csv``."""
+    return Path(csv_path).with_suffix(".txt")
+
+
+def csv_sidecar_text(route: Route, *, alt_m: float | None = None, ground=None) -> str:
+    """What a waypoint CSV's sidecar says: the notice, the route in one line, the columns, the heights."""
+    (route,) = _routes([route])
+    alt_m = _check_alt(alt_m)
+    found = _height_records(route, alt_m, ground)
+    clearance = "none" if not math.isfinite(route.min_clearance_m) else (
+        f"{route.min_clearance_m:.{METRE_DECIMALS}f} m ({route.min_clearance_hazard})")
+    lines = [
+        f"{notice(alt_m).capitalize()}.",
+        "",
+        f"Policy {route.name}: reached goal {'yes' if route.reached_goal else 'no'} (ended: {route.end_event}), "
+        f"{len(route.waypoints)} waypoints, {route.waypoint_length_m:.{METRE_DECIMALS}f} m, least clearance to a "
+        f"hazard {clearance}.",
+        "",
+        "Columns: policy; seq (waypoint number from 0); east_m, north_m (metres in the working frame); lon, lat "
+        "(WGS 84 degrees); leg_m, cumulative_m (metres along the waypoints); clearance_m, nearest_hazard (to the "
+        "nearest hazard's drawn outline); use (this notice, on every row).",
+        f"Heights: {heights_said(alt_m, ground, found, 'ele')}.",
+    ]
+    if found["ground_m"] is not None:
+        lines.append("Height columns: alt_above_ground_m, ground_elevation_m and vertical_datum (the ground's "
+                     "datum), elevation_m (above sea level) and ellipsoidal_height_m (above the WGS 84 ellipsoid) "
+                     "where they could be worked out.")
+    return "\n".join(lines) + "\n"
+
+
+def write_csv(route: Route, path, *, alt_m: float | None = None, ground=None) -> Path:
+    """Write :func:`csv_text` of one route to ``path`` and its sidecar beside it, atomically; returns the path.
+
+    The sidecar (:func:`sidecar_path`) is written first, so a CSV is never without it.
+    """
+    _write_atomic(sidecar_path(path), csv_sidecar_text(route, alt_m=alt_m, ground=ground))
+    return _write_atomic(path, csv_text(route, alt_m=alt_m, ground=ground))
 
 
 # ----------------------------------------------------------------------------- GPX
@@ -264,29 +357,33 @@ def _gpx_time(time) -> str:
     return time.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def gpx_text(routes, *, alt_m: float | None = None, time=None, name: str | None = None) -> str:
+def gpx_text(routes, *, alt_m: float | None = None, time=None, name: str | None = None, ground=None) -> str:
     """The routes as a GPX 1.1 document: ``<metadata>`` then one ``<rte>`` per policy.
 
     Element order follows the GPX 1.1 schema: in ``metadata`` name, desc, time, bounds;
-    in ``rte`` name, desc, rtept; in ``rtept`` ele (only with ``alt_m``, metres above
-    ground level as the notice says), then name. The notice is in ``<metadata><desc>``
-    and in every ``<rte><desc>``. ``time`` (aware datetime or ISO 8601 text) is written
-    only when given.
+    in ``rte`` name, desc, rtept; in ``rtept`` ele, name, cmt, extensions. ``<ele>``
+    (the elevation above sea level) is written only when the ground elevation is known
+    (``ground``); otherwise the metadata says why it is left out. The altitude above
+    ground goes in ``<cmt>`` and in our extension element ``alt_above_ground_m``. The
+    notice is in ``<metadata><desc>`` and in every ``<rte><desc>``. ``time`` (aware
+    datetime or ISO 8601 text) is written only when given.
     """
     routes = _routes(routes)
     alt_m = _check_alt(alt_m)
     text = notice(alt_m)
-    d = LONLAT_DECIMALS
+    d, m = LONLAT_DECIMALS, METRE_DECIMALS
+    found = {r.name: _height_records(r, alt_m, ground) for r in routes}
+    said = heights_said(alt_m, ground, found[routes[0].name], "ele")
     lats = [w.lat for r in routes for w in r.waypoints]
     lons = [_lon_normalised(w.lon) for r in routes for w in r.waypoints]
     lines = [
         '<?xml version="1.0" encoding="UTF-8"?>',
-        f'<gpx xmlns="{GPX_NAMESPACE}" version="1.1" creator="veerwise">',
+        f'<gpx xmlns="{GPX_NAMESPACE}" xmlns:vw="{GPX_EXTENSION_NAMESPACE}" version="1.1" creator="veerwise">',
         " <metadata>",
     ]
     if name is not None:
         lines.append(f"  <name>{escape(name)}</name>")
-    lines.append(f"  <desc>{escape(text)}</desc>")
+    lines.append(f"  <desc>{escape(f'{text}. Heights: {said}')}</desc>")
     if time is not None:
         lines.append(f"  <time>{_gpx_time(time)}</time>")
     lines.append(f'  <bounds minlat="{min(lats):.{d}f}" minlon="{min(lons):.{d}f}" '
@@ -295,20 +392,29 @@ def gpx_text(routes, *, alt_m: float | None = None, time=None, name: str | None 
     for r in routes:
         lines += [" <rte>", f"  <name>{escape(r.name)}</name>",
                   f"  <desc>{escape(f'{r.name} route: {text}')}</desc>"]
-        for w in r.waypoints:
+        heights = found[r.name]
+        for k, w in enumerate(r.waypoints):
             lines.append(f'  <rtept lat="{w.lat:.{d}f}" lon="{_lon_normalised(w.lon):.{d}f}">')
-            if alt_m is not None:
-                lines.append(f"   <ele>{alt_m:.{METRE_DECIMALS}f}</ele>")
+            if heights["sea_level_m"] is not None:
+                lines.append(f"   <ele>{heights['sea_level_m'][k]:.{m}f}</ele>")
             lines.append(f"   <name>{escape(f'{r.name}-{w.seq:03d}')}</name>")
+            if alt_m is not None:
+                lines.append(f"   <cmt>{alt_m:.{m}f} m above ground level</cmt>")
+                lines.append("   <extensions>")
+                lines.append(f"    <vw:alt_above_ground_m>{alt_m:.{m}f}</vw:alt_above_ground_m>")
+                if heights["ground_m"] is not None:
+                    lines.append(f"    <vw:ground_elevation_m>{heights['ground_m'][k]:.{m}f}</vw:ground_elevation_m>")
+                lines.append("   </extensions>")
             lines.append("  </rtept>")
         lines.append(" </rte>")
     lines.append("</gpx>")
     return "\n".join(lines) + "\n"
 
 
-def write_gpx(routes, path, *, alt_m: float | None = None, time=None, name: str | None = None) -> Path:
+def write_gpx(routes, path, *, alt_m: float | None = None, time=None, name: str | None = None,
+              ground=None) -> Path:
     """Write :func:`gpx_text` to ``path`` atomically; returns the path."""
-    return _write_atomic(path, gpx_text(routes, alt_m=alt_m, time=time, name=name))
+    return _write_atomic(path, gpx_text(routes, alt_m=alt_m, time=time, name=name, ground=ground))
 
 
 # ----------------------------------------------------------------------------- files

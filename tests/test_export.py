@@ -17,6 +17,7 @@ from numpy.testing import assert_allclose
 from planner.errors import RunFolderError, SettingsError
 from planner.export import (
     CSV_COLUMNS,
+    GPX_EXTENSION_NAMESPACE,
     GPX_NAMESPACE,
     SIMULATION_NOTICE,
     export_routes,
@@ -75,10 +76,11 @@ def _refuse(name):
 
 
 def _read_csv(path):
-    lines = path.read_text(encoding="utf-8").splitlines()
-    comments = [ln for ln in lines if ln.startswith("#")]
-    body = [ln for ln in lines if not ln.startswith("#")]
-    return comments, list(csv.DictReader(io.StringIO("\n".join(body) + "\n")))
+    """(the sidecar's lines, the rows): a waypoint CSV has no comment lines, its header comes first."""
+    text = path.read_text(encoding="utf-8")
+    assert not any(line.startswith("#") for line in text.splitlines())
+    sidecar = path.with_suffix(".txt").read_text(encoding="utf-8").splitlines()
+    return sidecar, list(csv.DictReader(io.StringIO(text)))
 
 
 # ----------------------------------------------------------------------------- GeoJSON
@@ -132,14 +134,18 @@ def test_geojson_round_trip_within_a_millimetre(planned, tmp_path):
     assert len(read_waypoints_geojson(path)) == sum(len(r.waypoints) for r in routes)
 
 
-def test_geojson_altitude_is_a_third_coordinate(planned, tmp_path):
+def test_geojson_altitude_above_ground_is_a_property_not_a_third_coordinate(planned, tmp_path):
+    # RFC 7946 section 4: a third coordinate is the height above the WGS 84 ellipsoid,
+    # which an altitude above ground is not
     site, _grid, _model, routes = planned
     obj = json.loads(write_geojson(routes[0], tmp_path / "a.geojson", site=site, alt_m=12.5).read_text())
     for feature in obj["features"]:
         geom = feature["geometry"]
         positions = geom["coordinates"] if geom["type"] == "LineString" else [geom["coordinates"]]
-        assert all(len(p) == 3 and p[2] == 12.5 for p in positions)
+        assert all(len(p) == 2 for p in positions)
         assert "12.500 m above ground level" in feature["properties"]["use"]
+        assert feature["properties"]["alt_above_ground_m"] == 12.5
+    assert "no third coordinate: no height above the WGS 84 ellipsoid: no ground elevation was given" in obj["heights"]
     # Reading back ignores the altitude.
     assert len(read_waypoints_geojson(tmp_path / "a.geojson")[0]) == 2
 
@@ -171,15 +177,17 @@ def test_single_waypoint_route_has_no_linestring(planned):
 # ----------------------------------------------------------------------------- CSV
 
 
-def test_csv_parses_after_comment_lines(planned, tmp_path):
+def test_csv_starts_with_its_header_and_says_the_notice_in_a_column_and_a_sidecar(planned, tmp_path):
     _site, _grid, _model, routes = planned
     route = routes[0]
     path = write_csv(route, tmp_path / "shortest.csv")
     text = path.read_text(encoding="utf-8")
-    assert text.startswith("# ")
-    comments, rows = _read_csv(path)
-    assert SIMULATION_NOTICE in comments[0]
+    assert text.splitlines()[0] == ",".join(CSV_COLUMNS)
+    sidecar, rows = _read_csv(path)
+    assert SIMULATION_NOTICE in sidecar[0].lower()
+    assert any(line.startswith("Policy shortest: reached goal yes") for line in sidecar)
     assert list(rows[0]) == list(CSV_COLUMNS)
+    assert all(r["use"] == SIMULATION_NOTICE for r in rows)
     assert len(rows) == len(route.waypoints)
     for row, w in zip(rows, route.waypoints, strict=True):
         assert row["policy"] == "shortest" and int(row["seq"]) == w.seq
@@ -195,9 +203,11 @@ def test_csv_parses_after_comment_lines(planned, tmp_path):
 def test_csv_round_trip_and_altitude(planned, tmp_path):
     site, _grid, _model, routes = planned
     route = routes[1]
-    comments, rows = _read_csv(write_csv(route, tmp_path / "r.csv", alt_m=30))
-    assert "alt_m" in rows[0] and all(r["alt_m"] == "30.000" for r in rows)
-    assert any("30.000 m above ground level" in c for c in comments)
+    sidecar, rows = _read_csv(write_csv(route, tmp_path / "r.csv", alt_m=30))
+    assert "alt_m" not in rows[0] and all(r["alt_above_ground_m"] == "30.000" for r in rows)
+    assert "elevation_m" not in rows[0]
+    assert all("30.000 m above ground level" in r["use"] for r in rows)
+    assert any("no <ele>" in line and "no ground elevation was given" in line for line in sidecar)
     x, y = site.frame.to_xy([float(r["lon"]) for r in rows], [float(r["lat"]) for r in rows])
     assert_allclose(np.column_stack([x, y]), route.waypoint_xy(), rtol=0, atol=1e-3)
 
@@ -222,7 +232,10 @@ def test_gpx_is_version_1_1_in_schema_order(planned, tmp_path, alt_m):
     root = ET.parse(path).getroot()
     assert root.tag == f"{{{GPX_NAMESPACE}}}gpx"
     assert root.get("version") == "1.1" and root.get("creator")
-    assert all(child.tag.startswith(f"{{{GPX_NAMESPACE}}}") for child in root.iter())
+    # GPX 1.1 elements, and inside <extensions> only elements of our own namespace
+    inside = {id(e) for ext in root.iter(f"{{{GPX_NAMESPACE}}}extensions") for e in ext.iter() if e is not ext}
+    assert all(child.tag.startswith(f"{{{GPX_NAMESPACE}}}") for child in root.iter() if id(child) not in inside)
+    assert all(e.tag.startswith(f"{{{GPX_EXTENSION_NAMESPACE}}}") for e in root.iter() if id(e) in inside)
     assert _local(root[0].tag) == "metadata"
     _assert_schema_order(root)
     _assert_schema_order(root.find("g:metadata", NS))
@@ -243,7 +256,9 @@ def test_gpx_is_version_1_1_in_schema_order(planned, tmp_path, alt_m):
             if alt_m is None:
                 assert ele is None
             else:
-                assert float(ele.text) == alt_m
+                # no ground elevation: an altitude above ground is no elevation above sea level
+                assert ele is None
+                assert pt.find("g:cmt", NS).text == f"{alt_m:.3f} m above ground level"
                 assert "above ground level" in rte.find("g:desc", NS).text
     x, y = site.frame.to_xy(*zip(*[(float(p.get("lon")), float(p.get("lat")))
                                    for p in rtes[0].findall("g:rtept", NS)], strict=True))
@@ -291,7 +306,8 @@ def test_files_are_deterministic_and_leave_no_temporaries(planned, tmp_path):
     # Writing again over the same names replaces the files, byte for byte.
     again = _write_all(site, routes, tmp_path / "one", alt_m=10.0)
     assert [p.read_bytes() for p in again] == [p.read_bytes() for p in second]
-    assert sorted(p.name for p in (tmp_path / "one").iterdir()) == ["routes.geojson", "routes.gpx", "shortest.csv"]
+    assert sorted(p.name for p in (tmp_path / "one").iterdir()) == ["routes.geojson", "routes.gpx", "shortest.csv",
+                                                                     "shortest.txt"]
 
 
 def test_export_routes_writes_one_file_per_policy_and_format(planned, tmp_path):
