@@ -316,7 +316,7 @@ def csv_sidecar_text(route: Route, *, alt_m: float | None = None, ground=None) -
     clearance = "none" if not math.isfinite(route.min_clearance_m) else (
         f"{route.min_clearance_m:.{METRE_DECIMALS}f} m ({route.min_clearance_hazard})")
     lines = [
-        f"{notice(alt_m).capitalize()}.",
+        f"{notice(alt_m)}.",
         "",
         f"Policy {route.name}: reached goal {'yes' if route.reached_goal else 'no'} (ended: {route.end_event}), "
         f"{len(route.waypoints)} waypoints, {route.waypoint_length_m:.{METRE_DECIMALS}f} m, least clearance to a "
@@ -479,7 +479,8 @@ def fsync_path(path) -> None:
 
 
 #: File formats by file-name extension, as ``-o`` decides them.
-FORMAT_OF_EXTENSION = {".geojson": "geojson", ".json": "geojson", ".csv": "csv", ".gpx": "gpx", ".png": "png"}
+FORMAT_OF_EXTENSION = {".geojson": "geojson", ".json": "geojson", ".csv": "csv", ".gpx": "gpx", ".png": "png",
+                       ".tif": "geotiff", ".tiff": "geotiff"}
 
 
 def output_format(path, allowed, *, fmt: str | None = None, option: str = "-o/--output") -> str:

@@ -853,7 +853,7 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
                   "given": settings.seed},
         "versions": versions(),
         "grid": {"rows": result.grid.shape[0], "cols": result.grid.shape[1], "cell_m": result.grid.cell_m,
-                 "x0": result.grid.x0, "y0": result.grid.y0},
+                 "x0": result.grid.x0, "y0": result.grid.y0, "crs": result.site.frame.crs},
         "motion": {"cell_m": result.grid.cell_m, "move_m": settings.dynamics.move_length_m(result.grid.cell_m),
                    "headings": settings.dynamics.n_actions,
                    "budget_moves": budget_moves(settings.dynamics, result.grid.cell_m, settings.budget_m)},

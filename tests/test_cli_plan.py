@@ -32,7 +32,7 @@ SMALL = ["--cell", "2", "--episodes", "2000", "--max-sweeps", "4", "--training-r
 #: Every file a run folder holds.
 RUN_FILES = {
     "manifest.json", "policies.npz", "training.npz", "routes-cautious.geojson", "routes-shortest.geojson",
-    "waypoints-cautious.csv", "waypoints-shortest.csv", "risk.csv", "risk.json", "learning.png", "routes.png",
+    "waypoints-cautious.csv", "waypoints-shortest.csv", "waypoints-cautious.txt", "waypoints-shortest.txt", "risk.csv", "risk.json", "learning.png", "routes.png",
     "riskmap.png", "sensitivity.png", "brief.html", "brief.pdf", "site.geojson",
 }
 NOTICE = "simulation only - not approved for field operation"
@@ -217,7 +217,9 @@ def test_waypoint_files_carry_the_simulation_notice(planned):
     _, out, _ = planned
     for name in ("cautious", "shortest"):
         text = (out / f"waypoints-{name}.csv").read_text()
-        assert text.splitlines()[0].startswith(f"# {NOTICE}")
+        # the header comes first; the notice is in the 'use' column of every row
+        assert text.splitlines()[0].startswith("policy,seq,") and NOTICE in text.splitlines()[1]
+        assert (out / f"waypoints-{name}.txt").read_text().lower().startswith(NOTICE)
         geo = json.loads((out / f"routes-{name}.geojson").read_text())
         assert geo["type"] == "FeatureCollection"
         assert geo["use"].startswith(NOTICE)
@@ -275,12 +277,14 @@ def test_export_csv_both_policies_writes_two_files_with_altitude(planned, tmp_pa
     _, out, _ = planned
     result = run("export", out, "--format", "csv", "--alt-m", "25", "-o", tmp_path / "wp.csv")
     assert result.exit_code == 0, result.output
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["wp-cautious.csv", "wp-shortest.csv"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["wp-cautious.csv", "wp-cautious.txt", "wp-shortest.csv",
+                                                          "wp-shortest.txt"]
     for name in ("cautious", "shortest"):
         lines = (tmp_path / f"wp-{name}.csv").read_text().splitlines()
-        assert lines[0].startswith(f"# {NOTICE}") and "25.000 m above ground level" in lines[0]
-        rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
-        assert rows and all(r["alt_m"] == "25.000" and r["policy"] == name for r in rows)
+        assert "25.000 m above ground level" in (tmp_path / f"wp-{name}.txt").read_text()
+        rows = list(csv.DictReader(lines))
+        assert rows and all(r["alt_above_ground_m"] == "25.000" and r["policy"] == name for r in rows)
+        assert all(NOTICE in r["use"] and "25.000 m above ground level" in r["use"] for r in rows)
 
 
 def test_export_gpx_has_both_routes_with_the_notice(planned, tmp_path):
@@ -301,7 +305,8 @@ def test_export_gpx_has_both_routes_with_the_notice(planned, tmp_path):
         for p, w in zip(points, waypoints, strict=True):
             assert_allclose([float(p.get("lon")), float(p.get("lat"))], [float(w["lon"]), float(w["lat"])],
                             atol=1e-9)
-            assert p.find(f"{GPX}ele").text == "12.500"
+            # no ground elevation given: no <ele>; the altitude above ground is in <cmt>
+            assert p.find(f"{GPX}ele") is None and p.find(f"{GPX}cmt").text == "12.500 m above ground level"
 
 
 def test_export_single_policy_geojson(planned, tmp_path):
@@ -311,8 +316,10 @@ def test_export_single_policy_geojson(planned, tmp_path):
     geo = json.loads(target.read_text())
     routes = [f for f in geo["features"] if f["properties"].get("kind") == "route"]
     assert [f["properties"]["policy"] for f in routes] == ["shortest"]
-    # With an altitude every position has a third coordinate (RFC 7946 allows it).
-    assert all(len(p) == 3 and p[2] == 0.0 for p in routes[0]["geometry"]["coordinates"])
+    # An altitude above ground is no height above the ellipsoid (RFC 7946 section 4): a
+    # property of its own, and no third coordinate without a ground elevation.
+    assert all(len(p) == 2 for p in routes[0]["geometry"]["coordinates"])
+    assert routes[0]["properties"]["alt_above_ground_m"] == 0.0
 
 
 @pytest.mark.parametrize("name, fmt", [("x.csv", "gpx"), ("x.gpx", "geojson"), ("x.geojson", "csv")])

@@ -122,15 +122,16 @@ def _example_module(name: str):
 
 
 def _read_csv(path: Path):
-    lines = path.read_text(encoding="utf-8").splitlines()
-    body = [ln for ln in lines if not ln.startswith("#")]
-    return [ln for ln in lines if ln.startswith("#")], list(csv.DictReader(io.StringIO("\n".join(body) + "\n")))
+    """(the sidecar's lines, the rows): the CSV's first line is its header."""
+    sidecar = path.with_suffix(".txt").read_text(encoding="utf-8").splitlines()
+    return sidecar, list(csv.DictReader(io.StringIO(path.read_text(encoding="utf-8"))))
 
 
 def test_site_in_code_writes_every_file(yard):
     out, stdout = yard
     assert sorted(p.name for p in out.iterdir()) == ["routes.geojson", "routes.gpx", "waypoints-cautious.csv",
-                                                      "waypoints-shortest.csv"]
+                                                      "waypoints-cautious.txt", "waypoints-shortest.csv",
+                                                      "waypoints-shortest.txt"]
     for path in out.iterdir():
         assert "simulation only" in path.read_text(encoding="utf-8"), path.name
     assert "cautious" in stdout and "shortest" in stdout and "P(incident)" in stdout
@@ -158,7 +159,7 @@ def test_site_in_code_routes_run_from_start_to_goal(yard):
         assert d_goal <= reach, (name, d_goal)
 
         comments, rows = _read_csv(out / f"waypoints-{name}.csv")
-        assert SIMULATION_NOTICE in comments[0]
+        assert SIMULATION_NOTICE in comments[0].lower()
         assert [int(r["seq"]) for r in rows] == list(range(len(rows)))
         # both files print lon/lat to 1e-9 degree
         assert_allclose([[float(r["lon"]), float(r["lat"])] for r in rows], [p[:2] for p in line], rtol=0,

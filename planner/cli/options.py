@@ -17,8 +17,8 @@ from planner.site import DEFAULT_MAX_BYTES
 
 #: Help sections, in the order ``--help`` shows them, and the parameters in each.
 SECTIONS = {
-    "Output": ("output", "fmt", "force", "as_json", "strict", "details", "quiet", "policy", "policies", "alt_m",
-               "settings"),
+    "Output": ("output", "fmt", "force", "as_json", "strict", "details", "quiet", "policy", "policies", "contents",
+               "alt_m", "ground_elev_m", "dem", "vertical_datum", "settings"),
     "Site file": ("crs", "fix", "max_bytes"),
     "Grid": ("cell_m", "hazard_overlap", "boundary_cover", "max_cells"),
     "Vehicle and motion": ("n_actions", "headings", "move_m", "slip", "stall", "drift_scale", "edge", "penalty_m"),

@@ -18,8 +18,8 @@ from planner.cli.options import (
 )
 from planner.cli.plan_commands import quiet_option
 
-#: Waypoint formats ``export`` writes.
-EXPORT_FORMATS = ("geojson", "csv", "gpx")
+#: File formats ``export`` writes.
+EXPORT_FORMATS = ("geojson", "csv", "gpx", "geotiff")
 
 
 def risk_table_options_from_run(f):
@@ -85,62 +85,147 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
 
 @cli.command(cls=SectionedCommand)
 @run_argument
-@output_option("Waypoint file to write; its extension decides the format (.geojson or .json, .csv, .gpx). "
-               "CSV holds one route: with --policy both it writes FILE's stem + -cautious.csv and -shortest.csv.")
+@output_option("File to write; its extension decides the format: .geojson or .json, .csv, .gpx (waypoints), "
+               ".tif or .tiff (GeoTIFF of the risk maps and cell labels, gis extra). CSV holds one route: with "
+               "--policy both it writes FILE's stem + -cautious.csv and -shortest.csv, each with a .txt sidecar.")
 @force_option
 @click.option("--format", "fmt", type=click.Choice(EXPORT_FORMATS), default=None,
               show_default="from the extension of -o",
-              help="Waypoint file format; refused when it does not match the extension of -o.")
+              help="File format; refused when it does not match the extension of -o.")
+@click.option("--contents", type=click.Choice(["waypoints", "hazard-cells"]), default="waypoints",
+              show_default=True,
+              help="GeoJSON only: the routes' waypoints, or the cells the grid treats as hazard (polygons).")
 @click.option("--policy", type=click.Choice(["cautious", "shortest", "both"]), default="both", show_default=True,
-              help="Which policy's route.")
+              help="Which policy's route (or risk map).")
 @click.option("--alt-m", type=finite(0, 10_000), default=None, metavar="M",
-              help="Constant altitude above ground for aerial simulators (metres).")
-def export(run, output, force, fmt, policy, alt_m):
-    """Write the waypoints of run folder RUN for a simulator.
+              help="Constant altitude above ground for aerial simulators (metres), written in its own field.")
+@click.option("--ground-elev-m", type=finite(-500, 9000), default=None, metavar="M",
+              help="Ground elevation of the whole site (metres, in --vertical-datum): fills GPX <ele> and the "
+                   "GeoJSON third coordinate with ground + --alt-m.")
+@click.option("--dem", type=click.Path(dir_okay=False, path_type=str), default=None, metavar="FILE",
+              help="DEM GeoTIFF sampled at each waypoint for the ground elevation (gis extra), instead of "
+                   "--ground-elev-m.")
+@click.option("--vertical-datum", default=None, metavar="DATUM",
+              help="Vertical datum of the ground elevation: 'ellipsoid' (WGS 84) or a vertical CRS such as "
+                   "EPSG:5773 (EGM96) or EPSG:3855 (EGM2008).")
+def export(run, output, force, fmt, contents, policy, alt_m, ground_elev_m, dem, vertical_datum):
+    """Write the waypoints, risk maps or hazard cells of run folder RUN for a simulator or a GIS.
 
-    GeoJSON (RFC 7946, lon/lat), CSV or GPX 1.1, chosen by the extension of -o. Every
+    GeoJSON (RFC 7946, lon/lat), CSV (header first, notice in a 'use' column and a
+    .txt sidecar) or GPX 1.1 waypoints; a GeoTIFF of each route's risk map and the
+    cell labels in the working frame; or the hazard cells as GeoJSON polygons. Every
     file states that it is for simulation only and not approved for field operation.
     An existing file is replaced only with --force.
 
+    The altitude above ground is written in its own field. GPX <ele> (elevation above
+    sea level) and the GeoJSON third coordinate (height above the WGS 84 ellipsoid)
+    are written only when the ground elevation is known (--ground-elev-m or --dem,
+    with --vertical-datum); otherwise they are left out and the file says why.
+
     \b
     Examples:
-      veerwise export run-yard -o routes.gpx --alt-m 30
+      veerwise export run-yard -o routes.gpx --alt-m 30 --ground-elev-m 212 --vertical-datum EPSG:5773
       veerwise export run-yard -o cautious.geojson --policy cautious
+      veerwise export run-yard -o riskmap.tif
+      veerwise export run-yard -o hazard-cells.geojson --contents hazard-cells
     """
     from planner.export import (
         check_output,
         output_format,
         refuse_run_folder_target,
-        write_csv,
-        write_geojson,
-        write_gpx,
+        sidecar_path,
     )
-    from planner.runfolder import load_run, rebuild, run_routes
+    from planner.runfolder import load_run
     from planner.transactions import read_lock
 
     out = Path(output)
     names = ("cautious", "shortest") if policy == "both" else (policy,)
     fmt = output_format(out, EXPORT_FORMATS, fmt=fmt)
+    if contents == "hazard-cells" and fmt != "geojson":
+        raise click.BadParameter(f"hazard cells are written as GeoJSON; -o {out} names {fmt}",
+                                 param_hint="--contents")
+    heights_given = ground_elev_m is not None or dem is not None or vertical_datum is not None
+    if heights_given and (fmt not in ("geojson", "csv", "gpx") or contents != "waypoints"):
+        raise click.BadParameter("ground elevation applies to waypoint files only", param_hint="--ground-elev-m/--dem")
+    if ground_elev_m is not None and dem is not None:
+        raise click.BadParameter("give --ground-elev-m or --dem, not both", param_hint="--dem")
     targets = ([out.with_name(f"{out.stem}-{n}{out.suffix}") for n in names] if fmt == "csv" and len(names) > 1
                else [out])
     for target in targets:
         refuse_run_folder_target(target, "-o/--output")
         check_output(target, EXPORT_FORMATS, fmt=fmt, force=force)
+        if fmt == "csv":
+            side = sidecar_path(target)
+            refuse_run_folder_target(side, "-o/--output (sidecar)")
+            if side.exists() and not force:
+                raise click.BadParameter(f"the sidecar {side} already exists; choose another name or pass --force",
+                                         param_hint="-o/--output")
+    if fmt == "geotiff":
+        from planner.gridfiles import require_rasterio
+
+        require_rasterio(f"-o {out}: writing a GeoTIFF")
+    ground = _ground(ground_elev_m, dem, vertical_datum)
     click.get_current_context().with_resource(read_lock(run))
     loaded = load_run(run)
-    site, grid, model = rebuild(loaded)
-    routes = run_routes(loaded, site, grid, model)
-    chosen = [routes[n] for n in names]
-    written = []
-    if fmt == "geojson":
-        written.append(write_geojson(chosen if len(chosen) > 1 else chosen[0], out, site=site, alt_m=alt_m))
-    elif fmt == "gpx":
-        written.append(write_gpx(chosen, out, alt_m=alt_m))
-    else:
-        for r, target in zip(chosen, targets, strict=True):
-            written.append(write_csv(r, target, alt_m=alt_m))
+    written = _export_files(loaded, fmt, contents, names, out, targets, alt_m, ground)
     for path in written:
         click.echo(f"wrote {path} (simulation only)")
+    if fmt in ("geojson", "gpx", "csv") and contents == "waypoints" and ground is None:
+        what = {"gpx": "<ele>", "geojson": "third coordinate", "csv": "elevation columns"}[fmt]
+        click.echo(f"veerwise: note: no {what}: no ground elevation was given (--ground-elev-m with "
+                   "--vertical-datum, or --dem); the altitude above ground has its own field", err=True)
+
+
+def _ground(ground_elev_m, dem, vertical_datum):
+    """The ground elevation the options give, or None."""
+    from planner.elevation import constant_ground, dem_ground
+
+    if ground_elev_m is not None:
+        return constant_ground(ground_elev_m, vertical_datum)
+    if dem is not None:
+        return dem_ground(dem, vertical_datum)
+    if vertical_datum is not None:
+        raise click.BadParameter("needs --ground-elev-m or --dem", param_hint="--vertical-datum")
+    return None
+
+
+def _export_files(loaded, fmt, contents, names, out, targets, alt_m, ground) -> list:
+    """Write the files ``export`` was asked for; returns their paths."""
+    from planner.export import atomic_output, notice, sidecar_path, write_csv, write_geojson, write_gpx
+    from planner.runfolder import rebuild, run_routes
+
+    site, grid, model = rebuild(loaded)
+    if fmt == "geotiff" or contents == "hazard-cells":
+        from planner.gridfiles import hazard_cells_geojson, write_grid_geotiff
+
+        if contents == "hazard-cells":
+            import json
+
+            text = json.dumps(hazard_cells_geojson(grid, site.frame, notice=notice()), ensure_ascii=False,
+                              allow_nan=False) + "\n"
+            with atomic_output(out) as tmp:
+                tmp.write_bytes(text.encode("utf-8"))
+            return [out]
+        from planner.model import epsilon_greedy
+        from planner.risk import risk_map
+
+        noise = loaded.settings.learn.epsilon
+        maps = {n: risk_map(model, epsilon_greedy(loaded.arrays[f"greedy_{n}"], model.n_actions, noise))
+                for n in names}
+        with atomic_output(out) as tmp:
+            write_grid_geotiff(tmp, grid, site.frame, maps, noise=noise,
+                               drift_scale=loaded.settings.dynamics.drift_scale, notice=notice())
+        return [out]
+    routes = run_routes(loaded, site, grid, model)
+    chosen = [routes[n] for n in names]
+    if fmt == "geojson":
+        return [write_geojson(chosen if len(chosen) > 1 else chosen[0], out, site=site, alt_m=alt_m, ground=ground)]
+    if fmt == "gpx":
+        return [write_gpx(chosen, out, alt_m=alt_m, ground=ground)]
+    written = []
+    for r, target in zip(chosen, targets, strict=True):
+        written += [write_csv(r, target, alt_m=alt_m, ground=ground), sidecar_path(target)]
+    return written
 
 
 @cli.command(cls=SectionedCommand)
