@@ -232,3 +232,243 @@ def test_plan_on_merged_files_keeps_the_merged_copy_and_hashes_every_input(tmp_p
     # the commands that read the run rebuild the same site from the copy
     again = run("risk", out, "--format", "json", "--rollouts", "0", "--table-noises", "0.1", "--table-drifts", "1")
     assert again.exit_code == 0, again.output
+
+
+# ----------------------------------------------------------------------------- outputs read by outside readers
+
+
+@pytest.fixture(scope="module")
+def planned_run(tmp_path_factory):
+    """A small plan's run folder (the shared settings of test_cli_plan)."""
+    from conftest import plan_small_site
+    from test_cli_plan import SMALL
+
+    _, out, result = plan_small_site(tmp_path_factory.mktemp("plan"), *SMALL)
+    assert result.exit_code == 0, result.output
+    return out
+
+
+def _product_waypoints(run_folder, policy):
+    """(lon, lat) of a route's waypoints as the product's own GeoJSON has them."""
+    from planner.export import read_waypoints_geojson
+
+    return np.array(read_waypoints_geojson(run_folder / f"routes-{policy}.geojson"))
+
+
+def test_waypoint_csv_is_read_by_pandas_with_default_arguments(planned_run):
+    pandas = pytest.importorskip("pandas")
+    frame = pandas.read_csv(planned_run / "waypoints-cautious.csv")
+    assert list(frame.columns[:6]) == ["policy", "seq", "east_m", "north_m", "lon", "lat"]
+    assert list(frame["seq"]) == list(range(len(frame)))
+    assert (frame["use"].str.startswith("simulation only")).all()
+    np.testing.assert_allclose(frame[["lon", "lat"]].to_numpy(), _product_waypoints(planned_run, "cautious"),
+                               rtol=0, atol=1e-9)
+
+
+def test_waypoint_csv_is_read_by_gdals_csv_driver_with_lon_lat_as_points(planned_run):
+    import shapely
+
+    meta, _, geometry, fields = raw.read(str(planned_run / "waypoints-shortest.csv"), X_POSSIBLE_NAMES="lon",
+                                         Y_POSSIBLE_NAMES="lat")
+    # the header is the first line: GDAL's columns are ours, not a comment line
+    assert list(meta["fields"][:3]) == ["policy", "seq", "east_m"]
+    xy = shapely.get_coordinates(shapely.from_wkb(geometry))
+    np.testing.assert_allclose(xy, _product_waypoints(planned_run, "shortest"), rtol=0, atol=1e-9)
+
+
+def test_routes_geojson_is_read_by_gdal(planned_run):
+    import shapely
+
+    layers = pyogrio.list_layers(planned_run / "routes-cautious.geojson")
+    assert len(layers) == 1
+    meta, _, geometry, fields = raw.read(str(planned_run / "routes-cautious.geojson"))
+    kinds = list(fields[list(meta["fields"]).index("kind")])
+    assert kinds[0] == "route" and set(kinds[1:]) == {"waypoint"}
+    points = shapely.get_coordinates(shapely.from_wkb(geometry[1:]))
+    np.testing.assert_allclose(points, _product_waypoints(planned_run, "cautious"), rtol=0, atol=1e-9)
+    assert "EPSG:4326" in meta["crs"] or "CRS84" in meta["crs"]
+
+
+def _export(run_folder, target, *args):
+    result = run("export", run_folder, "-o", target, *args)
+    assert result.exit_code == 0, result.output
+    return result
+
+
+def test_gpx_is_read_by_gpxpy_and_gdal_without_ele_when_no_ground_elevation(planned_run, tmp_path):
+    gpxpy = pytest.importorskip("gpxpy")
+    target = tmp_path / "routes.gpx"
+    result = _export(planned_run, target, "--alt-m", "30")
+    assert "no <ele>" in result.stderr
+    gpx = gpxpy.parse(target.read_text())
+    assert [r.name for r in gpx.routes] == ["cautious", "shortest"]
+    for route in gpx.routes:
+        assert all(p.elevation is None for p in route.points)
+        np.testing.assert_allclose([[p.longitude, p.latitude] for p in route.points],
+                                   _product_waypoints(planned_run, route.name), rtol=0, atol=1e-9)
+        assert all(p.comment == "30.000 m above ground level" for p in route.points)
+    meta, _, _, fields = raw.read(str(target), layer="route_points")
+    ele = fields[list(meta["fields"]).index("ele")]
+    assert np.isnan(ele).all()
+    assert len(ele) == sum(len(r.points) for r in gpx.routes)
+
+
+def test_gpx_ele_is_ground_elevation_plus_altitude_above_ground(planned_run, tmp_path):
+    gpxpy = pytest.importorskip("gpxpy")
+    target = tmp_path / "routes.gpx"
+    _export(planned_run, target, "--alt-m", "30", "--ground-elev-m", "212", "--vertical-datum", "EPSG:5773")
+    gpx = gpxpy.parse(target.read_text())
+    # 212 m of ground (EGM96 height, a sea-level height) + 30 m above ground = 242 m
+    assert {p.elevation for r in gpx.routes for p in r.points} == {242.0}
+    meta, _, _, fields = raw.read(str(target), layer="route_points")
+    assert set(fields[list(meta["fields"]).index("ele")]) == {242.0}
+
+
+def test_geojson_third_coordinate_only_with_an_ellipsoidal_ground(planned_run, tmp_path):
+    target = tmp_path / "routes.geojson"
+    _export(planned_run, target, "--policy", "cautious", "--alt-m", "30", "--ground-elev-m", "212",
+            "--vertical-datum", "ellipsoid")
+    obj = json.loads(target.read_text())
+    points = [f for f in obj["features"] if f["properties"]["kind"] == "waypoint"]
+    assert all(f["geometry"]["coordinates"][2] == 242.0 for f in points)
+    assert all(f["properties"]["ground_elevation_m"] == 212.0 and f["properties"]["alt_above_ground_m"] == 30.0
+               for f in points)
+    meta, _, geometry, _ = raw.read(str(target))
+    import shapely
+
+    assert set(shapely.get_coordinates(shapely.from_wkb(geometry[1:]), include_z=True)[:, 2]) == {242.0}
+
+
+def test_csv_height_columns_with_a_ground_elevation(planned_run, tmp_path):
+    pandas = pytest.importorskip("pandas")
+    target = tmp_path / "wp.csv"
+    _export(planned_run, target, "--policy", "shortest", "--alt-m", "30", "--ground-elev-m", "212",
+            "--vertical-datum", "EPSG:5773")
+    frame = pandas.read_csv(target)
+    assert (frame["alt_above_ground_m"] == 30.0).all() and (frame["ground_elevation_m"] == 212.0).all()
+    assert (frame["elevation_m"] == 242.0).all() and (frame["vertical_datum"] == "EGM96 height (EPSG:5773)").all()
+    assert (tmp_path / "wp.txt").is_file()
+
+
+def test_a_dem_geotiff_gives_the_ground_elevation(planned_run, tmp_path):
+    gpxpy = pytest.importorskip("gpxpy")
+    rasterio = pytest.importorskip("rasterio")
+    from rasterio.transform import from_origin
+
+    lon, lat = _product_waypoints(planned_run, "cautious").T
+    dem = tmp_path / "dem.tif"
+    # a ground rising 1 m per 0.0001 degree east, on 0.00005-degree pixels
+    west, north, step = lon.min() - 0.001, lat.max() + 0.001, 0.00005
+    width, height = int((lon.max() - west + 0.001) / step) + 1, int((north - lat.min() + 0.001) / step) + 1
+    values = 200.0 + np.tile(np.arange(width) * 0.5, (height, 1))
+    with rasterio.open(dem, "w", driver="GTiff", width=width, height=height, count=1, dtype="float64",
+                       crs="EPSG:4326", transform=from_origin(west, north, step, step)) as out:
+        out.write(values, 1)
+    target = tmp_path / "routes.gpx"
+    _export(planned_run, target, "--policy", "cautious", "--alt-m", "30", "--dem", dem, "--vertical-datum",
+            "EPSG:3855")
+    ele = [p.elevation for r in gpxpy.parse(target.read_text()).routes for p in r.points]
+    # the pixel containing each waypoint: its column from the west edge, independently
+    expected = 200.0 + np.floor((lon - west) / step) * 0.5 + 30.0
+    np.testing.assert_allclose(ele, expected, rtol=0, atol=5e-4)
+
+
+@pytest.fixture(scope="module")
+def geotiff(planned_run, tmp_path_factory):
+    pytest.importorskip("rasterio")
+    target = tmp_path_factory.mktemp("tif") / "riskmap.tif"
+    _export(planned_run, target)
+    return target
+
+
+def test_the_geotiff_holds_the_products_own_risk_maps_in_the_manifest_frame(planned_run, geotiff):
+    import rasterio
+    from pyproj import CRS
+
+    from planner.gridfiles import label_codes
+    from planner.model import epsilon_greedy
+    from planner.risk import risk_map
+    from planner.runfolder import load_run, rebuild
+
+    manifest = json.loads((planned_run / "manifest.json").read_text())
+    loaded = load_run(planned_run)
+    _, grid, model = rebuild(loaded)
+    with rasterio.open(geotiff) as ds:
+        assert CRS.from_wkt(ds.crs.to_wkt()).equals(CRS.from_user_input(manifest["grid"]["crs"]))
+        assert (ds.height, ds.width) == (manifest["grid"]["rows"], manifest["grid"]["cols"])
+        assert ds.count == 3 and np.isnan(ds.nodata)
+        noise = manifest["settings"]["learn"]["epsilon"]
+        assert ds.descriptions[0].startswith(f"P(incident) from each cell, cautious route, noise {noise:g}")
+        assert ds.descriptions[1].startswith("P(incident) from each cell, shortest route")
+        data = ds.read()
+    for band, name in enumerate(("cautious", "shortest")):
+        own = risk_map(model, epsilon_greedy(loaded.arrays[f"greedy_{name}"], model.n_actions, noise))
+        own = own.reshape(grid.shape)
+        # raster row i is grid row (n_rows - 1 - i): GeoTIFF's first row is the northern one
+        np.testing.assert_array_equal(data[band], own[::-1])
+    np.testing.assert_array_equal(data[2], label_codes(grid)[::-1])
+
+
+def test_a_cell_centre_in_the_geotiff_lies_at_the_products_own_lon_lat(planned_run, geotiff):
+    import pandas
+    import rasterio
+    from pyproj import Transformer
+
+    frame = pandas.read_csv(planned_run / "waypoints-cautious.csv")
+    with rasterio.open(geotiff) as ds:
+        to_lonlat = Transformer.from_crs(ds.crs.to_wkt(), "EPSG:4326", always_xy=True)
+        for _, w in frame.iterrows():
+            row, col = ds.index(w["east_m"], w["north_m"])
+            x, y = ds.xy(row, col)  # the pixel centre, from the GeoTIFF's own transform
+            # waypoints lie on cell centres; the CSV prints metres to 1 mm
+            np.testing.assert_allclose([x, y], [w["east_m"], w["north_m"]], rtol=0, atol=6e-4)
+            lon, lat = to_lonlat.transform(x, y)
+            # 1e-8 degree is about 1 mm: the mm rounding of east/north and 9-decimal lon/lat
+            np.testing.assert_allclose([lon, lat], [w["lon"], w["lat"]], rtol=0, atol=1e-8)
+
+
+def test_hazard_cells_are_geojson_polygons_gdal_reads(planned_run, tmp_path):
+    import shapely
+
+    from planner.runfolder import load_run, rebuild_grid
+
+    target = tmp_path / "cells.geojson"
+    _export(planned_run, target, "--contents", "hazard-cells")
+    meta, _, geometry, fields = raw.read(str(target))
+    _, grid = rebuild_grid(load_run(planned_run))
+    assert len(geometry) == int((grid.label >= 0).sum())
+    cells = shapely.from_wkb(geometry)
+    assert set(shapely.get_type_id(cells)) == {3}  # Polygon
+    assert set(fields[list(meta["fields"]).index("hazard")]) == {h.name for h in grid.hazards}
+    # each square is one cell: 2 m x 2 m = 4 m2 on the ground (geodesic area, PROJ's geod)
+    from pyproj import Geod
+
+    area, _ = Geod(ellps="WGS84").geometry_area_perimeter(cells[0])
+    assert abs(area) == pytest.approx(4.0, rel=1e-4)
+
+
+@pytest.mark.parametrize(("args", "message"), [
+    (["-o", "{tmp}/x.tif", "--contents", "hazard-cells"], "--contents"),
+    (["-o", "{tmp}/x.gpx", "--ground-elev-m", "212"], "--vertical-datum is needed with a ground elevation"),
+    (["-o", "{tmp}/x.gpx", "--vertical-datum", "EPSG:5773"], "needs --ground-elev-m or --dem"),
+    (["-o", "{tmp}/x.gpx", "--ground-elev-m", "212", "--vertical-datum", "EPSG:4326"], "not a vertical datum"),
+    (["-o", "{tmp}/x.gpx", "--ground-elev-m", "212", "--vertical-datum", "nowhere"], "not a vertical CRS"),
+    (["-o", "{tmp}/x.gpx", "--dem", "{tmp}/none.tif", "--vertical-datum", "EPSG:5773"], "--dem"),
+    (["-o", "{tmp}/x.tif", "--ground-elev-m", "212", "--vertical-datum", "EPSG:5773"], "waypoint files only"),
+], ids=["cells-as-tif", "no-datum", "datum-alone", "horizontal-datum", "unknown-datum", "missing-dem",
+        "heights-on-a-tif"])
+def test_bad_export_options_are_one_line_exit_2_nothing_written(planned_run, tmp_path, args, message):
+    out = tmp_path / "out"
+    out.mkdir()
+    result = run("export", planned_run, *[a.replace("{tmp}", str(out)) for a in args])
+    assert result.exit_code == 2, result.output
+    assert result.stderr.count("\n") == 1 and message in result.stderr
+    assert list(out.iterdir()) == []
+
+
+def test_without_the_gis_extra_a_geotiff_gets_one_line_naming_it(planned_run, tmp_path, monkeypatch):
+    monkeypatch.setitem(sys.modules, "rasterio", None)
+    result = run("export", planned_run, "-o", tmp_path / "x.tif")
+    assert result.exit_code == 2
+    assert "needs the optional GIS extra: pip install 'veerwise[gis]'" in result.stderr
+    assert result.stderr.count("\n") == 1 and not (tmp_path / "x.tif").exists()
