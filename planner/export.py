@@ -480,7 +480,7 @@ def fsync_path(path) -> None:
 
 #: File formats by file-name extension, as ``-o`` decides them.
 FORMAT_OF_EXTENSION = {".geojson": "geojson", ".json": "geojson", ".csv": "csv", ".gpx": "gpx", ".png": "png",
-                       ".tif": "geotiff", ".tiff": "geotiff"}
+                       ".tif": "geotiff", ".tiff": "geotiff", ".gpkg": "geopackage"}
 
 
 def output_format(path, allowed, *, fmt: str | None = None, option: str = "-o/--output") -> str:

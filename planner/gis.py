@@ -289,3 +289,124 @@ def _geometry(wkb, transform, where: str):
     if kind == "MultiPolygon":
         return {"type": kind, "coordinates": [polygon(p) for p in geom.geoms]}
     return {"type": kind, "geometries": []}
+
+
+# ----------------------------------------------------------------------------- template
+
+
+#: Where the template's example features lie (a fictional spot; redraw them on your yard).
+TEMPLATE_CENTRE = (2.7200, 46.8500)
+#: Every column a site layer may have, with its type (the role column aside).
+COLUMN_TYPES = {"name": str, "ends_run": bool, "penalty_m": float, "buffer_m": float, "cost_factor": float,
+                "toward_deg": float, "from_deg": float, "drift_per_m": float, "spread_per_sqrt_m": float,
+                "chance": float}
+#: The columns of each role's layer, in order (``planner.site`` refuses any other).
+ROLE_COLUMNS = {
+    "boundary": ("name",),
+    "start": ("name",),
+    "goal": ("name",),
+    "hazard": ("name", "ends_run", "penalty_m", "buffer_m"),
+    "rough": ("name", "cost_factor"),
+    "drift": ("name", "toward_deg", "from_deg", "drift_per_m", "spread_per_sqrt_m", "chance"),
+}
+#: GeoPackage geometry type of each role's layer (a goal is a point or an area).
+ROLE_GEOMETRY = {"boundary": "MultiPolygon", "start": "Point", "goal": "Unknown", "hazard": "MultiPolygon",
+                 "rough": "MultiPolygon", "drift": "MultiPolygon"}
+
+
+def _template_examples() -> list[tuple[str, object, dict]]:
+    """(role, geometry in metres around the centre, properties) of the template's examples."""
+    from shapely.geometry import Point, box
+
+    return [
+        ("boundary", box(-100, -60, 100, 60), {"name": "Example yard (redraw on your site)"}),
+        ("start", Point(-85, 0), {"name": "Launch point"}),
+        ("goal", Point(85, 0), {"name": "Target"}),
+        ("hazard", box(-10, -20, 10, 20), {"name": "Example pond", "ends_run": True, "penalty_m": 1000.0,
+                                           "buffer_m": 2.0}),
+        ("rough", box(30, -60, 100, -40), {"name": "Example gravel", "cost_factor": 1.5}),
+        ("drift", box(-60, 30, 60, 60), {"name": "Example gust lane", "toward_deg": 180.0, "drift_per_m": 0.2,
+                                         "spread_per_sqrt_m": 0.1, "chance": 0.5}),
+    ]
+
+
+#: An extra drift example in the GeoJSON template only: GeoJSON has no column types, so a
+#: GIS editor types a column from its values, and ``from_deg`` needs one to be a number.
+_FROM_EXAMPLE = ("drift", (-60, -60, 0, -40), {"name": "Example side-slope (weather convention)", "from_deg": 270.0,
+                                              "drift_per_m": 0.1, "spread_per_sqrt_m": 0.05, "chance": 1.0})
+
+
+def _to_lonlat(geom):
+    """A template geometry from metres around :data:`TEMPLATE_CENTRE` to lon/lat (7 decimals, about 1 cm)."""
+    import shapely
+    from pyproj import Transformer
+
+    lon_0, lat_0 = TEMPLATE_CENTRE
+    t = Transformer.from_crs(f"+proj=tmerc +lat_0={lat_0} +lon_0={lon_0} +k=1 +ellps=WGS84 +units=m +type=crs",
+                             "EPSG:4326", always_xy=True)
+
+    def move(xy):
+        lon, lat = t.transform(xy[:, 0], xy[:, 1])
+        return np.round(np.column_stack([lon, lat]), 7)
+
+    return shapely.transform(geom, move)
+
+
+def template_collection() -> dict:
+    """The site template as a GeoJSON FeatureCollection: one example per role, every column on every feature.
+
+    Columns that do not apply to a role are ``null`` (as a GIS editor stores a table);
+    each column has a value in some feature, so an editor gives it its type.
+    """
+    from shapely.geometry import box, mapping
+
+    examples = _template_examples()
+    role, bounds, props = _FROM_EXAMPLE
+    examples.append((role, box(*bounds), props))
+    features = []
+    for role, geom, props in examples:
+        shape = json.loads(json.dumps(mapping(_to_lonlat(geom))))  # tuples to lists
+        features.append({"type": "Feature",
+                         "properties": {"role": role, **{c: props.get(c) for c in COLUMN_TYPES}},
+                         "geometry": shape})
+    return {"type": "FeatureCollection", "name": "veerwise site template",
+            "properties": {"site_schema": SITE_SCHEMA}, "features": features}
+
+
+def template_geojson_text() -> str:
+    """:func:`template_collection` as the text the template file holds (one feature per line)."""
+    obj = template_collection()
+    head = json.dumps({k: v for k, v in obj.items() if k != "features"}, ensure_ascii=False)
+    body = ",\n".join(json.dumps(f, ensure_ascii=False) for f in obj["features"])
+    return f'{head[:-1]}, "features": [\n{body}\n]}}\n'
+
+
+def write_template_geopackage(path) -> Path:
+    """Write the site template as a GeoPackage: one layer per role with its typed columns and one example.
+
+    ``path`` must not exist yet (the caller writes to a fresh temporary name and
+    renames it into place).
+    """
+    pyogrio = require_pyogrio(f"{path}: writing a GeoPackage")
+    import shapely
+
+    append = False
+    for role, geom, props in _template_examples():
+        geom = _to_lonlat(geom)
+        if ROLE_GEOMETRY[role] == "MultiPolygon":
+            geom = shapely.MultiPolygon([geom])
+        columns = ROLE_COLUMNS[role]
+        data = []
+        for c in columns:
+            kind, value = COLUMN_TYPES[c], props.get(c)
+            if kind is str:
+                data.append(np.array([value], dtype=object))
+            elif kind is bool:
+                data.append(np.array([bool(value)]))
+            else:
+                data.append(np.array([np.nan if value is None else value], dtype=np.float64))
+        pyogrio.raw.write(str(path), np.array([shapely.to_wkb(geom)], dtype=object), data, fields=list(columns),
+                          layer=role, driver="GPKG", geometry_type=ROLE_GEOMETRY[role], crs="EPSG:4326",
+                          append=append)
+        append = True
+    return Path(path)

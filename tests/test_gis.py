@@ -472,3 +472,74 @@ def test_without_the_gis_extra_a_geotiff_gets_one_line_naming_it(planned_run, tm
     assert result.exit_code == 2
     assert "needs the optional GIS extra: pip install 'veerwise[gis]'" in result.stderr
     assert result.stderr.count("\n") == 1 and not (tmp_path / "x.tif").exists()
+
+
+# ----------------------------------------------------------------------------- the site template
+
+
+def test_the_geojson_template_has_every_column_typed_and_an_example_per_role(tmp_path):
+    target = tmp_path / "template.geojson"
+    result = run("site-template", "-o", target)
+    assert result.exit_code == 0, result.output
+    obj = json.loads(target.read_text())
+    from planner.site import ROLES
+
+    assert {f["properties"]["role"] for f in obj["features"]} == set(ROLES)
+    columns = {tuple(f["properties"]) for f in obj["features"]}
+    assert len(columns) == 1  # every feature carries every column, as a table does
+    info = pyogrio.read_info(target)
+    types = dict(zip(info["fields"], info["dtypes"], strict=True))
+    # GDAL types each column from its values: the booleans and numbers are not text
+    assert types["ends_run"] == "bool" and types["name"] == "object"
+    assert all(types[c] == "float64" for c in ("penalty_m", "buffer_m", "cost_factor", "toward_deg", "from_deg",
+                                                "drift_per_m", "spread_per_sqrt_m", "chance"))
+    check = run("check", target, "--json")
+    assert check.exit_code == 0, check.output
+    assert json.loads(check.stdout)["warnings"] == []
+
+
+def test_the_geopackage_template_has_one_typed_layer_per_role(tmp_path):
+    target = tmp_path / "template.gpkg"
+    assert run("site-template", "-o", target).exit_code == 0
+    from planner.gis import ROLE_COLUMNS
+
+    layers = {str(name) for name, _ in pyogrio.list_layers(target)}
+    assert layers == set(ROLE_COLUMNS)
+    for role, columns in ROLE_COLUMNS.items():
+        info = pyogrio.read_info(target, layer=role)
+        assert tuple(info["fields"]) == columns and info["features"] == 1
+        types = dict(zip(info["fields"], info["dtypes"], strict=True))
+        assert all(t == ("object" if c == "name" else "bool" if c == "ends_run" else "float64")
+                   for c, t in types.items())
+    again = run("site-template", "-o", target)
+    assert again.exit_code == 2 and "already exists" in again.stderr
+
+
+def test_the_round_trip_in_four_steps(tmp_path):
+    """README, "The site file": template, draw in a GIS editor (GDAL here), check, plan."""
+    import shapely
+
+    target = tmp_path / "my-yard.gpkg"
+    assert run("site-template", "-o", target).exit_code == 0             # 1. write the template
+    meta, _, geometry, fields = raw.read(str(target), layer="hazard")     # 2. draw: a second hazard
+    pond = shapely.from_wkb(geometry[0])
+    mast = shapely.affinity.translate(pond, xoff=0.0, yoff=0.00035)      # about 39 m north
+    raw.write(str(target), np.array([shapely.to_wkb(mast)], dtype=object),
+              [np.array(["Mast"], dtype=object), np.array([True]), np.array([np.nan]), np.array([np.nan])],
+              fields=list(meta["fields"]), layer="hazard", driver="GPKG", geometry_type=meta["geometry_type"],
+              crs=meta["crs"], append=True)
+    result = run("check", target, "--json")                              # 3. check
+    assert result.exit_code == 0, result.output
+    hazards = json.loads(result.stdout)["zones"]["hazard"]
+    assert [h["name"] for h in hazards] == ["Example pond", "Mast"]
+    # the null penalty and buffer of the new hazard are absent: default buffer 0
+    assert hazards[1]["buffer_m"] == 0 and hazards[1]["ends_run"] is True
+    # 4. plan: `veerwise plan my-yard.gpkg RUN` (a plan on a GeoPackage runs in
+    # test_plan_on_merged_files_keeps_the_merged_copy_and_hashes_every_input)
+
+
+def test_without_the_gis_extra_a_geopackage_template_gets_one_line(tmp_path, monkeypatch):
+    monkeypatch.setitem(sys.modules, "pyogrio", None)
+    result = run("site-template", "-o", tmp_path / "t.gpkg")
+    assert result.exit_code == 2 and result.stderr.count("\n") == 1
+    assert "pip install 'veerwise[gis]'" in result.stderr and not (tmp_path / "t.gpkg").exists()

@@ -159,3 +159,38 @@ def grid(site, output, force, crs, fix, max_bytes, cell_m, hazard_overlap, bound
     with atomic_output(output) as tmp:
         plot_grid(loaded, labelled, tmp)
     click.echo(f"wrote {output} ({labelled.shape[1]} x {labelled.shape[0]} cells of {spec.cell_m:g} m)")
+
+
+@cli.command("site-template", cls=SectionedCommand)
+@output_option("Template to write: .geojson (or .json) or .gpkg (GeoPackage, gis extra).")
+@force_option
+def site_template(output, force):
+    """Write an empty site template to draw a yard on in a GIS editor.
+
+    Its layers already have every column with its type and one example feature per
+    role (boundary, start, goal, hazard, rough, drift), at a fictional spot: open it in
+    the GIS editor, redraw or move the examples onto the yard, delete what does not
+    apply, save, and run `veerwise check` on it. The GeoPackage has one layer per role;
+    the GeoJSON one layer holding every column (null where a column does not apply)
+    and a second drift example, so that the editor types its from_deg column too.
+
+    \b
+    Examples:
+      veerwise site-template -o my-yard.gpkg
+      veerwise site-template -o my-yard.geojson
+    """
+    from planner.export import atomic_output, check_output
+    from planner.gis import template_geojson_text, write_template_geopackage
+
+    fmt = check_output(output, ("geojson", "geopackage"), force=force)
+    if fmt == "geopackage":
+        from planner.gis import require_pyogrio
+
+        require_pyogrio(f"-o {output}: writing a GeoPackage")
+        with atomic_output(output) as tmp:
+            tmp.unlink()  # GDAL creates the GeoPackage itself
+            write_template_geopackage(tmp)
+    else:
+        with atomic_output(output) as tmp:
+            tmp.write_bytes(template_geojson_text().encode("utf-8"))
+    click.echo(f"wrote {output}: one example feature per role to redraw on your yard, then run veerwise check on it")
