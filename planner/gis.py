@@ -187,6 +187,8 @@ def read_vector(path: str, data: bytes) -> tuple[list, list, list, list]:
             notes.append(note)
         role = name.strip().lower() if name.strip().lower() in ROLES else None
         columns = [str(c) for c in meta["fields"]]
+        if Path(path).suffix.lower() == ".shp":
+            columns = [shapefile_column(c) for c in columns]
         for k in range(len(geometry)):
             props = {c: _value(fields[j][k]) for j, c in enumerate(columns)}
             props = {c: v for c, v in props.items() if v is not None}
@@ -200,6 +202,25 @@ def read_vector(path: str, data: bytes) -> tuple[list, list, list, list]:
                              "geometry": _geometry(geometry[k], transform, f"{prefix}: feature {k}")})
             origins.append((prefix, k))
     return features, origins, notes, extra
+
+
+#: Every property name a site feature may carry.
+PROPERTY_NAMES = ("role", "name", "ends_run", "penalty_m", "buffer_m", "cost_factor", "toward_deg", "from_deg",
+                  "drift_per_m", "spread_per_sqrt_m", "chance")
+#: A Shapefile's attribute table (dBase) keeps at most this many characters of a column name.
+SHAPEFILE_NAME_CHARS = 10
+
+
+def shapefile_column(column: str) -> str:
+    """A Shapefile column name cut to 10 characters, as the property it is the start of.
+
+    >>> shapefile_column("spread_per"), shapefile_column("cost_facto"), shapefile_column("depth")
+    ('spread_per_sqrt_m', 'cost_factor', 'depth')
+    """
+    if len(column) != SHAPEFILE_NAME_CHARS:
+        return column
+    found = [p for p in PROPERTY_NAMES if len(p) > SHAPEFILE_NAME_CHARS and p.startswith(column)]
+    return found[0] if len(found) == 1 else column
 
 
 def _first_line(err) -> str:

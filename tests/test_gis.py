@@ -543,3 +543,53 @@ def test_without_the_gis_extra_a_geopackage_template_gets_one_line(tmp_path, mon
     result = run("site-template", "-o", tmp_path / "t.gpkg")
     assert result.exit_code == 2 and result.stderr.count("\n") == 1
     assert "pip install 'veerwise[gis]'" in result.stderr and not (tmp_path / "t.gpkg").exists()
+
+
+def test_a_demo_site_saved_as_a_shapefile_gives_the_same_grid(demo_grids, tmp_path):
+    # dBase keeps 10 characters of a column name: 'spread_per_sqrt_m' comes back as 'spread_per'
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        import shapely
+
+        meta, _, geometry, fields = raw.read(str(MAPS / "drone-range.geojson"))
+        kinds = shapely.get_type_id(shapely.from_wkb(geometry))
+        # a Shapefile holds one geometry type: points and areas go in two files
+        for suffix, keep in (("areas", kinds != 0), ("points", kinds == 0)):
+            raw.write(str(tmp_path / f"{suffix}.shp"), geometry[keep], [f[keep] for f in fields],
+                      fields=meta["fields"], crs=meta["crs"], driver="ESRI Shapefile",
+                      geometry_type="Polygon" if suffix == "areas" else "Point")
+        assert "spread_per" in list(pyogrio.read_info(tmp_path / "areas.shp")["fields"])
+        site = load_sites([tmp_path / "areas.shp", tmp_path / "points.shp"])
+    cell, original = demo_grids["drone-range"]
+    grid = grid_of(site, cell)
+    assert np.array_equal(grid.label, original.label) and np.array_equal(grid.goal, original.goal)
+    # the sidecars (.shx, .dbf, .prj, .cpg) are inputs too, each hashed
+    assert {Path(p).suffix for p, _ in site.inputs} >= {".shp", ".shx", ".dbf", ".prj"}
+
+
+def _three_d_multi(data):
+    """Every position with a third coordinate, every zone polygon as a one-part MultiPolygon."""
+    def lift(node):
+        if node and isinstance(node[0], (int, float)):
+            return [node[0], node[1], 212.0]
+        return [lift(n) for n in node]
+
+    for f in data["features"]:
+        geom = f["geometry"]
+        geom["coordinates"] = lift(geom["coordinates"])
+        if geom["type"] == "Polygon":
+            geom["type"], geom["coordinates"] = "MultiPolygon", [geom["coordinates"]]
+    return data
+
+
+@pytest.mark.parametrize("demo", DEMOS)
+def test_z_coordinates_and_multipolygons_give_the_same_grid(demo_grids, tmp_path, demo):
+    data = _three_d_multi(json.loads((MAPS / f"{demo}.geojson").read_text()))
+    target = tmp_path / "z.geojson"
+    target.write_text(json.dumps(data))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        site = load_sites(target)
+    cell, original = demo_grids[demo]
+    grid = grid_of(site, cell)
+    assert np.array_equal(grid.label, original.label) and np.array_equal(grid.goal, original.goal)

@@ -191,7 +191,15 @@ def _ground(ground_elev_m, dem, vertical_datum):
 
 def _export_files(loaded, fmt, contents, names, out, targets, alt_m, ground) -> list:
     """Write the files ``export`` was asked for; returns their paths."""
-    from planner.export import atomic_output, notice, sidecar_path, write_csv, write_geojson, write_gpx
+    from planner.export import (
+        atomic_output,
+        csv_sidecar_text,
+        notice,
+        sidecar_path,
+        write_csv,
+        write_geojson,
+        write_gpx,
+    )
     from planner.runfolder import rebuild, run_routes
 
     site, grid, model = rebuild(loaded)
@@ -222,6 +230,9 @@ def _export_files(loaded, fmt, contents, names, out, targets, alt_m, ground) -> 
         return [write_geojson(chosen if len(chosen) > 1 else chosen[0], out, site=site, alt_m=alt_m, ground=ground)]
     if fmt == "gpx":
         return [write_gpx(chosen, out, alt_m=alt_m, ground=ground)]
+    # every route's heights first (a DEM may not cover a waypoint): nothing is written unless all can be
+    for r in chosen:
+        csv_sidecar_text(r, alt_m=alt_m, ground=ground)
     written = []
     for r, target in zip(chosen, targets, strict=True):
         written += [write_csv(r, target, alt_m=alt_m, ground=ground), sidecar_path(target)]
