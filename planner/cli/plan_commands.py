@@ -21,7 +21,6 @@ from planner.cli.options import (
     learn_options,
     risk_table_options,
     run_argument,
-    site_argument,
     site_options,
 )
 from planner.cli.settings_file import settings_option
@@ -55,7 +54,7 @@ EXIT_NOT_READY = 3
 
 
 @cli.command(cls=SectionedCommand)
-@site_argument
+@click.argument("site", nargs=-1, type=click.Path(dir_okay=False, path_type=str))
 @run_argument
 @force_option
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON instead of text.")
@@ -119,6 +118,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     from planner.transactions import check_out, run_lock, stop_on_sigterm
 
     started = time.perf_counter()
+    if not site:
+        raise click.UsageError(f"give one or more site files, then the run folder (got only {run!r})")
     check_out(run, force=force)
     # Held until the command ends: a second plan to the same folder is refused at once.
     click.get_current_context().with_resource(run_lock(run))
