@@ -925,6 +925,8 @@ def _reprojected_feature(index: int, feature, transform, source: str):
     props = feature.get("properties")
     name = props.get("name") if isinstance(props, dict) else None
     where = f"{source}: feature {index}" + (f" ({name[:100]!r})" if isinstance(name, str) else "")
+    _refuse_repeated(feature, where)  # the copy below would forget them
+    _refuse_repeated(feature["geometry"], f"{where} geometry")
     return {**feature, "geometry": _reproject_positions(feature["geometry"], transform, where)}
 
 
