@@ -129,7 +129,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     settings_file, settings_sha256, made_from = click.get_current_context().meta.get("settings_file",
                                                                                 (None, None, None))
     if made_from is not None and made_from != loaded.sha256:
-        click.echo(f"veerwise: note: {site} is not the site file the run in {settings_file} was made from "
+        click.echo(f"veerwise: note: {' + '.join(site)} is not the site file the run in {settings_file} was made from "
                    "(its hash differs); the settings are taken all the same", err=True)
     dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m, loaded, spec)
     labelled = rasterise(loaded, spec)
