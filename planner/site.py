@@ -4,6 +4,11 @@ This stage owns the site-file schema (roles and their properties), every rule th
 schema imposes, and the working frame (a local transverse Mercator centred on the
 boundary, or a projected metric CRS the user names). Nothing is repaired silently:
 an invalid polygon is an error naming the feature unless ``fix=True``.
+
+The module is long on purpose: the schema's rules are one list, checked in one pass
+with one way of naming a feature, so a rule cannot be missed by one reader and kept
+by another. What a legacy ``crs`` member means is in :mod:`planner.crs_member`;
+formats other than GeoJSON and merging are in :mod:`planner.gis`.
 """
 
 from __future__ import annotations
@@ -25,6 +30,7 @@ import numpy as np
 import shapely
 from shapely.geometry import MultiPolygon, Point, Polygon
 
+from planner.crs_member import crs_member_transform, reproject_positions
 from planner.errors import SettingsError, SiteError, SiteWarning
 from planner.names import check_unique, clean_name, file_key
 
@@ -794,87 +800,6 @@ def _finite(value) -> bool:
         return False
 
 
-def crs_member_transform(member, source: str):
-    """What a legacy GeoJSON ``crs`` member means for a file's positions.
-
-    Returns ``(transform, note)``: ``transform`` is None when the member names WGS 84
-    lon/lat (CRS84, or EPSG:4326 with positions in lon/lat order as RFC 7946 has them),
-    else a function taking arrays of x and y in the named CRS to lon and lat (pyproj,
-    ``always_xy``). ``note`` says in one line what was done.
-
-    Raises
-    ------
-    SiteError
-        When the member names no CRS pyproj can resolve, or one that is not horizontal
-        (geographic or projected), with the exact fix.
-    """
-    props = member.get("properties") if isinstance(member, dict) else None
-    name = props.get("name") if isinstance(props, dict) else None
-    fix = ("delete the member if the positions are WGS 84 lon/lat, name the CRS as 'EPSG:NNNN' (for example "
-           f"'urn:ogc:def:crs:EPSG::32632'), or {REPROJECT_ADVICE}")
-    if not isinstance(name, str) or not name.strip():
-        raise SiteError(f"{source}: has a 'crs' member that names no CRS (only the 'name' form is read); {fix}")
-    if name.strip().lower() in LONLAT_CRS_NAMES:
-        return None, (f"{source}: its legacy 'crs' member names {name.strip()!r:.80}, which is WGS 84 lon/lat; "
-                      "positions read as [lon, lat] as RFC 7946 has them")
-    from pyproj import CRS, Transformer
-    from pyproj.exceptions import CRSError
-
-    try:
-        named = CRS.from_user_input(name.strip())
-    except CRSError as err:
-        raise SiteError(f"{source}: has a 'crs' member naming {name!r:.80}, which pyproj cannot resolve; "
-                        f"{fix}") from err
-    if not (named.is_projected or named.is_geographic):
-        raise SiteError(f"{source}: has a 'crs' member naming {name!r:.80}, a {named.type_name}, not a horizontal "
-                        f"CRS; {fix}")
-    transformer = Transformer.from_crs(named, CRS.from_epsg(4326), always_xy=True)
-
-    def transform(x, y):
-        lon, lat = transformer.transform(np.asarray(x, float), np.asarray(y, float))
-        return np.asarray(lon, float), np.asarray(lat, float)
-
-    code = named.to_authority()
-    called = f"{named.name} ({':'.join(code)})" if code else named.name
-    return transform, (f"{source}: positions are in {called} as its 'crs' member says; reprojected to WGS 84 "
-                       "lon/lat with pyproj")
-
-
-def _reproject_positions(geometry, transform, where: str):
-    """A copy of a GeoJSON geometry with every position taken to lon/lat by ``transform``.
-
-    Positions must be 2 or 3 finite numbers; anything else is left for the feature's
-    own checks to name. A third coordinate is kept as it is.
-    """
-    if not isinstance(geometry, dict) or not isinstance(geometry.get("coordinates"), list):
-        return geometry
-    positions: list = []
-
-    def collect(node):
-        if isinstance(node, list) and node and all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                                   for v in node):
-            _check_position(node, where, lonlat=False)
-            positions.append(node)
-        elif isinstance(node, list):
-            for child in node:
-                collect(child)
-
-    collect(geometry["coordinates"])
-    if not positions:
-        return geometry
-    x, y = transform([p[0] for p in positions], [p[1] for p in positions])
-    if not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
-        raise SiteError(f"{where}: positions cannot be reprojected to lon/lat from the CRS the file names")
-    moved = {id(p): [float(a), float(b), *p[2:]] for p, a, b in zip(positions, x, y, strict=True)}
-
-    def rebuild(node):
-        if id(node) in moved:
-            return moved[id(node)]
-        return [rebuild(c) for c in node] if isinstance(node, list) else node
-
-    return {**geometry, "coordinates": rebuild(geometry["coordinates"])}
-
-
 def lonlat_features(obj: Any, source: str) -> tuple[list, list[str]]:
     """The features of a parsed site collection with positions in WGS 84 lon/lat, and notes.
 
@@ -888,7 +813,7 @@ def lonlat_features(obj: Any, source: str) -> tuple[list, list[str]]:
     notes = []
     transform = None
     if "crs" in obj and obj["crs"] is not None:
-        transform, note = crs_member_transform(obj["crs"], source)
+        transform, note = crs_member_transform(obj["crs"], source, LONLAT_CRS_NAMES, REPROJECT_ADVICE)
         notes.append(note)
     _refuse_repeated(obj, source)
     _refuse_repeated(obj.get("properties"), f"{source}: top-level properties")
@@ -927,7 +852,7 @@ def _reprojected_feature(index: int, feature, transform, source: str):
     where = f"{source}: feature {index}" + (f" ({name[:100]!r})" if isinstance(name, str) else "")
     _refuse_repeated(feature, where)  # the copy below would forget them
     _refuse_repeated(feature["geometry"], f"{where} geometry")
-    return {**feature, "geometry": _reproject_positions(feature["geometry"], transform, where)}
+    return {**feature, "geometry": reproject_positions(feature["geometry"], transform, where)}
 
 
 def _location_warnings(frame: Frame, extent_m: tuple[float, float], named_crs: str | None,
