@@ -593,3 +593,25 @@ def test_z_coordinates_and_multipolygons_give_the_same_grid(demo_grids, tmp_path
     cell, original = demo_grids[demo]
     grid = grid_of(site, cell)
     assert np.array_equal(grid.label, original.label) and np.array_equal(grid.goal, original.goal)
+
+
+def test_check_says_in_one_line_that_a_projected_file_was_reprojected(tmp_path):
+    from pyproj import Transformer
+
+    data = small_site_dict()
+    t = Transformer.from_crs("EPSG:4326", "EPSG:32632", always_xy=True)
+
+    def walk(node):
+        if node and isinstance(node[0], (int, float)):
+            return list(t.transform(node[0], node[1]))
+        return [walk(n) for n in node]
+
+    for f in data["features"]:
+        f["geometry"]["coordinates"] = walk(f["geometry"]["coordinates"])
+    data["crs"] = {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::32632"}}
+    path = tmp_path / "utm.geojson"
+    path.write_text(json.dumps(data))
+    result = run("check", path, "--cell", "2")
+    assert result.exit_code == 0, result.output
+    assert result.stderr == (f"veerwise: note: {path}: positions are in WGS 84 / UTM zone 32N (EPSG:32632) as its "
+                             "'crs' member says; reprojected to WGS 84 lon/lat with pyproj\n")
