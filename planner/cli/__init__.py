@@ -114,4 +114,4 @@ def cli():
 
 main = cli
 
-from planner.cli import plan_commands, run_commands, site_commands  # noqa: E402,F401  (registers commands)
+from planner.cli import campaign_commands, plan_commands, run_commands, site_commands  # noqa: E402,F401  (registers commands)

@@ -26,6 +26,7 @@ SECTIONS = {
                  "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
     "Risk table": ("noises", "drift_scales", "budget_m", "budget_min", "speed_mps", "rollouts", "rollout_seed",
                    "grid_check", "grid_levels"),
+    "Campaign": ("out_dir", "scheduler", "n_workers", "check_only"),
 }
 _SECTION_OF = {name: title for title, names in SECTIONS.items() for name in names}
 _ORDER = {name: k for k, name in enumerate(n for names in SECTIONS.values() for n in names)}
