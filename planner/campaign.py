@@ -690,7 +690,7 @@ class CampaignRun:
     dashboard: str | None = None
 
 
-def make_client(*, scheduler: str | None = None, n_workers: int | None = None, timeout_s: float = 10.0):
+def make_client(*, scheduler: str | None = None, n_workers: int | None = None, timeout_s: float = 5.0):
     """A Dask client: of the running scheduler at ``scheduler``, or of a new local cluster.
 
     The local cluster has ``n_workers`` processes (default: the cores this process may
@@ -748,6 +748,7 @@ def run_jobs(client, plan: Plan, out_dir, *, share: bool = True,
     from distributed import as_completed
 
     started = time.perf_counter()
+    out_dir = Path(out_dir).resolve()  # workers may run in another folder (or on another machine)
     site_paths = write_sites(plan, out_dir)
     (Path(out_dir) / RUNS_DIR).mkdir(exist_ok=True)
     shared = {}

@@ -132,6 +132,16 @@ def _with(values, value) -> tuple[float, ...]:
     return values if any(math.isclose(v, value, rel_tol=0, abs_tol=1e-12) for v in values) else (*values, value)
 
 
+def checked_plan(campaign_file):
+    """The campaign file read, every scenario checked and its job made (:class:`planner.campaign.Plan`)."""
+    from planner.campaign import check_campaign, read_campaign
+
+    spec = read_campaign(campaign_file)
+    plan_values = _plan_values(spec)
+    return check_campaign(spec, lambda scenario, site_of, grid_of: scenario_settings(spec, plan_values, scenario,
+                                                                                     site_of, grid_of))
+
+
 def check_out_dir(out: Path) -> None:
     """Refuse an output folder that holds anything but an earlier run of a campaign."""
     from planner.campaign import CampaignError
@@ -201,16 +211,14 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
       veerwise campaign day.toml --out day-1 --workers 4
       veerwise campaign day.toml --out day-1 --scheduler tcp://10.0.0.5:8786
     """
-    from planner.campaign import check_campaign, make_client, read_campaign, run_jobs
+    from planner.campaign import make_client, run_jobs
     from planner.campaign_report import outcome_line, write_report
     from planner.runfolder import Progress, run_lock
 
     started = time.perf_counter()
     out = Path(out_dir)
-    spec = read_campaign(campaign_file)
-    plan_values = _plan_values(spec)
-    plan = check_campaign(spec, lambda scenario, site_of, grid_of: scenario_settings(spec, plan_values, scenario,
-                                                                                     site_of, grid_of))
+    plan = checked_plan(campaign_file)
+    spec = plan.campaign
     check_out_dir(out)
     import os
 
@@ -230,8 +238,11 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
         out.mkdir(exist_ok=True)
         console = progress_console(quiet)
         with run_lock(out), Progress(console) as progress:
-            if client.dashboard_link:
-                progress(f"Dask dashboard: {client.dashboard_link}")
+            link = dashboard_link(client, local=scheduler is None)
+            if link:
+                progress(f"Dask dashboard: {link}")
+                if console is None and not quiet:
+                    click.echo(f"Dask dashboard: {link}", err=True)
             done = [0]
             with progress.task(f"scenarios ({len(plan.jobs)})", len(plan.jobs)) as report:
                 def on_outcome(job, outcome):
@@ -260,6 +271,18 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
     click.echo("For simulation and review only; not approved for field operation.")
     if failed:
         raise click.exceptions.Exit(EXIT_SOME_FAILED)
+
+
+def dashboard_link(client, *, local: bool) -> str | None:
+    """The Dask dashboard's address, or None: a local cluster serves one only when bokeh is installed."""
+    import importlib.util
+
+    if local and importlib.util.find_spec("bokeh") is None:
+        return None
+    try:
+        return client.dashboard_link or None
+    except (AttributeError, KeyError, ValueError):
+        return None
 
 
 def _duration(seconds: float) -> str:
