@@ -85,6 +85,7 @@ def main() -> None:
     parser.add_argument("--pairs", type=int, default=5)
     parser.add_argument("--drifts", type=int, default=4)
     parser.add_argument("--no-plan-calls", action="store_true", help="skip the separate plan calls")
+    parser.add_argument("--no-warm-up", action="store_true", help="the numba cache is warm already")
     args = parser.parse_args()
     tmp = Path(tempfile.mkdtemp(prefix="bench-campaign-"))
     try:
@@ -92,9 +93,8 @@ def main() -> None:
         file.write_text(campaign_text(args.pairs, args.drifts, ROOT / "maps" / "drone-range.geojson"))
         n = args.pairs * 2 * args.drifts
         print(f"{n} scenarios on the drone range; nproc {os.cpu_count()}; load average before: {load()}")
-        warm = tmp / "warm"
-        run_campaign(file, warm, 2, True)  # fills the numba cache; not counted
-        shutil.rmtree(warm / "runs")
+        if not args.no_warm_up:
+            run_campaign(file, tmp / "warm", 2, True)  # fills the numba cache; not counted
         rows = []
         for label, workers, share in (("1 worker, shared grids", 1, True), ("2 workers, shared grids", 2, True),
                                       ("2 workers, every scenario builds its own grid", 2, False)):

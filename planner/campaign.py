@@ -418,8 +418,9 @@ PROVENANCE_SETTINGS = ("seed", "settings_file", "settings_sha256")
 def scenario_identity(site_sha256: str, settings_record: dict) -> str:
     """The scenario's identity: SHA-256 over its site bytes' hash and its settings (not the seed).
 
-    >>> scenario_identity("ab" * 32, {"rollouts": 300, "seed": 1})[:12]
-    'a3b9f2a3e0e6'
+    >>> a = scenario_identity("ab" * 32, {"rollouts": 300, "seed": 1})
+    >>> a == scenario_identity("ab" * 32, {"rollouts": 300, "seed": 2}), a == scenario_identity("ab" * 32, {})
+    (True, False)
     """
     plain = {k: v for k, v in settings_record.items() if k not in PROVENANCE_SETTINGS}
     text = json.dumps({"site_sha256": site_sha256, "settings": plain}, sort_keys=True, separators=(",", ":"))

@@ -121,7 +121,7 @@ def heat_map(plan, rows: list[dict], path) -> None:
     floor = style.RISK_FLOOR
     top = max([c.risk_limit * 10, *shown, floor * 10])
     norm = LogNorm(vmin=floor, vmax=min(1.0, top))
-    width = min(16.0, 1.2 + 0.9 * len(drifts) * len(vehicles) + 1.0 * len(vehicles))
+    width = min(18.0, 2.6 + 1.15 * len(drifts) * len(vehicles) + 0.4 * len(vehicles))
     height = 1.4 + 2 * (0.45 * len(pairs) + 0.9)
     plt.rcParams.update({"font.size": style.FONT_SIZE, "text.parse_math": False, "text.usetex": False})
     fig, axes = plt.subplots(len(routes), len(vehicles), figsize=(width, height), squeeze=False,
@@ -152,12 +152,15 @@ def heat_map(plan, rows: list[dict], path) -> None:
                         ax.add_patch(matplotlib.patches.Rectangle((b - 0.5, a - 0.5), 1, 1, fill=False,
                                                                   edgecolor=style.HAZARD, linewidth=2.0))
                     dark = not np.isnan(grid[a, b]) and norm(grid[a, b]) < 0.5
-                    ax.text(b, a, text, ha="center", va="center", fontsize=style.FONT_SIZE - 1,
+                    ax.text(b, a, text, ha="center", va="center", fontsize=style.FONT_SIZE - 2,
                             color="#ffffff" if dark else style.TEXT)
             ax.set_xticks(range(len(drifts)), drifts, rotation=30, ha="right")
             ax.set_yticks(range(len(pairs)), pairs if j == 0 else [""] * len(pairs))
             ax.set_title(f"{vehicle}: {style.POLICY[route]['label']}", fontsize=style.FONT_SIZE)
     bar = fig.colorbar(image, ax=axes, shrink=0.8)
+    ticks = [t for t in (1e-6, 1e-5, 1e-4, 1e-3, 1e-2, 1e-1, 1.0) if norm.vmin <= t <= norm.vmax]
+    bar.set_ticks(ticks, labels=[notation.percent(t) for t in ticks])
+    bar.ax.minorticks_off()
     bar.set_label("P(incident), log scale")
     fig.suptitle(f"P(incident) per start/goal pair and drift case (framed: above {notation.percent(c.risk_limit)})"
                  f"\n{style.FIGURE_NOTICE}", fontsize=style.FONT_SIZE)

@@ -288,3 +288,12 @@ def test_an_unreachable_scheduler_is_one_line_exit_2_nothing_written(tmp_path, n
     error = [line for line in result.output.splitlines() if line.startswith("veerwise: error: ")]
     assert len(error) == 1 and "--scheduler tcp://127.0.0.1:9: cannot reach a Dask scheduler" in error[0]
     assert not out.exists()
+
+
+def test_the_example_campaign_checks_and_expands_to_eight_scenarios(tmp_path, no_heavy_work):
+    example = Path(__file__).parents[1] / "examples" / "drone-day.toml"
+    out = tmp_path / "day"
+    result = run("campaign", example, "--out", out, "--check")
+    assert result.exit_code == 0, result.output
+    assert "8 scenarios (2 pairs x 2 vehicles x 2 drift cases)" in result.output
+    assert not out.exists()

@@ -213,6 +213,7 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
     """
     from planner.campaign import make_client, run_jobs
     from planner.campaign_report import outcome_line, write_report
+    from planner.errors import Interrupted
     from planner.runfolder import Progress, run_lock
 
     started = time.perf_counter()
@@ -254,7 +255,11 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
                     elif not quiet:
                         click.echo(line, err=True)
 
-                result = run_jobs(client, plan, out, on_outcome=on_outcome)
+                try:
+                    result = run_jobs(client, plan, out, on_outcome=on_outcome)
+                except KeyboardInterrupt as err:
+                    raise Interrupted(f"stopped; the scenarios finished so far keep their run folders in {out} "
+                                      "and a rerun into it resumes") from err
             paths = write_report(plan, result, out)
     finally:
         cluster = getattr(client, "cluster", None)
