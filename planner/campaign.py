@@ -607,7 +607,8 @@ def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = 
     so the other scenarios go on; nothing is left half-written (the run folder's own
     transaction).
     """
-    from planner.runfolder import Progress, check_out, compute_plan, run_lock, write_run
+    from planner.runfolder import Progress, compute_plan, write_run
+    from planner.transactions import check_out, run_lock
 
     folder = Path(out_dir) / RUNS_DIR / job.folder
     started = time.perf_counter()
