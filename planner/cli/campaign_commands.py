@@ -164,9 +164,11 @@ def check_out_dir(out: Path) -> None:
 def estimate_s(plan, n_workers: int) -> float:
     """A rough time estimate of the campaign: seconds per scenario from its grid and training budget.
 
-    Fitted on this project's benchmark machine (benchmarks/bench_campaign.py): about 12 s
-    of fixed work per scenario (figures, briefing) plus a share that grows with usable
-    cells times headings times training runs. A guide for planning the day, not a promise.
+    About 12 s of fixed work per scenario (start-up, figures, briefing) plus a share
+    that grows with usable cells x headings x training runs x training budget; set from
+    one measurement (benchmarks/bench_campaign.py, 1 worker: about 15 s per drone-range
+    scenario at 8 m cells, on a loaded 2-core machine). A guide for planning the day, not
+    a promise: on a busy machine expect longer.
     """
     total = 0.0
     for job in plan.jobs:
