@@ -97,6 +97,14 @@ class PlanSettings:
         for m in self.drift_scales:
             if not (np.isfinite(m) and m >= 0.0):
                 raise SettingsError(f"--table-drifts values must be finite and >= 0, got {m}")
+        # The headline figures, the verdicts and the grid check are read from the row at
+        # the planning noise and drift: a table without it cannot carry them.
+        if not any(math.isclose(n, self.learn.epsilon) for n in self.noises):
+            raise SettingsError(f"--table-noises must include the planning noise --epsilon {self.learn.epsilon:g}: "
+                                "the headline figures are read from that row")
+        if not any(math.isclose(m, self.dynamics.drift_scale) for m in self.drift_scales):
+            raise SettingsError(f"--table-drifts must include the planning drift --plan-drift "
+                                f"{self.dynamics.drift_scale:g}: the headline figures are read from that row")
         if self.budget_m is not None and not (np.isfinite(self.budget_m) and self.budget_m > 0):
             raise SettingsError(f"--budget-m must be a positive number of metres, got {self.budget_m}")
         if self.budget_min is not None:

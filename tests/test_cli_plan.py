@@ -441,6 +441,8 @@ def test_progress_shows_every_long_stage_and_how_far_it_is(planned, tmp_path, ca
     (["--budget-min", "5"], "--budget-min needs --speed-mps"),
     (["--budget-m", "100", "--budget-min", "5", "--speed-mps", "2"], "give the travel budget once"),
     (["--speed-mps", "2"], "--speed-mps is the speed a time budget (--budget-min) is travelled at"),
+    (["--table-noises", "0,0.2"], "--table-noises must include the planning noise --epsilon 0.1"),
+    (["--plan-drift", "1.5", "--table-drifts", "1,2"], "--table-drifts must include the planning drift --plan-drift 1.5"),
 ])
 def test_bad_vehicle_settings_are_one_line_exit_2_nothing_written(tmp_path, args, message):
     site, out, result = plan_small_site(tmp_path, *SMALL, *args)

@@ -672,7 +672,7 @@ BAD_RUNS = [
     ("creation time missing", _set("created_utc", delete=True), ["'created_utc' is missing"], None),
     ("penalty not a number", _set("model", "boundary_penalty_m", value="high"), ["'model.boundary_penalty_m'"], None),
     # The user gave no --drift-scale: a drift scale too strong for the grid is the manifest's fault.
-    ("recorded drift scales too strong", _set("settings", "drift_scales", value=[1e6]),
+    ("recorded drift scales too strong", _set("settings", "drift_scales", value=[1.0, 1e6]),
      ["recorded settings do not rebuild", "the manifest was changed"], None),
 ]
 
