@@ -32,7 +32,8 @@ from planner.errors import RunFolderError
 from planner.risk import find_row, format_prob
 from planner.risk_table import three_level_words
 
-#: The two policies, in the order the briefing shows them.
+#: The two learned policies, in the order the briefing shows them (the third route, with
+#: ``--risk-budget``, is in :mod:`planner.brief_budget`).
 POLICIES = tuple(style.POLICY)
 
 #: The exact reference each learned policy should match once training has converged.
@@ -164,6 +165,10 @@ class BriefInputs:
     settings: object
     manifest: dict
     run_name: str = ""
+    #: ``--risk-budget``: the budget record and each route's causes
+    #: (``planner.budget_plan.budget_record`` / ``explain_route``); None and {} without
+    budget: dict | None = None
+    causes: dict = None
 
 
 def brief_content(inputs: BriefInputs) -> dict:
@@ -231,6 +236,16 @@ def brief_content(inputs: BriefInputs) -> dict:
         "notice": NOTICE,
     }
     content["banners"] = _banners(policies)
+    budget = inputs.budget if inputs.budget is not None and "budget" in inputs.routes else None
+    content["budget"] = budget
+    if budget is not None:
+        from planner.brief_budget import budget_policy
+
+        content["budget_route"] = budget_policy(budget, inputs.routes["budget"], find_row(rows, "budget", eps, base))
+        if not budget["met"]:
+            content["banners"].append("RISK BUDGET NOT MET: no route meets P(incident) at most "
+                                      f"{format_prob(budget['budget'])}; §budget says how close the least risky "
+                                      "one comes.")
     content["glance"] = _glance(inputs, content, p, rows)
     content["sections"] = [
         {"title": "1. The two routes", "blocks": _section_routes(content, p)},
@@ -242,7 +257,54 @@ def brief_content(inputs: BriefInputs) -> dict:
         # one piece, never split across pages: what is signed, then the signature
         {"title": "7. Sign-off", "keep": True, "blocks": _section_signoff(inputs, content)},
     ]
+    if budget is not None:
+        from planner.brief_budget import section_budget
+
+        makers = {"para": _para, "subhead": _subhead, "table": _table, "figure": _figure}
+        content["sections"].insert(1, {"title": "2. The route within the risk budget, and why each route is risky",
+                                       "blocks": section_budget(content, budget, inputs.causes or {}, inputs.routes,
+                                                                rows, makers)})
+        content["sections"][0]["title"] = "1. The cautious and the shortest route"
+        for k, section in enumerate(content["sections"][2:], start=3):
+            section["title"] = f"{k}." + section["title"].split(".", 1)[1]
+        _renumber(content)
     return content
+
+
+_SECTION_REF = re.compile(r"\b([Ss]ection) ([2-7])\b")
+#: Where the budget's own text points to its section and to the risk table's.
+_BUDGET_REFS = {"§budget": "section 2", "§risk": "section 3"}
+
+
+def _renumber_text(text):
+    if not isinstance(text, str):
+        return text
+    text = _SECTION_REF.sub(lambda m: f"{m[1]} {int(m[2]) + 1}", text)
+    for mark, words in _BUDGET_REFS.items():
+        text = text.replace(mark, words)
+    return text
+
+
+def _renumber(content: dict) -> None:
+    """Point every "section N" of the briefing past the budget's section 2 (inserted after the rest was written)."""
+    content["glance"] = [(q, _renumber_text(a), alert) for q, a, alert in content["glance"]]
+    content["banners"] = [_renumber_text(b) for b in content["banners"]]
+
+    def fix(block):
+        for key in ("text", "caption"):
+            if key in block:
+                block[key] = _renumber_text(block[key])
+        if "rows" in block:
+            block["rows"] = [[_renumber_text(v) for v in r] for r in block["rows"]]
+        if block.get("kind") == "list":
+            block["items"] = [_renumber_text(i) for i in block["items"]]
+        if block.get("kind") == "signed":
+            block["items"] = [(label, _renumber_text(v), h) for label, v, h in block["items"]]
+            fix(block["routes"])
+
+    for section in content["sections"]:
+        for block in section["blocks"]:
+            fix(block)
 
 
 def _with_range(ref) -> str:
@@ -360,6 +422,24 @@ def _section_signoff(inputs: BriefInputs, content: dict) -> list:
                        x["p_incident"], x["delivered"],
                        f"routes-{name}.geojson" + (f" (sha256 {digest[:16]}...)" if digest else "")])
     alerts = [(k, 3) for k, x in enumerate(content["policies"]) if not x["converged"]]
+    budget = content.get("budget")
+    fields = list(SIGNOFF_FIELDS)
+    budget_items = []
+    if budget is not None:
+        from planner.brief_budget import budget_words, set_by_words
+
+        x = content["budget_route"]
+        digest = files.get("routes-budget.geojson")
+        routes.append(["within-budget route", f"{x['waypoint_length_m']:.1f} m, {x['waypoints']} waypoints, ends "
+                       f"{_ends(inputs.routes['budget'])}", x["p_incident"], x["delivered"],
+                       "routes-budget.geojson" + (f" (sha256 {digest[:16]}...)" if digest else "")])
+        if not budget["met"]:
+            alerts.append((len(routes) - 1, 3))
+        budget_items.append(("Risk budget", f"{budget_words(budget)}; {set_by_words(budget)}"
+                             + ("" if budget["met"] else "; NO ROUTE MEETS IT"), False))
+        if not budget.get("set_by"):
+            # the budget is the reviewer's limit: who set it is written in by hand when plan was not told
+            fields.insert(0, ("Risk budget set by (name, role)", 10))
     signed = {
         "kind": "signed", "title": "What is signed",
         "items": [
@@ -369,6 +449,7 @@ def _section_signoff(inputs: BriefInputs, content: dict) -> list:
             ("", content["site_sha256"], True),
             ("Figures for", f"execution noise {eps:g}, drift x{base:g}; every setting in section 5 and "
                             "manifest.json", False),
+            *budget_items,
         ],
         "routes": _table(["delivered route", "as flown by its waypoints", f"P(incident), noise {eps:g}",
                           "policy delivered", "waypoint file"], routes, alerts=alerts, small=True),
@@ -386,7 +467,7 @@ def _section_signoff(inputs: BriefInputs, content: dict) -> list:
         {"kind": "signoff",
          "choices": [("Route (tick one)", [r[0] + f" ({r[1].split(',')[0]})" for r in routes]),
                      ("Decision (tick one)", list(DECISIONS))],
-         "fields": list(SIGNOFF_FIELDS)},
+         "fields": fields},
     ]
     return blocks
 
@@ -423,6 +504,18 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
     compared, worse = compare_routes(c, s)
     which += f" {compared}" if compared else ""
     which_alert = worse or not (c["reached_goal"] and s["reached_goal"])
+    budget = content.get("budget")
+    if budget is not None:
+        from planner.brief_budget import budget_words
+
+        b = content["budget_route"]
+        if budget["met"]:
+            which += (f" A third, the within-budget route, is the shortest whose P(incident) stays within the budget "
+                      f"({budget_words(budget)}): {b['length_m']:.1f} m, P(incident) {b['p_incident']} (§budget).")
+        else:
+            which += (f" No route meets the risk budget ({budget_words(budget)}): the least P(incident) any route "
+                      f"achieves is {format_prob(budget['least_p_incident'])} (§budget).")
+            which_alert = True
     which += " Choosing between them is the reviewer's decision."
 
     drift_words = "as drawn (the forecast)" if math.isclose(base, 1.0) else f"at {base:g} x the drawn strength"
@@ -711,7 +804,7 @@ def _section_waypoints(inputs: BriefInputs) -> list:
     blocks = [_para("Waypoints as written to routes-*.geojson and waypoints-*.csv (simulation only). Clearance: "
                     "distance from the waypoint to the nearest hazard as drawn, buffers not included. Latitude and "
                     "longitude in degrees (WGS 84).", small=True)]
-    for name in POLICIES:
+    for name in (*POLICIES, *(["budget"] if "budget" in inputs.routes and inputs.budget is not None else [])):
         route = inputs.routes[name]
         wrows = [[w.seq, f"{w.east_m:.1f}", f"{w.north_m:.1f}", f"{w.lat:.7f}", f"{w.lon:.7f}", f"{w.leg_m:.1f}",
                   f"{w.cumulative_m:.1f}", _metres(w.clearance_m), w.nearest_hazard or "-"] for w in route.waypoints]

@@ -45,6 +45,12 @@ LOW_PENALTY_SHARE = 1e-3
 HULL_TOLERANCE = 1e-9
 #: Cap on solves of one curve or one budget search.
 MAX_SOLVES = 200
+#: Resolution of the trade-off curve: two neighbouring vertices closer than this in
+#: expected length (metres-equivalent) or whose P(incident) differ by less than this
+#: ratio are not searched between. Far below the risk levels, the hull has dozens of
+#: vertices a few centimetres and a few per cent apart that no reviewer tells apart.
+CURVE_LENGTH_M = 0.5
+CURVE_RATIO = 1.1
 
 
 @dataclass(frozen=True)
@@ -101,8 +107,12 @@ class BudgetRoute:
     n_solves: int
 
 
-class _Solver:
-    """Exact Lagrangian solves on one model at one noise, warm-started, counted."""
+class Solver:
+    """Exact Lagrangian solves on one model at one noise, warm-started, counted and cached.
+
+    One solver can serve a budget search and a trade-off curve: penalties solved once
+    are not solved again.
+    """
 
     def __init__(self, model: Model, epsilon: float, tie_m: float):
         self.model, self.epsilon, self.tie_m = model, float(epsilon), float(tie_m)
@@ -113,6 +123,7 @@ class _Solver:
         self.cache: dict[float, TradeoffPoint] = {}
 
     def __call__(self, penalty_m: float) -> TradeoffPoint:
+        """The optimum at ``penalty_m``: solved once, warm-started from the previous solve."""
         penalty_m = float(penalty_m)
         if penalty_m in self.cache:
             return self.cache[penalty_m]
@@ -165,7 +176,8 @@ def _intersection(a: TradeoffPoint, b: TradeoffPoint) -> float | None:
 
 
 def tradeoff_curve(model: Model, epsilon: float, *, tie_m: float = 0.01, low_m: float | None = None,
-                   high_m: float | None = None) -> tuple[list[TradeoffPoint], int]:
+                   high_m: float | None = None, length_resolution_m: float = 0.0, ratio_resolution: float = 1.0,
+                   solver: Solver | None = None) -> tuple[list[TradeoffPoint], int]:
     """Every vertex of the lower convex hull of (P(incident), length) between two penalties.
 
     Parameters
@@ -182,7 +194,7 @@ def tradeoff_curve(model: Model, epsilon: float, *, tie_m: float = 0.01, low_m: 
     (points by increasing penalty, i.e. falling P(incident) and rising length; number
     of exact solves)
     """
-    solve = _Solver(model, epsilon, tie_m)
+    solve = solver if solver is not None else Solver(model, epsilon, tie_m)
     low = float(low_m if low_m is not None else LOW_PENALTY_SHARE * model.boundary_penalty_m)
     a = solve(low)
     if high_m is None:
@@ -199,6 +211,9 @@ def tradeoff_curve(model: Model, epsilon: float, *, tie_m: float = 0.01, low_m: 
     stack = [(a, b)]
     while stack:
         left, right = stack.pop()
+        if (right.length_m - left.length_m < length_resolution_m
+                or left.p_incident < ratio_resolution * right.p_incident):
+            continue
         lam = _intersection(left, right)
         if lam is None or not (left.penalty_m < lam < right.penalty_m):
             continue
@@ -216,7 +231,8 @@ def tradeoff_curve(model: Model, epsilon: float, *, tie_m: float = 0.01, low_m: 
     return out, solve.n_solves
 
 
-def risk_budget(model: Model, epsilon: float, budget: float, *, tie_m: float = 0.01) -> BudgetRoute:
+def risk_budget(model: Model, epsilon: float, budget: float, *, tie_m: float = 0.01,
+                solver: Solver | None = None) -> BudgetRoute:
     """The policy of least expected length whose exact P(incident) is at most ``budget``.
 
     Brackets the smallest penalty whose optimum meets the budget (from the model's own
@@ -231,6 +247,7 @@ def risk_budget(model: Model, epsilon: float, budget: float, *, tie_m: float = 0
     epsilon : execution noise in [0, 1).
     budget : the limit on P(incident), in [0, 1].
     tie_m : tie tolerance of each solve.
+    solver : a :class:`Solver` on the same model and noise to share; a new one by default.
 
     Returns
     -------
@@ -244,7 +261,7 @@ def risk_budget(model: Model, epsilon: float, budget: float, *, tie_m: float = 0
     if not (isinstance(budget, (int, float)) and not isinstance(budget, bool) and math.isfinite(budget)
             and 0.0 <= budget <= 1.0):
         raise SettingsError(f"risk budget must be a probability in [0, 1], got {budget!r}")
-    solve = _Solver(model, epsilon, tie_m)
+    solve = solver if solver is not None else Solver(model, epsilon, tie_m)
     lam = float(model.boundary_penalty_m)
     here = solve(lam)
     if here.p_incident <= budget:
@@ -342,4 +359,4 @@ def constrained_lp(model: Model, epsilon: float, budget: float) -> tuple[float, 
     return float(result.fun), result.x.reshape(n_s, n_a)
 
 
-__all__ = ["BudgetRoute", "TradeoffPoint", "constrained_lp", "cost_only", "risk_budget", "tradeoff_curve"]
+__all__ = ["BudgetRoute", "Solver", "TradeoffPoint", "constrained_lp", "cost_only", "risk_budget", "tradeoff_curve"]

@@ -517,7 +517,7 @@ def _save_learning(fig, path) -> Path:
 def draw_routes(ax, grid: Grid, routes: dict, *, waypoints: bool = True):
     """Each policy's nominal route (below the drift arrows), with its waypoints."""
     for name, route in routes.items():
-        look = style.POLICY[name]
+        look = style.ROUTE[name]
         xy = np.asarray(route.path_m, dtype=float)
         ax.plot(xy[:, 0], xy[:, 1], color=look["color"], ls=look["linestyle"], lw=2.2, zorder=Z_ROUTE,
                 gid=ROUTE_GID, label=f"{look['label']}: {route.length_m:.0f} m")
@@ -528,8 +528,8 @@ def draw_routes(ax, grid: Grid, routes: dict, *, waypoints: bool = True):
 
 
 def _route_handles(routes: dict) -> list:
-    return [Line2D([], [], color=style.POLICY[n]["color"], ls=style.POLICY[n]["linestyle"], lw=2.2,
-                   label=f"{style.POLICY[n]['label']}: {routes[n].length_m:.0f} m") for n in routes]
+    return [Line2D([], [], color=style.ROUTE[n]["color"], ls=style.ROUTE[n]["linestyle"], lw=2.2,
+                   label=f"{style.ROUTE[n]['label']}: {routes[n].length_m:.0f} m") for n in routes]
 
 
 @_styled
@@ -607,7 +607,7 @@ def figure_risk_maps(site, grid: Grid, maps: dict, routes: dict, *, noise: float
         draw_site(ax, grid, None, drift_arrows=False, cells=False)
         if name in routes:
             draw_routes(ax, grid, {name: routes[name]}, waypoints=False)
-        ax.set_title(f"{style.POLICY.get(name, {'label': name})['label']}", loc="left",
+        ax.set_title(f"{style.ROUTE.get(name, {'label': name})['label']}", loc="left",
                      fontsize=style.FONT_SIZE + 1)
         ax.set_aspect("equal")
         ax.set_xlabel("east (m)")
@@ -657,9 +657,10 @@ def figure_sensitivity(rows, *, title: str = "Sensitivity of the incident probab
     from planner.notation import FLOOR, FLOOR_TEXT, one_in
 
     panels = [("learned policies", ("cautious", "shortest")), ("exact references", ("exact on-policy",
-                                                                                    "exact optimal"))]
+                                                                                    "exact optimal", "budget"))]
     looks = {"cautious": style.POLICY["cautious"], "shortest": style.POLICY["shortest"],
-             "exact on-policy": style.REFERENCE["cautious"], "exact optimal": style.REFERENCE["shortest"]}
+             "exact on-policy": style.REFERENCE["cautious"], "exact optimal": style.REFERENCE["shortest"],
+             "budget": style.BUDGET}
     panels = [(t, [n for n in names if any(r.policy == n for r in rows)]) for t, names in panels]
     panels = [(t, names) for t, names in panels if names]
     scales = sorted({r.drift_scale for r in rows})

@@ -44,6 +44,8 @@ POLICY_ARRAYS = {
     "q_exact_on_policy": "float64", "q_exact_optimal": "float64",
 }
 POLICIES = ("cautious", "shortest")
+#: The third route, delivered with ``--risk-budget`` (``planner.budget_plan``).
+ROUTE_BUDGET = "budget"
 #: Largest root seed: the 128 bits of entropy ``SeedSequence`` draws when no seed is given,
 #: so every run's recorded entropy can be given back to ``--seed``.
 MAX_SEED = 2**128 - 1
@@ -86,6 +88,10 @@ class PlanSettings:
     #: the ``--settings`` file the options were read from, and its SHA-256, or None
     settings_file: str | None = None
     settings_sha256: str | None = None
+    #: ``--risk-budget``: also deliver the shortest route with P(incident) at most this
+    #: (at ``learn.epsilon`` and the planning drift); who set it (``--budget-set-by``).
+    risk_budget: float | None = None
+    budget_set_by: str | None = None
 
     def __post_init__(self):
         if not 0.0 <= self.learn.epsilon < 1.0:
@@ -121,6 +127,13 @@ class PlanSettings:
                 and np.isfinite(self.tie_m) and self.tie_m >= 0):
             raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
         check_seed(self.seed, "--root-seed")
+        if self.risk_budget is not None or self.budget_set_by is not None:
+            from planner.budget_plan import check_budget, check_set_by
+
+            if self.risk_budget is None:
+                raise SettingsError("--budget-set-by needs --risk-budget")
+            check_budget(self.risk_budget)
+            check_set_by(self.budget_set_by)
         check_counts(training_runs=self.learn.n_seeds,
                      episodes=max(self.learn.episodes, self.episodes_shortest or 0),
                      max_steps=self.learn.max_steps, rollouts=self.rollouts, budget_m=self.budget_m,
@@ -238,6 +251,7 @@ SETTING_TYPES = {
     "cautious_schedule": (str,), "shortest_schedule": (str,),
     "grid_check": (bool,), "grid_levels": (int,),
     "settings_file": (str, type(None)), "settings_sha256": (str, type(None)),
+    "risk_budget": (int, float, type(None)), "budget_set_by": (str, type(None)),
 }
 
 
@@ -259,7 +273,8 @@ def settings_from_record(record: dict) -> PlanSettings:
                 raise RunFolderError(f"manifest settings: {key!r} is not a list of numbers")
             rec[key] = tuple(values)
         for key, kinds in SETTING_TYPES.items():
-            value = rec.get(key)
+            # run folders from before the risk budget have no budget settings
+            value = rec.get(key) if key in rec or key not in ("risk_budget", "budget_set_by") else None
             if not isinstance(value, kinds) or (isinstance(value, bool) and bool not in kinds):
                 raise RunFolderError(f"manifest settings: {key!r} is {value!r}, not of the type plan writes")
         return PlanSettings(**rec)
@@ -396,6 +411,12 @@ class PlanResult:
     seed_p_incident_strong: dict = field(default_factory=dict)
     #: the half-cell check of each delivered policy (``planner.gridcheck.GridCheck``)
     grid_checks: list = field(default_factory=list)
+    #: ``--risk-budget``: the budget search (``planner.budget_plan.BudgetPlan``) and its
+    #: record (``budget_plan.budget_record``); None without a budget
+    budget: object = None
+    budget_record: dict | None = None
+    #: route name -> where its P(incident) comes from (``budget_plan.explain_route``)
+    causes: dict = field(default_factory=dict)
 
 
 def check_drift_scales(grid, dynamics, option: str, scales) -> None:
@@ -478,6 +499,17 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
                                             value=exact[name].q)
             report(k + 1)
     timings["exact_s"] = time.perf_counter() - t
+    budget_plan = None
+    if settings.risk_budget is not None:
+        from planner.budget_plan import plan_budget
+
+        t = time.perf_counter()
+        with progress.task(f"risk budget {settings.risk_budget:g}: exact solves over the hazard penalty"):
+            budget_plan = plan_budget(model, eps, settings.risk_budget, tie_m=settings.tie_m,
+                                      drift_scale=settings.dynamics.drift_scale, set_by=settings.budget_set_by)
+        progress(f"risk budget: {budget_plan.n_solves_budget} exact solves for the route, "
+                 f"{budget_plan.n_solves_curve} more for the trade-off curve ({len(budget_plan.curve)} points)")
+        timings["budget_s"] = time.perf_counter() - t
     cheapest_m = float(-model.reward[model.event == 0].max())
     # The seeds' spread may widen a learned tie set by at most LEARNED_SLACK_SHARE of the
     # cheapest move: wider sets of a barely trained Q let the safety rule pick moves that
@@ -522,7 +554,9 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
                                  greedy=greedy[name], seed_greedy=seed_greedy[name])
         for name in POLICIES
     }
-    paths = {name: nominal_path(model, greedy[name]) for name in POLICIES}
+    if budget_plan is not None:
+        greedy[ROUTE_BUDGET] = budget_plan.greedy
+    paths = {name: nominal_path(model, greedy[name]) for name in greedy}
     routes = _routes(site, grid, model, paths)
     from planner.risk import seed_incidents
 
@@ -551,10 +585,23 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     t = time.perf_counter()
     risk_rows, checks = _grid_check(site, grid, settings, model, greedy, risk_rows, progress)
     timings["grid_check_s"] = time.perf_counter() - t
+    causes, record = {}, None
+    if budget_plan is not None:
+        from planner.budget_plan import budget_record, explain_route
+
+        t = time.perf_counter()
+        with progress.task("why each route is risky (leg shares, failure paths)", len(routes)) as report:
+            for k, name in enumerate(routes):
+                causes[name] = explain_route(model, grid, routes[name], paths[name], greedy[name], eps)
+                report(k + 1)
+        record = budget_record(budget_plan, {n: (routes[n], find_row(risk_rows, n, eps, base).p_incident)
+                                             for n in routes})
+        timings["causes_s"] = time.perf_counter() - t
     return PlanResult(site=site, grid=grid, model=model, learned=learned, exact=exact, greedy=greedy,
                       convergence=convergence, references=references, paths=paths, routes=routes,
                       risk_rows=risk_rows, root_seed=root, timings=timings, seed_p_incident=seed_p_incident,
-                      seed_p_incident_strong=seed_p_incident_strong, grid_checks=checks)
+                      seed_p_incident_strong=seed_p_incident_strong, grid_checks=checks, budget=budget_plan,
+                      budget_record=record, causes=causes)
 
 
 #: Largest widening of a learned tie set by the seeds' spread, as a share of the cheapest move.
@@ -596,6 +643,8 @@ def _with_verdicts(rows, convergence, references, eps: float, base: float) -> li
             at_run_noise = row.noise == eps and row.drift_scale == base
             row = dataclasses.replace(row, verdict="exact reference (ties by safety)", p_incident_range=(
                 (choice.p_incident, choice.p_incident_max) if at_run_noise else None))
+        elif row.policy == ROUTE_BUDGET:
+            row = dataclasses.replace(row, verdict="exact, shortest within the risk budget (ties by safety)")
         out.append(row)
     return out
 
@@ -606,15 +655,15 @@ def _grid_check(site, grid, settings, model, greedy, rows, progress):
     from planner.risk import find_row
 
     eps = settings.learn.epsilon
-    delivered = {name: greedy[name] for name in POLICIES}
+    delivered = {name: greedy[name] for name in (*POLICIES, ROUTE_BUDGET) if name in greedy}
     if settings.grid_check:
         finer = f"{grid.cell_m / 2:g} m" + (f" and {grid.cell_m / 4:g} m" if settings.grid_levels == 3 else "")
-        progress(f"grid check: both policies re-evaluated at {finer} cells")
+        progress(f"grid check: the {len(delivered)} delivered policies re-evaluated at {finer} cells")
         checks = half_cell_check(site, grid, settings.grid, settings.dynamics, model, delivered, rows, noise=eps,
                                  levels=settings.grid_levels)
     else:
         checks = []
-        for name in POLICIES:
+        for name in delivered:
             row = find_row(rows, name, eps, settings.dynamics.drift_scale)
             checks.append(GridCheck(policy=name, noise=eps, cell_m=grid.cell_m, fine_cell_m=grid.cell_m / 2,
                                     p_incident=row.p_incident, skipped="switched off (--no-grid-check)"))
@@ -631,7 +680,7 @@ def _grid_check(site, grid, settings, model, greedy, rows, progress):
 def _routes(site, grid, model, paths) -> dict:
     from planner.route import build_route
 
-    return {name: build_route(name, paths[name], grid, site, model) for name in POLICIES}
+    return {name: build_route(name, paths[name], grid, site, model) for name in paths}
 
 
 def _risk(site, grid, settings, model, greedy, references, seed, progress) -> list:
@@ -641,6 +690,7 @@ def _risk(site, grid, settings, model, greedy, references, seed, progress) -> li
         "cautious": greedy["cautious"], "shortest": greedy["shortest"],
         "exact on-policy": references["cautious"].greedy,
         "exact optimal": references["shortest"].greedy,
+        **({ROUTE_BUDGET: greedy[ROUTE_BUDGET]} if ROUTE_BUDGET in greedy else {}),
     }
     n_rows = len(policies) * len(settings.noises) * len(settings.drift_scales)
     progress(f"risk table: {len(policies)} policies x {len(settings.noises)} noise levels x "
@@ -699,6 +749,8 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
         "q_cautious": result.learned["cautious"].q_mean, "q_shortest": result.learned["shortest"].q_mean,
         "q_exact_on_policy": result.exact["cautious"].q, "q_exact_optimal": result.exact["shortest"].q,
     }
+    if ROUTE_BUDGET in result.greedy:
+        arrays[f"greedy_{ROUTE_BUDGET}"] = result.greedy[ROUTE_BUDGET].astype(np.int64)
     _save_npz(folder / "policies.npz", arrays)
     from planner.learn import learning_curves
 
@@ -706,13 +758,20 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
         f"{name}_{key}": value for name in POLICIES for key, value in learning_curves(result.learned[name]).items()
     })
     progress("writing waypoint files and the risk table")
-    for name in POLICIES:
+    for name in result.routes:
         write_geojson(result.routes[name], folder / f"routes-{name}.geojson", site=result.site, alt_m=settings.alt_m)
         write_csv(result.routes[name], folder / f"waypoints-{name}.csv", alt_m=settings.alt_m)
     (folder / "risk.csv").write_text(format_table(result.risk_rows, "csv"))
-    (folder / "risk.json").write_text(format_table(result.risk_rows, "json"))
     noise = settings.learn.epsilon
-    with progress.task("figures", 4) as report:
+    if result.budget is None:
+        (folder / "risk.json").write_text(format_table(result.risk_rows, "json"))
+    else:
+        from planner.budget_plan import risk_records
+
+        records = risk_records(result.risk_rows, noise=noise, drift_scale=settings.dynamics.drift_scale,
+                               budget=result.budget_record, causes=result.causes)
+        (folder / "risk.json").write_text(json.dumps(records, sort_keys=True, indent=2, allow_nan=False) + "\n")
+    with progress.task("figures", 4 if result.budget is None else 6) as report:
         plots.plot_learning(result.learned, folder / "learning.png",
                             title=f"{result.site.name} - learning curves")
         report(1)
@@ -721,20 +780,30 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
         maps = {}
         from planner.model import epsilon_greedy
 
-        for name in POLICIES:
+        for name in result.routes:
             probs = epsilon_greedy(result.greedy[name], result.model.n_actions, noise)
             maps[name] = risk_map(result.model, probs)
         plots.plot_risk_maps(result.site, result.grid, maps, result.routes, folder / "riskmap.png", noise=noise)
         report(3)
         plots.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
                                title=f"{result.site.name} - incident probability under worse execution and wind")
+        if result.budget is not None:
+            from planner import plots_budget
+
+            report(4)
+            plots_budget.plot_tradeoff(result.budget_record, result.causes, folder / "tradeoff.png",
+                                       title=f"{result.site.name} - length against risk")
+            report(5)
+            plots_budget.plot_causes(result.site, result.grid, result.routes, result.causes,
+                                     folder / "failure-paths.png")
     manifest = build_manifest(result, settings, site_path, folder)
     # the run id covers every file but the briefing, which prints it
     manifest["files"] = file_hashes(folder)
     manifest["run_id"] = run_identity(manifest)
     with progress.task("briefing (HTML, then PDF)"):
         write_brief(BriefInputs(folder=folder, site=result.site, grid=result.grid, routes=result.routes,
-                                risk_rows=result.risk_rows, settings=settings, manifest=manifest, run_name=run_name),
+                                risk_rows=result.risk_rows, settings=settings, manifest=manifest, run_name=run_name,
+                                budget=result.budget_record, causes=result.causes),
                     folder / "brief.html", folder / "brief.pdf")
     write_manifest(folder, manifest)
 
@@ -871,6 +940,8 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
                   "boundary_penalty_m": result.model.boundary_penalty_m, "warnings": list(result.model.warnings)},
         "warnings": list(result.site.warnings) + list(result.grid.warnings) + list(result.model.warnings),
         "results": summary,
+        **({"risk_budget": {k: v for k, v in result.budget_record.items() if k != "curve"}}
+           if result.budget_record is not None else {}),
         "exact": exact,
         "timings_s": {k: round(v, 3) for k, v in result.timings.items()},
     }
@@ -1144,7 +1215,14 @@ def rebuild_grid(run: Run):
         expected = (n_states,) if key.startswith("greedy") else (n_states, n_actions)
         if arr.shape != expected:
             raise RunFolderError(f"{run.folder}: policy array {key!r} has shape {arr.shape}, expected {expected}")
-    for key in (k for k in POLICY_ARRAYS if k.startswith("greedy")):
+    budget_key = f"greedy_{ROUTE_BUDGET}"
+    if budget_key in run.arrays:
+        arr = run.arrays[budget_key]
+        if arr.dtype != np.int64 or arr.shape != (n_states,):
+            raise RunFolderError(f"{run.folder}: policy array {budget_key!r} has shape {arr.shape} and dtype "
+                                 f"{arr.dtype}, expected {(n_states,)} int64")
+    for key in [k for k in POLICY_ARRAYS if k.startswith("greedy")] + ([budget_key] if budget_key in run.arrays
+                                                                      else []):
         arr = run.arrays[key]
         if arr.size and (arr.min() < 0 or arr.max() >= n_actions):
             raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{n_actions - 1}")
@@ -1163,14 +1241,16 @@ def run_routes(run: Run, site, grid, model) -> dict:
     """The nominal routes of a run's two policies, rebuilt on its model."""
     from planner.route import build_route, nominal_path
 
+    names = (*POLICIES, ROUTE_BUDGET) if f"greedy_{ROUTE_BUDGET}" in run.arrays else POLICIES
     return {name: build_route(name, nominal_path(model, run.arrays[f"greedy_{name}"]), grid, site, model)
-            for name in POLICIES}
+            for name in names}
 
 
 #: Policies ``veerwise risk`` can tabulate, and the arrays they come from.
 RISK_POLICIES = {
     "cautious": "greedy_cautious", "shortest": "greedy_shortest",
     "exact on-policy": "greedy_exact_on_policy", "exact optimal": "greedy_exact_optimal",
+    ROUTE_BUDGET: f"greedy_{ROUTE_BUDGET}",
 }
 
 
@@ -1189,6 +1269,8 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget_m=None, rollouts=0,
     for name in policies:
         if name not in RISK_POLICIES:
             raise SettingsError(f"--policy {name!r} is not one of {', '.join(RISK_POLICIES)}")
+        if RISK_POLICIES[name] not in run.arrays:
+            raise SettingsError(f"--policy {name!r}: this run has no {name} route (plan it with --risk-budget)")
         chosen[name] = run.arrays[RISK_POLICIES[name]]
     root = np.random.SeedSequence(seed) if seed is not None else np.random.SeedSequence(
         int(run.manifest["seeds"]["entropy"]), spawn_key=(2,))
@@ -1226,6 +1308,9 @@ def rewrite_brief(run) -> tuple[Path, Path | None]:
             rows = [row_from_record(r) for r in records]
         except (TypeError, KeyError, ValueError, AttributeError) as err:
             raise RunFolderError(f"{path}: cannot read risk.json ({err})") from err
+        from planner.budget_plan import extras_from_records
+
+        budget, causes = extras_from_records(records)
         manifest = dict(run.manifest)
         identity = run_identity(manifest)
         if manifest.setdefault("run_id", identity) != identity:
@@ -1237,7 +1322,8 @@ def rewrite_brief(run) -> tuple[Path, Path | None]:
                 if name not in ("brief.html", "brief.pdf"):
                     (tmp / name).write_bytes(blob)
             inputs = BriefInputs(folder=tmp, site=site, grid=grid, routes=routes, risk_rows=rows,
-                                 settings=run.settings, manifest=manifest, run_name=path.name)
+                                 settings=run.settings, manifest=manifest, run_name=path.name, budget=budget,
+                                 causes=causes)
             _, pdf = write_brief(inputs, tmp / "brief.html", tmp / "brief.pdf")
             write_manifest(tmp, manifest)
             _carry_over(path, tmp, skip=listed | {"manifest.json", "brief.html", "brief.pdf"})

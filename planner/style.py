@@ -37,6 +37,17 @@ POLICY = {
     "cautious": {"color": "#0068c5", "linestyle": "-", "label": "cautious (SARSA)"},
     "shortest": {"color": "#c85908", "linestyle": "--", "label": "shortest (Q-learning)"},
 }
+#: The third route, the shortest within a risk budget (``plan --risk-budget``): its own
+#: colour (dark grey, the class farthest from every other under every simulation) and
+#: line style. Kept apart from ``POLICY``, which names the two learned policies.
+BUDGET = {"color": "#555555", "linestyle": "-.", "label": "within-budget (exact)"}
+#: Every delivered route's look, by route name.
+ROUTE = {**POLICY, "budget": BUDGET}
+#: Failure paths drawn over a route, the off-route moves on them, and the budget line
+#: of the trade-off figure.
+FAILURE_PATH = START
+BUDGET_LINE = HAZARD
+
 #: Exact references drawn beside the learned policies.
 REFERENCE = {
     "cautious": {"color": "#0068c5", "linestyle": ":", "label": "exact on-policy"},
@@ -52,7 +63,7 @@ MAP_CLASSES = {
     "open ground": FREE, "outside boundary": OUTSIDE, "rough ground": ROUGH,
     "hazard, run goes on": HAZARD_SOFT, "hazard, ends the run": HAZARD, "goal": GOAL, "start": START,
     "cautious route": POLICY["cautious"]["color"], "shortest route": POLICY["shortest"]["color"],
-    "drift arrow": DRIFT,
+    "within-budget route": BUDGET["color"], "drift arrow": DRIFT,
 }
 #: Least CIEDE2000 difference between any two map classes, under each simulation.
 MAP_MIN_DELTA_E = 12.0

@@ -26,6 +26,7 @@ SECTIONS = {
                  "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
     "Risk table": ("noises", "drift_scales", "budget_m", "budget_min", "speed_mps", "rollouts", "rollout_seed",
                    "grid_check", "grid_levels"),
+    "Risk budget": ("risk_budget", "budget_set_by"),
     "Campaign": ("out_dir", "scheduler", "n_workers", "check_only"),
 }
 _SECTION_OF = {name: title for title, names in SECTIONS.items() for name in names}
@@ -65,6 +66,34 @@ class Finite(click.FloatRange):
 def finite(low=None, high=None, *, low_open: bool = False, high_open: bool = False) -> Finite:
     """A click type for a finite number in [low, high] (ends open on request)."""
     return Finite(low, high, min_open=low_open, max_open=high_open)
+
+
+class RiskBudget(click.ParamType):
+    """A risk budget: a probability strictly between 0 and 1 (refused in one line naming the option)."""
+
+    name = "probability"
+
+    def convert(self, value, param, ctx):
+        """The budget as a float (``planner.budget_plan.check_budget``)."""
+        from planner.budget_plan import check_budget
+        from planner.errors import SettingsError
+
+        try:
+            return check_budget(value, option="")
+        except SettingsError as err:
+            self.fail(str(err).strip(), param, ctx)
+
+
+def risk_budget_options(f):
+    """``--risk-budget`` and who set it."""
+    f = click.option("--risk-budget", "risk_budget", type=RiskBudget(), default=None, metavar="P",
+                     help="Also deliver the shortest route whose exact P(incident) is at most P (in (0, 1), e.g. "
+                          "1e-3), at --epsilon and --plan-drift, with the trade-off curve and why each route is "
+                          "risky.")(f)
+    f = click.option("--budget-set-by", "budget_set_by", default=None, metavar="NAME",
+                     show_default="a blank field on the sign-off, filled in by hand",
+                     help="Who set the risk budget (name, role): printed in the briefing's sign-off.")(f)
+    return f
 
 
 #: One or more site files: GeoJSON, or with the gis extra any vector format GDAL reads;

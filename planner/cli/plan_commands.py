@@ -19,6 +19,7 @@ from planner.cli.options import (
     force_option,
     grid_options,
     learn_options,
+    risk_budget_options,
     risk_table_options,
     run_argument,
     site_options,
@@ -68,6 +69,7 @@ EXIT_NOT_READY = 3
 @dynamics_options
 @learn_options
 @risk_table_options
+@risk_budget_options
 @click.option("--alt-m", type=finite(0, 10_000), default=None, metavar="M",
               help="Constant altitude above ground written into the waypoint files (aerial simulators).")
 @click.option("--tie-m", type=finite(0, low_open=True), default=0.01, show_default=True, metavar="M",
@@ -88,12 +90,17 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
          max_cells, n_actions, move_m, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay,
          gamma, episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget_m, budget_min,
          speed_mps, rollouts, alt_m, tie_m, shortest_schedule, max_sweeps, grid_check,
-         grid_levels):
+         grid_levels, risk_budget, budget_set_by):
     """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
     SITE is one or more site files (GeoJSON, or with the gis extra any vector format
     GDAL reads), merged into one site; the run folder keeps the merged site as
     site.geojson and the manifest hashes every file.
+
+    With --risk-budget P, a third route too: the shortest whose exact P(incident) is at
+    most P (the within-budget route, named "budget" in files), the trade-off curve
+    between length and risk, and for every route where its risk comes from (P(incident)
+    by leg, the likeliest failure paths).
 
     Builds the stochastic grid model, learns the cautious policy with SARSA and the
     shortest with Q-learning, checks both against exact value iteration, computes the
@@ -110,6 +117,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
       veerwise plan site.geojson run-ci --training-runs 4 --strict --json
       veerwise plan site.geojson run-16 --settings yard.toml --headings 16
       veerwise plan run-yard/site.geojson run-again --settings run-yard/manifest.json
+      veerwise plan maps/drone-range.geojson run-budget --risk-budget 1e-3 --budget-set-by "A. Reviewer, range safety"
     """
     from planner.grid import rasterise
     from planner.learn import LearnSettings
@@ -120,6 +128,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     started = time.perf_counter()
     if not site:
         raise click.UsageError(f"give one or more site files, then the run folder (got only {run!r})")
+    if budget_set_by is not None and risk_budget is None:
+        raise click.BadParameter("needs --risk-budget", param_hint="--budget-set-by")
     check_out(run, force=force)
     # Held until the command ends: a second plan to the same folder is refused at once.
     click.get_current_context().with_resource(run_lock(run))
@@ -146,7 +156,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
                             tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check,
                             settings_file=settings_file, settings_sha256=settings_sha256,
-                            grid_levels=grid_levels)
+                            grid_levels=grid_levels, risk_budget=risk_budget, budget_set_by=budget_set_by)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:
         try:
             result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
@@ -211,14 +221,37 @@ def plan_summary(result, settings, out, elapsed_s: float) -> dict:
         "grid_check": format_grid_check(result.grid_checks, name).removeprefix("; "),
         "text": {"p_incident": x["p_incident"], "p_incident_seeds_range": x["p_incident_range"]},
     } for name, x in figures.items()}
+    budget = None
+    if result.budget_record is not None:
+        from planner.budget_plan import budget_statement
+        from planner.risk import format_prob
+
+        route, record = result.routes["budget"], result.budget_record
+        row = find_row(result.risk_rows, "budget", eps, base)
+        policies["budget"] = {
+            "length_m": route.length_m, "waypoint_length_m": route.waypoint_length_m, "moves": route.n_moves,
+            "reached_goal": route.reached_goal, "ends": figures_ends(route), "p_incident": row.p_incident,
+            "delivered": "exact (risk-budget search)", "meets_budget": record["met"],
+            "grid_check": format_grid_check(result.grid_checks, "budget").removeprefix("; "),
+            "text": {"p_incident": format_prob(row.p_incident)},
+        }
+        budget = {**{k: v for k, v in record.items() if k != "curve"}, "statement": budget_statement(record, format_prob),
+                  "curve": record["curve"]}
     return {
         "site": result.site.name, "run_folder": str(out), "briefing": str(Path(out) / "brief.html"),
         "notice": "for simulation and review only; not approved for field operation",
         "centre": {"lat": lat, "lon": lon}, "extent_m": {"east": width, "north": height},
         "noise": eps, "drift_scale": base, "policies": policies, "comparison": comparison,
-        "banners": banners, "warnings": warnings, "elapsed_s": round(elapsed_s, 1),
+        "banners": banners, "warnings": warnings, "elapsed_s": round(elapsed_s, 1), "risk_budget": budget,
         "ready_to_sign": all(x["converged"] and not x["seeds_disagree"] for x in figures.values()),
     }
+
+
+def figures_ends(route) -> str:
+    """How a nominal route ends, as the summary says it."""
+    from planner.brief import _ends
+
+    return _ends(route)
 
 
 def _plain(value):
@@ -258,6 +291,13 @@ def format_plan_summary(summary: dict) -> str:
         end = "reaches the goal" if x["reached_goal"] else f"ENDS {x['ends']}"
         lines.append(f"{name:<13} {x['length_m']:.1f} m ({x['waypoint_length_m']:.1f} m by waypoints), "
                      f"{x['moves']} moves, {end}")
+        if name == "budget":
+            lines += wrapped(f"P(incident) {x['text']['p_incident']} at noise {s['noise']:g}; the within-budget "
+                             "route" + ("" if x["meets_budget"] else ", which does NOT meet the budget"), " " * 14)
+            if x["grid_check"]:
+                lines += wrapped(x["grid_check"], " " * 14)
+            lines += wrapped(s["risk_budget"]["statement"], " " * 14)
+            continue
         lines += wrapped(f"P(incident) {x['text']['p_incident']} at noise {s['noise']:g}; over the "
                          f"{x['n_seeds']} training runs {x['text']['p_incident_seeds_range']}", " " * 14)
         if x["grid_check"]:

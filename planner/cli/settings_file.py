@@ -118,6 +118,7 @@ FROM_MANIFEST = {
     "table-noises": "noises", "table-drifts": "drift_scales", "budget-m": "budget_m", "budget-min": "budget_min",
     "speed-mps": "speed_mps", "rollouts": "rollouts", "alt-m": "alt_m", "tie-m": "tie_m",
     "shortest-schedule": "shortest_schedule", "grid-check": "grid_check", "grid-levels": "grid_levels",
+    "risk-budget": "risk_budget", "budget-set-by": "budget_set_by",
 }
 #: Recorded settings no option sets; a manifest may hold them only at these values.
 FIXED_IN_MANIFEST = {
