@@ -28,7 +28,8 @@ def budget_words(record: dict) -> str:
 def set_by_words(record: dict) -> str:
     """Who set the budget, or that it was not given."""
     who = record.get("set_by")
-    return f"set by {who} (as given to plan --budget-set-by)" if who else "who set it was not given to plan"
+    return (f"set by {who} (as given to plan --budget-set-by)" if who
+            else "who set it was not given to plan: fill in the field below")
 
 
 def budget_policy(record: dict, route, row) -> dict:
@@ -118,8 +119,10 @@ def section_budget(content: dict, record: dict, causes: dict, routes: dict, rows
                  "whose run left the nominal route for the last time on that leg (leg j runs from waypoint j-1 to "
                  "waypoint j). The shares sum to the route's P(incident). Failure paths: the likeliest sequences of "
                  "cells from the start into a zone, each with its probability, and the moves on which noise, slip "
-                 "or drift took the vehicle off the policy's likeliest landing. Together they say which leg to "
-                 "re-draw, slow down on, or buffer.", small=True)]
+                 "or drift took the vehicle off the policy's likeliest landing. A path's probability is that of "
+                 "exactly that sequence of cells, so it is far below the route's P(incident), which sums a great "
+                 "many such paths; the paths show the typical way in. Together they say which leg to re-draw, slow "
+                 "down on, or buffer.", small=True)]
     for name in (n for n in ROUTE_WORDS if n in causes):
         c = causes[name]
         legs = sorted(c["legs"], key=lambda leg: -leg["p_incident"])
@@ -135,11 +138,15 @@ def section_budget(content: dict, record: dict, causes: dict, routes: dict, rows
         if rest > 0:
             leg_rows.append(["others", f"{len(legs) - len(listed)} legs", "", format_prob(rest),
                              f"{100 * rest / total:.0f}%" if total > 0 else "-", ""])
-        leg_rows.append(["sum", f"{len(legs)} legs", "", format_prob(sum(leg["p_incident"] for leg in legs)),
+        leg_rows.append(["sum", f"{len(legs)} leg{'s' if len(legs) != 1 else ''}", "", format_prob(sum(leg["p_incident"] for leg in legs)),
                          "100%" if total > 0 else "-", ""])
+        single = ("The route is one straight leg, so the decomposition says only that all of it comes from that "
+                  "leg; the failure paths say where along it." if len(legs) == 1 else "")
         out += [subhead(f"{ROUTE_WORDS.get(name, name)} route: P(incident) {format_prob(total)}"),
                 table(["leg", "waypoints", "leg length (m)", "P(incident) last on the route here", "share",
                        "main zone"], leg_rows, numeric=(2, 3, 4), small=True)]
+        if single:
+            out.append(para(single, small=True))
         if c["paths"]:
             path_rows = [[k + 1, f["zone"], format_prob(f["probability"]), f["moves"], f["left_route_leg"],
                           moves_text(f)] for k, f in enumerate(c["paths"])]

@@ -60,7 +60,7 @@ def figure_tradeoff(record: dict, causes: dict, *, title: str = "Length against 
     curve = record["curve"]
     x = np.array([p["length_m"] for p in curve])
     y = np.array([max(p["p_incident"], FLOOR) for p in curve])
-    fig, ax = plt.subplots(figsize=(style.MAP_WIDTH_IN, 4.2), dpi=style.FIGURE_DPI)
+    fig, ax = plt.subplots(figsize=(style.MAP_WIDTH_IN, 5.0), dpi=style.FIGURE_DPI)
     ax.plot(x, y, color=style.MUTED, lw=1.0, zorder=2, label="lower convex hull (each vertex: one deterministic "
                                                                 "policy, the optimum for one hazard penalty)")
     ax.plot(x, y, "o", color=style.MUTED, ms=3, zorder=3)
@@ -92,8 +92,8 @@ def figure_tradeoff(record: dict, causes: dict, *, title: str = "Length against 
              f"random) and drift x{record['drift_scale']:g}; {len(curve)} vertices from "
              f"{record['n_solves'] + record['n_solves_curve']} exact solves. Routes off the hull are learned "
              "policies.", fontsize=style.FONT_SIZE - 2, color=style.MUTED)
-    ax.legend(loc="upper right", fontsize=style.FONT_SIZE - 2, frameon=True, framealpha=0.9)
-    fig.tight_layout(rect=(0, 0.04, 1, 1))
+    fig.tight_layout(rect=(0, 0.28, 1, 1))
+    ax.legend(loc="upper left", bbox_to_anchor=(0.0, -0.14), fontsize=style.FONT_SIZE - 2, frameon=False, ncol=1)
     return fig
 
 
@@ -105,14 +105,18 @@ def plot_tradeoff(record: dict, causes: dict, path, *, title: str = "Length agai
 
 def _draw_paths(ax, record: dict) -> None:
     """A route's likeliest failure paths: thin lines, numbered at their end, off-route moves circled."""
+    ends: dict[tuple[float, float], list[str]] = {}
     for k, f in enumerate(record["paths"]):
         east, north = np.asarray(f["east_m"]), np.asarray(f["north_m"])
-        ax.plot(east, north, color=style.FAILURE_PATH, lw=0.7, ls=(0, (2, 1)), zorder=plots.Z_ROUTE + 0.5,
+        ax.plot(east, north, color=style.FAILURE_PATH, lw=0.9, ls=(0, (2, 1)), zorder=plots.Z_ROUTE + 0.5,
                 gid="failure-path")
         moves = [m - 1 for m in f["off_policy"] if 0 <= m - 1 < east.size]
-        ax.plot(east[moves], north[moves], "o", mfc="none", mec=style.FAILURE_PATH, ms=2.6, mew=0.6,
+        ax.plot(east[moves], north[moves], "o", mfc="white", mec=style.FAILURE_PATH, ms=2.6, mew=0.6,
                 zorder=plots.Z_ROUTE + 0.6)
-        ax.annotate(str(k + 1), (east[-1], north[-1]), xytext=(2, 2), textcoords="offset points",
+        ends.setdefault((float(east[-1]), float(north[-1])), []).append(str(k + 1))
+    # paths that end in the same cell share one label ("1, 2")
+    for (east, north), numbers in ends.items():
+        ax.annotate(", ".join(numbers), (east, north), xytext=(2, 2), textcoords="offset points",
                     fontsize=style.FONT_SIZE - 2, color=style.FAILURE_PATH, fontweight="bold",
                     zorder=plots.Z_LABEL, gid=plots.LABEL_GID,
                     bbox={"fc": "white", "ec": "none", "alpha": 0.75, "pad": 0.5})
@@ -136,11 +140,13 @@ def figure_causes(site, grid, routes: dict, causes: dict):
     map_h = panel_w * n_rows / max(n_cols, 1)
     n_legs = max(len(causes[n]["legs"]) for n in names)
     bar_h = max(1.2, 0.13 * n_legs + 0.5)
-    height = map_h + bar_h + 1.75
+    bars_bottom = 0.95  # legend, then the bars' axis labels
+    map_bottom = bars_bottom + bar_h + 0.55
+    height = map_bottom + map_h + 1.2  # the maps' two-line titles and the figure's heading
     fig = plt.figure(figsize=(width, height), dpi=style.FIGURE_DPI)
     for k, name in enumerate(names):
         left = (0.55 + k * (panel_w + 0.12)) / width
-        ax = fig.add_axes([left, (bar_h + 1.05) / height, panel_w / width, map_h / height])
+        ax = fig.add_axes([left, map_bottom / height, panel_w / width, map_h / height])
         plots.draw_site(ax, grid, site, drift_arrows=False)
         plots.draw_routes(ax, grid, {name: routes[name]})
         _draw_paths(ax, causes[name])
@@ -154,7 +160,7 @@ def figure_causes(site, grid, routes: dict, causes: dict):
         ax.set_xlabel("east (m)", fontsize=style.FONT_SIZE - 2)
         if k == len(names) - 1:
             plots.add_north_arrow(ax, grid)
-        bars = fig.add_axes([left + 0.35 / width, 0.55 / height, (panel_w - 0.35) / width, bar_h / height])
+        bars = fig.add_axes([left + 0.35 / width, bars_bottom / height, (panel_w - 0.35) / width, bar_h / height])
         legs = causes[name]["legs"]
         share = np.array([leg["p_incident"] for leg in legs])
         ypos = np.arange(len(legs))
@@ -177,15 +183,15 @@ def figure_causes(site, grid, routes: dict, causes: dict):
              fontsize=style.FONT_SIZE + 2, ha="left", va="top", color=style.TEXT)
     noise = causes[names[0]]["noise"]
     fig.text(0.55 / width, 1.0 - 0.34 / height,
-             f"Likeliest failure paths (numbered as in the briefing), noise {noise:g}; bars: P(incident) by the leg on "
-             f"which the vehicle was last on the nominal route (they sum to the route's P(incident)); "
-             f"{style.FIGURE_NOTICE}", fontsize=style.FONT_SIZE - 3, ha="left", va="top", color=style.MUTED,
-             wrap=True)
+             f"Likeliest failure paths (numbered as in the briefing), every route flown with noise {noise:g}; "
+             f"{style.FIGURE_NOTICE}.\nBars: P(incident) by the leg on which the vehicle was last on the nominal "
+             "route; they sum to the route's P(incident).", fontsize=style.FONT_SIZE - 2, ha="left", va="top",
+             color=style.MUTED)
     handles = [Line2D([], [], color=style.FAILURE_PATH, lw=0.7, ls=(0, (2, 1)), label="failure path"),
                Line2D([], [], ls="none", marker="o", mfc="none", mec=style.FAILURE_PATH, ms=3,
                       label="move where noise or drift acted")]
     handles += plots._route_handles({n: routes[n] for n in names})
-    fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.55 / width, 0.0), ncol=3,
+    fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.45 / width, 0.0), ncol=3,
                fontsize=style.FONT_SIZE - 2, frameon=False)
     return fig
 

@@ -87,7 +87,8 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
 @run_argument
 @output_option("File to write; its extension decides the format: .geojson or .json, .csv, .gpx (waypoints), "
                ".tif or .tiff (GeoTIFF of the risk maps and cell labels, gis extra). CSV holds one route: with "
-               "--policy both it writes FILE's stem + -cautious.csv and -shortest.csv, each with a .txt sidecar.")
+               "--policy both it writes FILE's stem + -cautious.csv and -shortest.csv (with all, also -budget.csv), "
+               "each with a .txt sidecar.")
 @force_option
 @click.option("--format", "fmt", type=click.Choice(EXPORT_FORMATS), default=None,
               show_default="from the extension of -o",
@@ -95,8 +96,10 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
 @click.option("--contents", type=click.Choice(["waypoints", "hazard-cells"]), default="waypoints",
               show_default=True,
               help="GeoJSON only: the routes' waypoints, or the cells the grid treats as hazard (polygons).")
-@click.option("--policy", type=click.Choice(["cautious", "shortest", "both"]), default="both", show_default=True,
-              help="Which policy's route (or risk map).")
+@click.option("--policy", type=click.Choice(["cautious", "shortest", "budget", "both", "all"]), default="both",
+              show_default=True,
+              help="Which policy's route (or risk map): both = cautious and shortest; budget = the within-budget "
+                   "route of a run planned with --risk-budget; all = every route of the run.")
 @click.option("--alt-m", type=finite(0, 10_000), default=None, metavar="M",
               help="Constant altitude above ground for aerial simulators (metres), written in its own field.")
 @click.option("--ground-elev-m", type=finite(-500, 9000), default=None, metavar="M",
@@ -139,7 +142,7 @@ def export(run, output, force, fmt, contents, policy, alt_m, ground_elev_m, dem,
     from planner.transactions import read_lock
 
     out = Path(output)
-    names = ("cautious", "shortest") if policy == "both" else (policy,)
+    names = {"both": ("cautious", "shortest"), "all": ("cautious", "shortest", "budget")}.get(policy, (policy,))
     fmt = output_format(out, EXPORT_FORMATS, fmt=fmt)
     if contents == "hazard-cells" and fmt != "geojson":
         raise click.BadParameter(f"hazard cells are written as GeoJSON; -o {out} names {fmt}",
@@ -167,6 +170,12 @@ def export(run, output, force, fmt, contents, policy, alt_m, ground_elev_m, dem,
     ground = _ground(ground_elev_m, dem, vertical_datum)
     click.get_current_context().with_resource(read_lock(run))
     loaded = load_run(run)
+    if "greedy_budget" not in loaded.arrays:
+        if policy == "budget":
+            raise click.BadParameter(f"run {run} has no within-budget route (plan it with --risk-budget)",
+                                     param_hint="--policy")
+        if policy == "all":
+            names, targets = names[:2], targets[:2] if len(targets) > 1 else targets
     written = _export_files(loaded, fmt, contents, names, out, targets, alt_m, ground)
     for path in written:
         click.echo(f"wrote {path} (simulation only)")
