@@ -17,6 +17,7 @@ idle machine for figures worth quoting.
 from __future__ import annotations
 
 import argparse
+import os
 import time
 
 import numpy as np
@@ -43,6 +44,7 @@ def main() -> None:
     parser.add_argument("--size", type=int, default=500)
     parser.add_argument("--budget", type=float, default=1e-3)
     args = parser.parse_args()
+    print(f"load average at start {os.getloadavg()[0]:.1f} (1 min), {os.cpu_count()} cores")
     began = time.perf_counter()
     model = synthetic_model(args.size)
     built = time.perf_counter() - began
@@ -51,10 +53,12 @@ def main() -> None:
     searched = time.perf_counter() - began
     print(f"{model.n_states:,} cells, {model.n_outcomes:,} outcomes; model {built:.1f} s")
     print(f"budget {args.budget:g}: met {answer.met}, P(incident) {answer.route.p_incident:.3g}, "
-          f"length {answer.route.length_m:.1f} m-equiv.; {answer.n_solves} exact solves in {searched:.1f} s")
+          f"length {answer.route.length_m:.1f} m-equiv.; {answer.n_solves} exact solves in {searched:.1f} s "
+          f"({searched / max(answer.n_solves, 1):.1f} s per solve)")
     if answer.shorter is not None:
         print(f"  riskier neighbour: P(incident) {answer.shorter.p_incident:.3g}, length "
               f"{answer.shorter.length_m:.1f}; mixing share {answer.mix_share:.3f}")
+    print(f"load average at the end {os.getloadavg()[0]:.1f} (1 min)")
 
 
 if __name__ == "__main__":
