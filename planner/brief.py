@@ -240,11 +240,12 @@ def brief_content(inputs: BriefInputs) -> dict:
     content["budget"] = budget
     if budget is not None:
         from planner.brief_budget import budget_policy
+        from planner.budget_plan import budget_text
 
         content["budget_route"] = budget_policy(budget, inputs.routes["budget"], find_row(rows, "budget", eps, base))
         if not budget["met"]:
             content["banners"].append("RISK BUDGET NOT MET: no route meets P(incident) at most "
-                                      f"{format_prob(budget['budget'])}; §budget says how close the least risky "
+                                      f"{budget_text(budget['budget'], format_prob)}; §budget says how close the least risky "
                                       "one comes.")
     content["glance"] = _glance(inputs, content, p, rows)
     content["sections"] = [
@@ -808,7 +809,7 @@ def _section_waypoints(inputs: BriefInputs) -> list:
         route = inputs.routes[name]
         wrows = [[w.seq, f"{w.east_m:.1f}", f"{w.north_m:.1f}", f"{w.lat:.7f}", f"{w.lon:.7f}", f"{w.leg_m:.1f}",
                   f"{w.cumulative_m:.1f}", _metres(w.clearance_m), w.nearest_hazard or "-"] for w in route.waypoints]
-        blocks.append(_subhead(f"{name} route: {len(route.waypoints)} waypoints, {route.waypoint_length_m:.1f} m "
+        blocks.append(_subhead(f"{'within-budget' if name == 'budget' else name} route: {len(route.waypoints)} waypoints, {route.waypoint_length_m:.1f} m "
                                f"(cell path {route.length_m:.1f} m), ends {_ends(route)}; closest approach "
                                f"{_metres(route.min_clearance_m)} m"
                                + (f" to {route.min_clearance_hazard}" if route.min_clearance_hazard else "")))

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 
-from planner.budget_plan import ROUTE_NAME, budget_statement, moves_text
+from planner.budget_plan import ROUTE_NAME, budget_statement, budget_text, moves_text
 from planner.risk import find_row, format_prob
 
 #: Legs listed per route (the largest shares; the rest are summed in one line).
@@ -21,7 +21,7 @@ ROUTE_WORDS = {"cautious": "cautious", "shortest": "shortest", ROUTE_NAME: "with
 
 def budget_words(record: dict) -> str:
     """The budget as the sign-off states it: "P(incident) at most 0.1% (1 in 1,000) at noise 0.1, drift x1"."""
-    return (f"P(incident) at most {format_prob(record['budget'])} at noise {record['noise']:g}, drift "
+    return (f"P(incident) at most {budget_text(record['budget'], format_prob)} at noise {record['noise']:g}, drift "
             f"x{record['drift_scale']:g}")
 
 
@@ -106,7 +106,7 @@ def section_budget(content: dict, record: dict, causes: dict, routes: dict, rows
              "until the run ends (goal or incident), incidents themselves costing nothing; learned routes may lie "
              "off the hull.", small=True),
         table(["#", "hazard penalty (m-equiv.)", "P(incident)", "expected length (m-equiv.)",
-               f"budget {format_prob(record['budget'])}", "delivered routes here"], curve_rows,
+               f"budget {budget_text(record['budget'], format_prob)}", "delivered routes here"], curve_rows,
               numeric=(0, 1, 2, 3), small=True),
         figure("tradeoff.png", "trade-off between length and risk",
                f"P(incident) on a log scale against expected length, at noise {eps:g} and drift x{base:g}: the "

@@ -114,11 +114,13 @@ class Solver:
     are not solved again.
     """
 
-    def __init__(self, model: Model, epsilon: float, tie_m: float):
+    def __init__(self, model: Model, epsilon: float, tie_m: float, warm: np.ndarray | None = None):
         self.model, self.epsilon, self.tie_m = model, float(epsilon), float(tie_m)
         self.base = cost_only(model)
         self.incident = (model.event >= EVENT_BOUNDARY).astype(np.float64)
-        self.warm = None
+        # the first solve may start from values the caller already has (a plan's exact
+        # on-policy reference at the model's own penalty)
+        self.warm = None if warm is None else np.asarray(warm, dtype=np.float64)
         self.n_solves = 0
         self.cache: dict[float, TradeoffPoint] = {}
 

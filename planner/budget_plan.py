@@ -87,16 +87,18 @@ class BudgetPlan:
 
 
 def plan_budget(model, epsilon: float, budget: float, *, tie_m: float, drift_scale: float = 1.0,
-                set_by: str | None = None) -> BudgetPlan:
+                set_by: str | None = None, warm=None) -> BudgetPlan:
     """The budget route and the trade-off curve on ``model`` at noise ``epsilon``.
 
     One warm-started :class:`planner.budget.Solver` serves both, so the penalties the
-    budget search solved are not solved again for the curve.
+    budget search solved are not solved again for the curve; ``warm`` (values of the
+    on-policy fixed point at the model's own penalty, when the caller has them) starts
+    the first solve.
     """
     from planner.budget import CURVE_LENGTH_M, CURVE_RATIO, Solver, risk_budget, tradeoff_curve
 
     began = time.perf_counter()
-    solver = Solver(model, epsilon, tie_m)
+    solver = Solver(model, epsilon, tie_m, warm=warm)
     answer = risk_budget(model, epsilon, check_budget(budget), tie_m=tie_m, solver=solver)
     n_budget = solver.n_solves
     curve, n_total = tradeoff_curve(model, epsilon, tie_m=tie_m, solver=solver,
@@ -135,6 +137,17 @@ def budget_record(plan: BudgetPlan, routes: dict) -> dict:
     }
 
 
+def budget_text(budget: float, fmt) -> str:
+    """The budget in words: the one notation, or its digits where the notation stops resolving.
+
+    >>> from planner.risk import format_prob
+    >>> budget_text(1e-3, format_prob), budget_text(1e-15, format_prob)
+    ('0.10% (1 in 1,000)', '1e-15')
+    """
+    text = fmt(budget)
+    return f"{budget:.3g}" if text.startswith("<") else text
+
+
 def budget_statement(record: dict, fmt) -> str:
     """One or two plain sentences: what the budget was and what meets it.
 
@@ -145,11 +158,11 @@ def budget_statement(record: dict, fmt) -> str:
     if not r["met"]:
         which = ("the within-budget route delivered here (the least risky policy the search found)"
                  if r["least_risky_route"] == ROUTE_NAME else f"the {r['least_risky_route']} route")
-        return (f"No route meets the risk budget {fmt(r['budget'])} {at}: the least P(incident) any route "
+        return (f"No route meets the risk budget {budget_text(r['budget'], fmt)} {at}: the least P(incident) any route "
                 f"achieves is {fmt(r['least_p_incident'])}, by {which}. The route delivered as within-budget is "
                 f"that least risky one, {fmt(r['route']['p_incident'])} over the budget by "
                 f"{fmt(-r['gap'])}; it does NOT meet the budget.")
-    text = (f"Risk budget {fmt(r['budget'])} {at}: the shortest route that meets it has P(incident) "
+    text = (f"Risk budget {budget_text(r['budget'], fmt)} {at}: the shortest route that meets it has P(incident) "
             f"{fmt(r['route']['p_incident'])} (below the budget by {fmt(r['gap'])}) and expected length "
             f"{r['route']['length_m']:.1f} m-equiv.")
     if r["shorter"] is not None and r["mix_share"] is not None:

@@ -662,6 +662,7 @@ def figure_sensitivity(rows, *, title: str = "Sensitivity of the incident probab
              "exact on-policy": style.REFERENCE["cautious"], "exact optimal": style.REFERENCE["shortest"],
              "budget": style.BUDGET}
     panels = [(t, [n for n in names if any(r.policy == n for r in rows)]) for t, names in panels]
+    panels = [(f"{t} and the within-budget route" if "budget" in names else t, names) for t, names in panels]
     panels = [(t, names) for t, names in panels if names]
     scales = sorted({r.drift_scale for r in rows})
     # fewer series: the planning scale and the strongest tabulated one
@@ -690,7 +691,8 @@ def figure_sensitivity(rows, *, title: str = "Sensitivity of the incident probab
                         lw=widths[m], zorder=3)
                 ax.plot(x[~under], y[~under], "o", color=look["color"], ms=3.5, zorder=4)
                 ax.plot(x[under], y[under], "o", mfc="white", mec=look["color"], ms=4.5, zorder=4)
-                labels.append((y[-1], f"{name}, drift x{m:g}", look["color"], x[-1]))
+                shown = "within-budget" if name == "budget" else name
+                labels.append((y[-1], f"{shown}, drift x{m:g}", look["color"], x[-1]))
         pending.append((ax, labels))
         ax.set_yscale("log")
         ax.set_ylim(floor_y / 3, 1.5)

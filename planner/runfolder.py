@@ -506,7 +506,8 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         t = time.perf_counter()
         with progress.task(f"risk budget {settings.risk_budget:g}: exact solves over the hazard penalty"):
             budget_plan = plan_budget(model, eps, settings.risk_budget, tie_m=settings.tie_m,
-                                      drift_scale=settings.dynamics.drift_scale, set_by=settings.budget_set_by)
+                                      drift_scale=settings.dynamics.drift_scale, set_by=settings.budget_set_by,
+                                      warm=exact["cautious"].v)
         progress(f"risk budget: {budget_plan.n_solves_budget} exact solves for the route, "
                  f"{budget_plan.n_solves_curve} more for the trade-off curve ({len(budget_plan.curve)} points)")
         timings["budget_s"] = time.perf_counter() - t
