@@ -203,11 +203,12 @@ def test_a_budget_setter_without_a_budget_is_refused(tmp_path, no_heavy_work):
 def test_leg_decomposition_sums_to_p_incident_on_every_route_of_the_demo_sites(site_file):
     """Every route a budget plan delivers or checks against, at the demo sites' default cell."""
     from planner.budget_plan import explain_route, plan_budget
-    from planner.exact import equally_good, incident_from_every_state, on_policy_q, optimal_q, safest_among
+    from planner.exact import on_policy_q, optimal_q
     from planner.grid import GridSpec, default_cell_m, rasterise
     from planner.model import Dynamics, build_model
     from planner.route import build_route, nominal_path
     from planner.site import load_site
+    from planner.ties import equally_good, incident_from_every_state, safest_among
 
     eps = 0.1
     site = load_site(MAPS / site_file)
