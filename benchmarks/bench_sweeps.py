@@ -28,7 +28,16 @@ from pathlib import Path
 import numpy as np
 
 from planner.grid import FREE, HazardInfo, grid_from_arrays
-from planner.learn import METHODS, SWEEP_DECAY, _sweep_seed, heuristic_q, model_cost_to_go, sampling_table, sweep_order
+from planner.learn import (
+    METHODS,
+    SARSA_SWEEP_HORIZON,
+    SWEEP_DECAY,
+    _sweep_seed,
+    heuristic_q,
+    model_cost_to_go,
+    sampling_table,
+    sweep_order,
+)
 from planner.model import Dynamics, build_model
 
 HERE = Path(__file__).resolve().parent
@@ -50,6 +59,8 @@ def main() -> None:
     parser.add_argument("--sweeps", type=int, default=20)
     parser.add_argument("--trials", type=int, default=5)
     parser.add_argument("--method", choices=sorted(METHODS), default="qlearning")
+    parser.add_argument("--horizon", type=float, default=None,
+                        help="step H / (H + n - 1) in sweep n (default: SARSA's as plan trains it, none for Q-learning)")
     args = parser.parse_args()
 
     model = synthetic_model()
@@ -58,14 +69,15 @@ def main() -> None:
     table = sampling_table(model)
     q0 = heuristic_q(model, to_go).reshape(-1)
     method, eps, seed = METHODS[args.method], 0.1, 20261203
+    horizon = args.horizon if args.horizon is not None else (SARSA_SWEEP_HORIZON if args.method == "sarsa" else 0.0)
     print(f"{model.n_states:,} states, {order.size:,} pairs per sweep, {model.n_outcomes:,} outcomes; "
           f"{args.method}, {args.sweeps} sweeps per trial")
 
     def numba_run():
         q = q0.copy()
         began = time.perf_counter()
-        _sweep_seed(model.offsets, table, model.n_actions, q, method, eps, 1.0, SWEEP_DECAY, order, 0, args.sweeps,
-                    np.uint64(seed))
+        _sweep_seed(model.offsets, table, model.n_actions, q, method, eps, 1.0, SWEEP_DECAY, horizon, order, 0,
+                    args.sweeps, np.uint64(seed))
         return time.perf_counter() - began, q
 
     numba_run()  # compile (or load the cache) outside the timing
@@ -85,7 +97,7 @@ def main() -> None:
         def c_run():
             q0.tofile(tmp / "q.bin")
             out = subprocess.run([str(exe), str(tmp), str(args.sweeps), str(method), repr(eps), repr(SWEEP_DECAY),
-                                  str(seed)], check=True, capture_output=True, text=True)
+                                  repr(horizon), str(seed)], check=True, capture_output=True, text=True)
             return float(out.stdout.strip()), np.fromfile(tmp / "q.bin", dtype=np.float64)
 
         updates = args.sweeps * order.size

@@ -3,7 +3,8 @@
  * stream, the same epsilon-greedy choice with random tie-breaking and the same
  * polynomial step size (one per sweep), so that both produce the same Q table bit for bit.
  *
- * Usage: sweep_reference DIR N_SWEEPS METHOD EPSILON DECAY SEED
+ * Usage: sweep_reference DIR N_SWEEPS METHOD EPSILON DECAY HORIZON SEED
+ * (HORIZON 0: step n^-DECAY in sweep n; else HORIZON / (HORIZON + n - 1)).
  * DIR holds offsets.bin (int64), table.bin (records), order.bin (int64), q.bin
  * (float64, overwritten with the result) and meta.bin (int64 n_actions). Prints the
  * seconds spent in the sweeps. */
@@ -81,12 +82,12 @@ static void *slurp(const char *dir, const char *name, size_t *bytes) {
 }
 
 int main(int argc, char **argv) {
-    if (argc != 7) { fprintf(stderr, "usage: %s DIR N_SWEEPS METHOD EPSILON DECAY SEED\n", argv[0]); return 2; }
+    if (argc != 8) { fprintf(stderr, "usage: %s DIR N_SWEEPS METHOD EPSILON DECAY HORIZON SEED\n", argv[0]); return 2; }
     const char *dir = argv[1];
     long n_sweeps = atol(argv[2]);
     int method = atoi(argv[3]);
-    double eps = atof(argv[4]), decay = atof(argv[5]);
-    uint64_t s = strtoull(argv[6], NULL, 10);
+    double eps = atof(argv[4]), decay = atof(argv[5]), horizon = atof(argv[6]);
+    uint64_t s = strtoull(argv[7], NULL, 10);
     size_t nb;
     int64_t *offsets = slurp(dir, "offsets.bin", &nb);
     record *table = slurp(dir, "table.bin", &nb);
@@ -99,7 +100,7 @@ int main(int argc, char **argv) {
     struct timespec t0, t1;
     clock_gettime(CLOCK_MONOTONIC, &t0);
     for (long sweep = 1; sweep <= n_sweeps; sweep++) {
-        double alpha = pow((double)sweep, -decay);
+        double alpha = horizon > 0.0 ? horizon / (horizon + (double)sweep - 1.0) : pow((double)sweep, -decay);
         for (size_t i = 0; i < n_order; i++) {
             int64_t k = order[i];
             uint32_t draw = (uint32_t)(next(&s) >> 32);

@@ -81,7 +81,7 @@ class PlanSettings:
     alt_m: float | None = None
     convergence_threshold: float = 0.95
     tie_m: float = 0.01
-    cautious_schedule: str = "episodes"
+    cautious_schedule: str = "sweeps"
     shortest_schedule: str = "sweeps"
     grid_check: bool = True
     grid_levels: int = 2
@@ -453,7 +453,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     from planner.exact import on_policy_q, optimal_q
     from planner.gis import load_sites
     from planner.grid import cost_to_goal, rasterise
-    from planner.learn import learned_ties, train
+    from planner.learn import SARSA_SWEEP_HORIZON, learned_ties, train
     from planner.model import build_model
     from planner.route import nominal_path
     from planner.ties import check_tie_tolerance, equally_good, safest_among
@@ -528,7 +528,11 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
             return verdict.converged, verdict.p_incident
         return rule
 
-    learn_cautious = dataclasses.replace(settings.learn, schedule=settings.cautious_schedule)
+    # SARSA's sampled next action makes its targets far noisier than Q-learning's: in
+    # sweeps it keeps larger steps for longer (see planner.learn.SARSA_SWEEP_HORIZON).
+    learn_cautious = dataclasses.replace(
+        settings.learn, schedule=settings.cautious_schedule,
+        sweep_horizon=SARSA_SWEEP_HORIZON if settings.learn.sweep_horizon is None else settings.learn.sweep_horizon)
     learn_shortest = dataclasses.replace(
         settings.learn, schedule=settings.shortest_schedule,
         episodes=settings.learn.episodes if settings.episodes_shortest is None else settings.episodes_shortest)
@@ -610,11 +614,16 @@ LEARNED_SLACK_SHARE = 0.05
 #: Reference rows of the risk table, by the learned policy they judge.
 REFERENCE_ROWS = {"cautious": "exact on-policy", "shortest": "exact optimal"}
 def _training_notes(learned) -> dict:
-    """What a learner's training took, and what to try when its verdict fails."""
+    """What a learner's training took, when its verdict turned converged, and what to try when it did not."""
+    from planner.learn import FIRST_CHECK_SWEEPS
+
     how = learned.settings
     if how.schedule == "sweeps":
-        used = (f"{learned.steps_total:.2e} updates ({learned.n_sweeps:,} sweeps"
-                + (", stopped when its verdict passed)" if learned.stopped_by_rule else ", the whole budget)"))
+        used = (f"{learned.steps_total:.2e} updates in {learned.n_sweeps:,} sweeps; "
+                + (f"its verdict turned converged at the check after {learned.n_sweeps:,} sweeps, where training "
+                   "stopped" if learned.stopped_by_rule else
+                   f"its verdict was not converged at any check ({len(learned.check_updates)} checks from "
+                   f"{FIRST_CHECK_SWEEPS:,} to {learned.n_sweeps:,} sweeps)"))
         return {"used": used, "advice": f"try --max-sweeps {4 * how.max_sweeps}"}
     return {"used": f"{learned.steps_total:.2e} updates ({how.episodes:,} episodes per seed)",
             "advice": f"try --episodes {4 * how.episodes}"}
@@ -904,6 +913,7 @@ def build_manifest(result: PlanResult, settings: PlanSettings, site_path, folder
             "seed_routes_matching": conv.seed_routes_matching, "n_seeds": conv.n_seeds, "message": conv.message,
             "episodes": learned.settings.episodes, "max_steps": learned.max_steps,
             "schedule": learned.settings.schedule, "updates": int(learned.steps_total),
+            "sweep_horizon": learned.settings.sweep_horizon,
             "sweeps": int(learned.n_sweeps), "stopped_by_rule": bool(learned.stopped_by_rule),
             "checks": {"updates": [int(u) for u in learned.check_updates],
                        "p_incident": [None if not np.isfinite(p) else float(p) for p in learned.check_p_incident]},

@@ -23,7 +23,7 @@ SECTIONS = {
     "Grid": ("cell_m", "hazard_overlap", "boundary_cover", "max_cells"),
     "Vehicle and motion": ("n_actions", "headings", "move_m", "slip", "stall", "drift_scale", "edge", "penalty_m"),
     "Learning": ("epsilon", "step_size", "step_decay", "gamma", "episodes", "max_steps", "n_seeds", "start_mode",
-                 "q_init", "seed", "tie_m", "shortest_schedule", "max_sweeps"),
+                 "q_init", "seed", "tie_m", "cautious_schedule", "shortest_schedule", "max_sweeps"),
     "Risk table": ("noises", "drift_scales", "budget_m", "budget_min", "speed_mps", "rollouts", "rollout_seed",
                    "grid_check", "grid_levels"),
     "Risk budget": ("risk_budget", "budget_set_by"),

@@ -50,6 +50,10 @@ def default_episodes(n_active: int) -> int:
     return int(min(500_000, max(20_000, 50 * n_active)))
 
 
+#: Default ``--max-sweeps``: room for SARSA, which on the demo sites meets its risk
+#: verdict after 2,048 to 4,096 sweeps (Q-learning after 64 or fewer).
+DEFAULT_MAX_SWEEPS = 8192
+
 #: Exit code of ``plan --strict`` when the run was written but is not ready to sign.
 EXIT_NOT_READY = 3
 
@@ -75,11 +79,15 @@ EXIT_NOT_READY = 3
 @click.option("--tie-m", type=finite(0, low_open=True), default=0.01, show_default=True, metavar="M",
               help="Actions within this many metres-equivalent of the best are equally good; among them the "
                    "safest is taken (must stay below the shortest move).")
+@click.option("--cautious-schedule", type=click.Choice(["sweeps", "episodes"]), default="sweeps", show_default=True,
+              help="How SARSA samples: sweeps over every state-action pair, the next action drawn from its "
+                   "epsilon-greedy policy (stopping when its risk verdict passes), or episodes from the start.")
 @click.option("--shortest-schedule", type=click.Choice(["sweeps", "episodes"]), default="sweeps", show_default=True,
               help="How Q-learning samples: sweeps over every state-action pair (stopping when its risk verdict "
-                   "passes), or episodes from the start like SARSA.")
-@click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), metavar="N", default=512, show_default=True,
-              help="Update budget of the sweeps schedule, in sweeps.")
+                   "passes), or episodes from the start.")
+@click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), metavar="N", default=DEFAULT_MAX_SWEEPS,
+              show_default=True, help="Update budget of the sweeps schedule, in sweeps per training run (checks "
+                                      "of the risk verdict after 4, 8, 16, ... sweeps stop it earlier).")
 @click.option("--grid-check/--no-grid-check", "grid_check", default=True, show_default=True,
               help="Re-evaluate each delivered policy on a grid of half the cell (same move length) and report "
                    "both figures.")
@@ -89,7 +97,7 @@ EXIT_NOT_READY = 3
 def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,
          max_cells, n_actions, move_m, slip, stall, drift_scale, edge, penalty_m, epsilon, step_size, step_decay,
          gamma, episodes, max_steps, n_seeds, start_mode, q_init, seed, noises, drift_scales, budget_m, budget_min,
-         speed_mps, rollouts, alt_m, tie_m, shortest_schedule, max_sweeps, grid_check,
+         speed_mps, rollouts, alt_m, tie_m, cautious_schedule, shortest_schedule, max_sweeps, grid_check,
          grid_levels, risk_budget, budget_set_by):
     """Plan the cautious and the shortest route across SITE and write the run folder RUN.
 
@@ -154,7 +162,8 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
                             budget_m=travel_budget_m(budget_m, budget_min, speed_mps), budget_min=budget_min,
                             speed_mps=speed_mps,
                             rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
-                            tie_m=tie_m, shortest_schedule=shortest_schedule, grid_check=grid_check,
+                            tie_m=tie_m, cautious_schedule=cautious_schedule, shortest_schedule=shortest_schedule,
+                            grid_check=grid_check,
                             settings_file=settings_file, settings_sha256=settings_sha256,
                             grid_levels=grid_levels, risk_budget=risk_budget, budget_set_by=budget_set_by)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:

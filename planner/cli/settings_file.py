@@ -117,12 +117,12 @@ FROM_MANIFEST = {
     "max-sweeps": "learn.max_sweeps",
     "table-noises": "noises", "table-drifts": "drift_scales", "budget-m": "budget_m", "budget-min": "budget_min",
     "speed-mps": "speed_mps", "rollouts": "rollouts", "alt-m": "alt_m", "tie-m": "tie_m",
-    "shortest-schedule": "shortest_schedule", "grid-check": "grid_check", "grid-levels": "grid_levels",
-    "risk-budget": "risk_budget", "budget-set-by": "budget_set_by",
+    "cautious-schedule": "cautious_schedule", "shortest-schedule": "shortest_schedule", "grid-check": "grid_check",
+    "grid-levels": "grid_levels", "risk-budget": "risk_budget", "budget-set-by": "budget_set_by",
 }
 #: Recorded settings no option sets; a manifest may hold them only at these values.
 FIXED_IN_MANIFEST = {
-    "episodes_shortest": None, "convergence_threshold": 0.95, "cautious_schedule": "episodes",
+    "episodes_shortest": None, "convergence_threshold": 0.95, "learn.sweep_horizon": None,
     "learn.schedule": "episodes", "dynamics.step_cost": "length",
 }
 #: Recorded settings that say where the settings came from, not what they are.
