@@ -61,8 +61,11 @@ MAX_SWEEPS = 1_000_000
 #: Measured on the ground-robot demo yard: 0.7 met the risk verdict in 48 sweeps, a
 #: rescaled linear schedule ``H / (H + n - 1)`` needed 256.
 SWEEP_DECAY = 0.7
-#: First sweep count at which the stopping rule is checked; later checks double it.
+#: First sweep count at which the stopping rule is checked; later checks double it ...
 FIRST_CHECK_SWEEPS = 4
+#: ... up to this many sweeps, and from there grow by ``CHECK_GROWTH`` (see :func:`check_marks`).
+CHECK_DOUBLING_UNTIL = 512
+CHECK_GROWTH = 1.25
 #: Step-size horizon of SARSA in sweeps: ``alpha_n = H / (H + n - 1)`` in sweep ``n``
 #: (a rescaled linear schedule). SARSA's target carries the value of a next action drawn
 #: from the epsilon-greedy policy, whose spread near a hazard is hundreds of metres, and
@@ -105,7 +108,7 @@ class LearnSettings:
         to go, nearest the goal first; the step size of the ``n``-th update of a pair
         is ``n ** -w``, ``w`` = ``step_decay`` or ``SWEEP_DECAY``).
     max_sweeps : with ``"sweeps"``, the update budget in sweeps; training checks its
-        stopping rule (see :func:`train`) after 4, 8, 16, ... sweeps and stops there
+        stopping rule (see :func:`train`) at the sweep counts of :func:`check_marks` and stops there
         when it is met.
     sweep_horizon : with ``"sweeps"``, ``None`` (step ``n ** -w`` in sweep ``n``, see
         ``schedule``) or ``H >= 1``: step ``H / (H + n - 1)`` (rescaled linear; ``plan``
@@ -557,7 +560,7 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
         all seeds). A ``KeyboardInterrupt`` while training stops the workers after their
         current chunk and is re-raised.
     stop_rule : sweeps schedule only: optional ``callable(q_mean, q) -> (done,
-        p_incident)`` checked after 4, 8, 16, ... sweeps of every seed (so the result
+        p_incident)`` checked at the sweep counts of :func:`check_marks` (all seeds) (so the result
         does not depend on timing or on ``n_jobs``); training stops at the first check
         that says ``done``. ``plan`` passes the risk verdict against the exact reference.
 
@@ -673,6 +676,27 @@ def sweep_order(model: Model, cost_to_go: np.ndarray) -> np.ndarray:
     return (states[:, None] * model.n_actions + np.arange(model.n_actions)[None, :]).ravel().astype(np.int64)
 
 
+def check_marks(budget: int) -> list[int]:
+    """Sweep counts at which the stopping rule is checked, ending with the budget.
+
+    4, 8, 16, ... up to ``CHECK_DOUBLING_UNTIL``, then growing by ``CHECK_GROWTH`` (a
+    check costs one safety tie-break and one chain solve; finer steps late waste fewer
+    sweeps past the point where the verdict passes). Every seed reaches each mark before
+    the rule looks, so the result is the same for any number of threads.
+
+    Examples
+    --------
+    >>> check_marks(1500)
+    [4, 8, 16, 32, 64, 128, 256, 512, 640, 800, 1000, 1250, 1500]
+    """
+    marks, m = [], FIRST_CHECK_SWEEPS
+    while m < budget:
+        marks.append(m)
+        m = 2 * m if m < CHECK_DOUBLING_UNTIL else int(math.ceil(m * CHECK_GROWTH))
+    marks.append(int(budget))
+    return marks
+
+
 def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_jobs, progress, stop_rule):
     """The sweeps schedule of :func:`train` (see :class:`LearnSettings`)."""
     n_a, n_seeds = model.n_actions, settings.n_seeds
@@ -684,14 +708,7 @@ def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_
     checks, p_checks, values = [], [], []
     lock, stop, done = threading.Lock(), threading.Event(), [0]
     budget = int(settings.max_sweeps)
-    # Checkpoints 4, 8, 16, ... and the budget; every seed reaches each one before the
-    # stopping rule looks, so the result is the same for any number of threads.
-    marks = []
-    m = FIRST_CHECK_SWEEPS
-    while m < budget:
-        marks.append(m)
-        m *= 2
-    marks.append(budget)
+    marks = check_marks(budget)
 
     def run(i, first, last):
         flat_q = q[i].reshape(-1)
@@ -991,7 +1008,7 @@ def _sweep_seed(offsets, table, n_actions, q, method, epsilon, gamma, decay, hor
 __all__ = [
     "CORRIDOR_MARGIN", "END_STEP_CAP", "METHODS", "Learned", "LearnSettings", "corridor_states",
     "TABLE_DTYPE", "fewest_moves", "greedy_actions", "heuristic_q", "learned_ties", "model_cost_to_go",
-    "sweep_order",
+    "sweep_order", "check_marks",
     "sampling_table", "seed_states", "train",
 ]
 

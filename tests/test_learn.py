@@ -380,3 +380,85 @@ def test_sweep_order_puts_the_goal_side_first(cliff):
     cost = model_cost_to_go(cliff)[states]
     assert np.all(np.diff(cost) >= 0)
     assert set(states) == set(np.flatnonzero(cliff.active & ~cliff.goal & np.isfinite(model_cost_to_go(cliff))))
+
+
+def test_sweep_step_with_a_horizon_is_rescaled_linear():
+    # One pair (east from the west cell of a two-cell corridor) whose only outcome ends the
+    # run at the goal with reward -1. Sweeps 2 and 3 from Q = 0 with H = 4 take steps
+    # 4 / (4 + 1) and 4 / (4 + 2), worked by hand: Q = -0.8, then -0.8 + (2/3)(-1 + 0.8).
+    from test_exact import corridor_model
+
+    from planner.learn import _sweep_seed
+
+    model = corridor_model(2)
+    east = 1
+    order = np.array([model.start * model.n_actions + east], np.int64)
+    q = np.zeros(model.n_states * model.n_actions)
+    _sweep_seed(model.offsets, sampling_table(model), model.n_actions, q, 0, 0.1, 1.0, 0.7, 4.0, order, 1, 1,
+                np.uint64(1))
+    assert_allclose(q[order[0]], -0.8, rtol=1e-15)
+    _sweep_seed(model.offsets, sampling_table(model), model.n_actions, q, 0, 0.1, 1.0, 0.7, 4.0, order, 2, 1,
+                np.uint64(1))
+    assert_allclose(q[order[0]], -0.8 - 0.2 * 2 / 3, rtol=1e-15)
+
+
+def slippery_cliff():
+    """The cliff of Example 6.6 (Sutton & Barto 2nd ed., 2018), 6 rows high, with slip."""
+    label = np.full((6, 12), FREE)
+    label[0, 1:11] = 0
+    goal = np.zeros((6, 12), dtype=bool)
+    goal[0, 11] = True
+    grid = grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("cliff"),))
+    return build_model(grid, Dynamics(n_actions=8, slip=0.1, edge="wall", step_cost="move", hazard_penalty_m=100.0))
+
+
+def test_sweeps_sarsa_with_a_horizon_meets_the_risk_verdict_on_a_slippery_cliff():
+    # The exact on-policy fixed point (value iteration, planner.exact) is the reference;
+    # SARSA in sweeps, the next action drawn from its epsilon-greedy policy, must end with
+    # a policy whose exact P(incident) and expected length agree with it (the plan's rule).
+    from planner.exact import equally_good, risk_verdict, safest_among
+    from planner.learn import SARSA_SWEEP_HORIZON
+
+    model = slippery_cliff()
+    eps = 0.1
+    exact = on_policy_q(model, eps)
+    reference = safest_among(model, equally_good(exact.q), eps, value=exact.q)
+
+    def delivered(q):
+        from planner.learn import learned_ties as ties
+
+        return safest_among(model, ties(q, 0.01, max_slack_m=0.05), eps, value=q.mean(axis=0), riskiest=False).greedy
+
+    def rule(_mean, q):
+        verdict = risk_verdict(model, delivered(q), reference)
+        return verdict.converged, verdict.p_incident
+
+    settings = LearnSettings(epsilon=eps, n_seeds=4, schedule="sweeps", max_sweeps=4096,
+                             sweep_horizon=SARSA_SWEEP_HORIZON)
+    result = train(model, "sarsa", settings, seed=21, stop_rule=rule)
+    assert result.stopped_by_rule and result.n_sweeps < 4096
+    final = risk_verdict(model, delivered(result.q), reference)
+    assert final.converged
+    assert_allclose(final.p_incident, reference.p_incident, rtol=0.1)
+    assert result.check_p_incident[-1] == final.p_incident
+
+
+@pytest.mark.parametrize("horizon", [None, 100.0])
+def test_sweeps_sarsa_same_seed_same_arrays_whatever_the_thread_count(horizon):
+    model = slippery_cliff()
+    settings = LearnSettings(epsilon=0.1, n_seeds=3, schedule="sweeps", max_sweeps=40, sweep_horizon=horizon)
+    one = train(model, "sarsa", settings, seed=8, n_jobs=1)
+    two = train(model, "sarsa", settings, seed=8, n_jobs=2)
+    again = train(model, "sarsa", settings, seed=8, n_jobs=3)
+    for other in (two, again):
+        np.testing.assert_array_equal(one.q, other.q)
+        np.testing.assert_array_equal(one.check_value, other.check_value)
+        np.testing.assert_array_equal(one.check_updates, other.check_updates)
+    assert not np.array_equal(one.q, train(model, "sarsa", settings, seed=9, n_jobs=2).q)
+
+
+def test_sweep_horizon_is_checked():
+    with pytest.raises(SettingsError, match="sweep_horizon"):
+        LearnSettings(sweep_horizon=0.5)
+    with pytest.raises(SettingsError, match="sweep_horizon"):
+        LearnSettings(sweep_horizon=math.inf)

@@ -87,7 +87,7 @@ EXIT_NOT_READY = 3
                    "passes), or episodes from the start.")
 @click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), metavar="N", default=DEFAULT_MAX_SWEEPS,
               show_default=True, help="Update budget of the sweeps schedule, in sweeps per training run (checks "
-                                      "of the risk verdict after 4, 8, 16, ... sweeps stop it earlier).")
+                                      "of the risk verdict after 4, 8, 16, ... sweeps, then every 25% more, stop it earlier).")
 @click.option("--grid-check/--no-grid-check", "grid_check", default=True, show_default=True,
               help="Re-evaluate each delivered policy on a grid of half the cell (same move length) and report "
                    "both figures.")
