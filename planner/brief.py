@@ -225,6 +225,7 @@ def brief_content(inputs: BriefInputs) -> dict:
             "agreement": conv["agreement"],
             "value_gap_m": math.inf if conv["value_gap_m"] is None else conv["value_gap_m"],
             "episodes": conv.get("episodes", learn.episodes),
+            "training": training_text(conv, conv.get("n_seeds", learn.n_seeds)),
         })
     p = {x["name"]: x for x in policies}
     content = {
@@ -406,11 +407,25 @@ def seed_range(seed_values, headline) -> tuple[float, float]:
     return (min(values), max(values)) if values else (math.nan, math.nan)
 
 
+#: What "more training" means, whichever schedule a learner used.
+MORE_TRAINING = "--max-sweeps, or --episodes for the episodes schedule"
+
+
+def training_text(conv: dict, n_seeds: int) -> str:
+    """How much a learner trained and when its verdict turned converged, from its manifest result."""
+    if conv.get("schedule") != "sweeps":
+        return f"{n_seeds} x {conv.get('episodes', 0):,} episodes, {conv.get('updates', 0):.2g} updates"
+    text = f"{n_seeds} x {conv.get('sweeps', 0):,} sweeps, {conv.get('updates', 0):.2g} updates"
+    return text + ("; verdict converged at the last check" if conv.get("stopped_by_rule")
+                   else "; verdict not converged at any check")
+
+
 def seeds_banner(x: dict) -> str:
     """The banner raised when the training seeds do not agree on a policy's route."""
     return (f"SEEDS DISAGREE on the {x['name']} route: only {x['seed_routes_matching']} of {x['n_seeds']} "
             "training runs keep within 2 cells of it, so it depends on the seed, not only on the yard "
-            f"(P(incident) over the runs {x['p_incident_range']}). Re-run with more episodes before signing.")
+            f"(P(incident) over the runs {x['p_incident_range']}). Re-run with more training ({MORE_TRAINING}) "
+            "before signing.")
 def _section_signoff(inputs: BriefInputs, content: dict) -> list:
     """What is signed (run, site file, routes with their files' hashes), then the fields to fill in."""
     manifest, files = inputs.manifest, inputs.manifest.get("files", {})
@@ -479,7 +494,7 @@ def _banners(policies) -> list[str]:
     for x in bad:
         out.append(f"NOT CONVERGED: the learned {x['name']} policy's risk does not agree with its exact reference "
                    f"({x['message']}). The learned {x['name']} route must not be signed; re-run with more "
-                   "episodes.")
+                   f"training ({MORE_TRAINING}).")
     out += [seeds_banner(x) for x in policies if x["seeds_disagree"]]
     for x in policies:
         if not x["reached_goal"]:
@@ -552,7 +567,8 @@ def _glance(inputs: BriefInputs, content: dict, p: dict, rows) -> list[tuple[str
     if bad:
         trust = ("NO. Not converged: the " + " and ".join(
             f"{x['name']} policy's own P(incident) is {x['p_incident']} against {x['p_incident_reference']} for "
-            "its exact reference" for x in bad) + ": do not sign the learned route; re-run with more episodes.")
+            "its exact reference" for x in bad) + f": do not sign the learned route; re-run with more training "
+                                                  f"({MORE_TRAINING}).")
     else:
         trust = (f"Training converged for both policies ({100 * c['agreement']:.1f}% and "
                  f"{100 * s['agreement']:.1f}% agreement with the exact solution of the same model).")
@@ -757,11 +773,11 @@ def _section_trust(content: dict, rows) -> list:
             alerts.append((k, 1))
         table.append([x["name"], "converged" if x["converged"] else "NOT CONVERGED", f"{100 * x['agreement']:.1f}%",
                       _metres(x["value_gap_m"]), f"{x['seed_routes_matching']} of {x['n_seeds']}",
-                      f"{x['p_incident']} / {x['p_incident_reference']}", f"{x['n_seeds']} x {x['episodes']:,}"])
+                      f"{x['p_incident']} / {x['p_incident_reference']}", x["training"]])
     blocks = [
         _table(["policy", "training", "agreement with exact", "value gap at start (m-equiv.)",
                 "seed routes within 2 cells", f"P(incident) learned / exact, noise {content['noise']:g}",
-                "seeds x episodes"], table, numeric=(2, 3), alerts=alerts),
+                "training (seeds x budget, updates)"], table, numeric=(2, 3), alerts=alerts),
         _list([f"{x['name']} (delivered: {x['delivered']}): {x['message']}" for x in content["policies"]]),
         _para("Verdict: a learned policy is converged only when its own exact P(incident) lies within its exact "
               "reference's range over equally good tie-breaks, widened by 10 % or the Monte Carlo 99 % interval "
@@ -795,8 +811,11 @@ def _section_trust(content: dict, rows) -> list:
                 "it says nothing about whether the model matches the yard.")
     blocks.append(_para(" ".join(text)))
     blocks.append(_figure("learning.png", "learning curves",
-                          "Return per episode (moving average; line = mean over seeds, band = range) and the share "
-                          "of training episodes that ended in an incident. Returns are minus costs in "
+                          "Learners trained in episodes: return per episode (moving average; line = mean over "
+                          "seeds, band = range) and the share of training episodes that ended in an incident. "
+                          "Learners trained in sweeps: each seed's greedy value at the start (line = mean, band = "
+                          "range over seeds) and the exact P(incident) of the delivered policy at each check of "
+                          "the risk verdict, against the updates made. Values are minus costs in "
                           "metres-equivalent."))
     return blocks
 
@@ -858,14 +877,23 @@ def _section_site(inputs: BriefInputs, content: dict) -> list:
     return blocks
 
 
+def _sweeps_text(result: dict, learn) -> str:
+    """The sweeps schedule of one learner, for the assumptions table."""
+    from planner.learn import SWEEP_DECAY
+
+    horizon = result.get("sweep_horizon")
+    step = (f"step {horizon:g} / ({horizon:g} + n - 1)" if horizon else
+            f"step n^-{learn.step_decay if learn.step_decay else SWEEP_DECAY:g}")
+    return (f"sweeps over every state-action pair ({step} in sweep n), up to {learn.max_sweeps:,}, stopped at the "
+            "first check of the risk verdict that passes")
+
+
 def _assumptions(inputs: BriefInputs, eps: float) -> list[tuple[str, str]]:
     settings, manifest, grid = inputs.settings, inputs.manifest, inputs.grid
     dyn, learn, spec = settings.dynamics, settings.learn, settings.grid
     overlap = "any overlap at all" if spec.hazard_overlap == 0 else f"more than {100 * spec.hazard_overlap:g}% of it"
     cover = "wholly" if spec.boundary_cover >= 1 else f"at least {100 * spec.boundary_cover:g}% of it"
     episodes = {name: manifest["results"][name].get("episodes", learn.episodes) for name in POLICIES}
-    ep_text = (f"{episodes['cautious']:,}" if episodes["cautious"] == episodes["shortest"]
-               else f"{episodes['cautious']:,} (SARSA) / {episodes['shortest']:,} (Q-learning)")
     return [
         ("Grid", f"{grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m; a cell is hazard when a buffered "
                  f"hazard covers {overlap}, inside when the boundary covers it {cover}"),
@@ -878,9 +906,11 @@ def _assumptions(inputs: BriefInputs, eps: float) -> list[tuple[str, str]]:
         ("Leaving the boundary", "an incident that ends the run" if dyn.edge == "boundary" else "blocked (wall)"),
         ("Hazard penalty", f"{manifest['model']['boundary_penalty_m']:g} m-equivalent for leaving the boundary and for "
                            "hazards without their own: the detour one would accept to avoid one certain incident"),
-        ("Learning", f"{learn.n_seeds} seeds x {ep_text} episodes per learner, step size {learn.step_size:g}"
-                     + (f" (1/n^{learn.step_decay:g})" if learn.step_decay else "")
-                     + f", gamma {learn.gamma:g}, starts '{learn.start_mode}', Q init '{learn.q_init}'"),
+        ("Learning", f"{learn.n_seeds} seeds per learner; " + "; ".join(
+            f"{METHOD[name]}: " + (_sweeps_text(manifest["results"][name], learn) if manifest["results"][name].get(
+                "schedule") == "sweeps" else f"{episodes[name]:,} episodes, step size {learn.step_size:g}"
+                + (f" (1/n^{learn.step_decay:g})" if learn.step_decay else "") + f", starts '{learn.start_mode}'")
+            for name in POLICIES) + f"; gamma {learn.gamma:g}, Q init '{learn.q_init}'"),
         ("Seed", f"root entropy {manifest['seeds']['entropy']}"),
         ("Monte Carlo", f"{settings.rollouts:,} simulated runs per risk row; Clopper-Pearson 95% intervals shown, "
                         "checks against the exact figures with Clopper-Pearson intervals at the table's level"),

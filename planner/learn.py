@@ -13,6 +13,10 @@ the exact methods of :mod:`planner.exact` see one and the same model. Each seed 
 small in-kernel generator (splitmix64) whose 64-bit state comes from a child of one
 recorded :class:`numpy.random.SeedSequence`; seeds are independent, so the results do
 not depend on how many threads run them.
+
+The module is longer than most on purpose: the kernels of both schedules sit beside the
+generator, sampler and greedy helpers they share, so one file shows every number a seed
+draws and in which order, which is what reproducibility rests on.
 """
 
 from __future__ import annotations

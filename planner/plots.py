@@ -436,13 +436,16 @@ def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Pat
     """
     episodic = {n: r for n, r in learned.items() if r.settings.schedule == "episodes"}
     swept = {n: r for n, r in learned.items() if r.settings.schedule == "sweeps"}
-    rows = (2 if episodic else 0) + (1 if swept else 0)
-    fig, axes = plt.subplots(rows, 1, figsize=(7.5, 6.2 if episodic else 3.4) if not (episodic and swept)
-                             else (7.5, 8.4), dpi=style.FIGURE_DPI,
-                             gridspec_kw={"height_ratios": ([2.2, 1.0] if episodic else []) + ([1.4] if swept else [])})
+    rows = (2 if episodic else 0) + (2 if swept else 0)
+    fig, axes = plt.subplots(rows, 1, figsize=(7.5, 6.2) if not (episodic and swept) else (7.5, 10.4),
+                             dpi=style.FIGURE_DPI,
+                             gridspec_kw={"height_ratios": ([2.2, 1.0] if episodic else [])
+                                          + ([1.4, 1.4] if swept else [])})
     axes = np.atleast_1d(axes)
     if swept:
-        _sweep_panel(axes[-1], swept, title if not episodic else None)
+        axes[-1].sharex(axes[-2])
+        _sweep_value_panel(axes[-2], swept, title if not episodic else None)
+        _sweep_panel(axes[-1], swept, None)
     if not episodic:
         return _save_learning(fig, path)
     ax1, ax2 = axes[0], axes[1]
@@ -474,6 +477,38 @@ def plot_learning(learned: dict, path, *, title: str = "Learning curves") -> Pat
     return _save_learning(fig, path)
 
 
+def _plain_log_ticks(axis) -> None:
+    """Decades written as plain text ("1e6"): figures draw without mathtext."""
+    from matplotlib.ticker import FuncFormatter, NullFormatter
+
+    axis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:.0e}".replace("e+0", "e").replace("e+", "e")))
+    axis.set_minor_formatter(NullFormatter())
+
+
+def _sweep_value_panel(ax, swept: dict, title: str | None) -> None:
+    """Learners trained in sweeps: each seed's greedy value at the start at each check.
+
+    The mean over seeds as a line and the range over seeds as a band, against the
+    updates made (all seeds together), on the axis the P(incident) panel shares.
+    """
+    for name, result in swept.items():
+        look = style.POLICY[name]
+        values = np.asarray(result.check_value, dtype=float)
+        x = np.asarray(result.check_updates, dtype=float)
+        if values.size == 0:
+            continue
+        ax.fill_between(x, values.min(axis=0), values.max(axis=0), color=look["color"], alpha=0.18, lw=0)
+        ax.plot(x, values.mean(axis=0), color=look["color"], ls=look["linestyle"], lw=1.6,
+                label=f"{look['label']}: mean of {values.shape[0]} seeds")
+    ax.set_xscale("log")
+    _plain_log_ticks(ax.xaxis)
+    ax.set_ylabel("greedy value at the start\n(m-equiv., minus the cost)")
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=style.FONT_SIZE - 1, loc="best")
+    if title:
+        ax.set_title(title, loc="left", fontsize=style.FONT_SIZE + 2)
+
+
 def _sweep_panel(ax, swept: dict, title: str | None) -> None:
     """Learners trained in sweeps.
 
@@ -486,16 +521,20 @@ def _sweep_panel(ax, swept: dict, title: str | None) -> None:
         x = np.asarray(result.check_updates, dtype=float)
         ax.plot(x, np.maximum(p, 1e-12), color=look["color"], ls=look["linestyle"], lw=1.6, marker="o", ms=3.5,
                 label=f"{look['label']}: {result.q.shape[0]} seeds, "
-                      + ("stopped when its verdict passed" if result.stopped_by_rule else "whole budget used"))
+                      + (f"verdict converged at {x[-1]:.2g} updates" if result.stopped_by_rule and x.size
+                         else "not converged, whole budget used"))
     ax.set_xscale("log")
     ax.set_yscale("log")
     from matplotlib.ticker import FuncFormatter
 
     from planner.notation import percent
 
-    # probabilities in the one notation on both major and minor ticks
+    # probabilities in the one notation; minor ticks labelled only when no decade is in view
     ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _: percent(v)))
-    ax.yaxis.set_minor_formatter(FuncFormatter(lambda v, _: percent(v)))
+    shown = [p for r in swept.values() for p in np.asarray(r.check_p_incident, dtype=float) if np.isfinite(p)]
+    if shown and max(shown) < 10 * max(min(shown), 1e-12):
+        ax.yaxis.set_minor_formatter(FuncFormatter(lambda v, _: percent(v)))
+    _plain_log_ticks(ax.xaxis)
     ax.set_xlabel("updates (one sampled transition each, all seeds)")
     ax.set_ylabel("P(incident) of the\ngreedy policy (exact)")
     ax.grid(alpha=0.3)

@@ -403,13 +403,13 @@ def test_sweep_step_with_a_horizon_is_rescaled_linear():
 
 
 def slippery_cliff():
-    """The cliff of Example 6.6 (Sutton & Barto 2nd ed., 2018), 6 rows high, with slip."""
+    """The cliff of Example 6.6 (Sutton & Barto 2nd ed., 2018), 6 rows high, with slip 0.1."""
     label = np.full((6, 12), FREE)
     label[0, 1:11] = 0
     goal = np.zeros((6, 12), dtype=bool)
     goal[0, 11] = True
     grid = grid_from_arrays(label, goal=goal, start=(0, 0), hazards=(HazardInfo("cliff"),))
-    return build_model(grid, Dynamics(n_actions=8, slip=0.1, edge="wall", step_cost="move", hazard_penalty_m=100.0))
+    return build_model(grid, Dynamics(n_actions=4, slip=0.1, edge="wall", step_cost="move", hazard_penalty_m=100.0))
 
 
 def test_sweeps_sarsa_with_a_horizon_meets_the_risk_verdict_on_a_slippery_cliff():
