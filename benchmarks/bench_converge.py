@@ -78,8 +78,10 @@ def ground_1m():
 
 def run_case(name: str, max_sweeps: int) -> dict:
     """One case in this process; returns its figures."""
-    from planner.exact import equally_good, on_policy_q, optimal_q, risk_verdict, safest_among
+    from planner.exact import on_policy_q, optimal_q
     from planner.learn import SARSA_SWEEP_HORIZON, LearnSettings, learned_ties, model_cost_to_go, train
+    from planner.ties import equally_good, safest_among
+    from planner.verdict import risk_verdict
 
     out = {"case": name}
     began = t = time.perf_counter()

@@ -416,8 +416,9 @@ def test_sweeps_sarsa_with_a_horizon_meets_the_risk_verdict_on_a_slippery_cliff(
     # The exact on-policy fixed point (value iteration, planner.exact) is the reference;
     # SARSA in sweeps, the next action drawn from its epsilon-greedy policy, must end with
     # a policy whose exact P(incident) and expected length agree with it (the plan's rule).
-    from planner.exact import equally_good, risk_verdict, safest_among
     from planner.learn import SARSA_SWEEP_HORIZON
+    from planner.ties import equally_good, safest_among
+    from planner.verdict import risk_verdict
 
     model = slippery_cliff()
     eps = 0.1
