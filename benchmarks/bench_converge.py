@@ -76,6 +76,12 @@ def ground_1m():
     return build_model(rasterise(site, spec), dynamics)
 
 
+def _stage(case: str, text: str) -> None:
+    """A stage finished: said at once on stderr (a case stopped by a time bound shows how far it got)."""
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(f"  [{case}] {text}; peak so far {peak:,.0f} MiB", file=sys.stderr, flush=True)
+
+
 def run_case(name: str, max_sweeps: int) -> dict:
     """One case in this process; returns its figures."""
     from planner.exact import on_policy_q, optimal_q
@@ -88,11 +94,13 @@ def run_case(name: str, max_sweeps: int) -> dict:
     model = {"ground-1m": ground_1m, "synthetic-500": synthetic_500}[name]()
     out["model_s"] = time.perf_counter() - t
     out["states"], out["outcomes"] = int(model.n_states), int(model.n_outcomes)
+    _stage(name, f"model {out['model_s']:.1f} s, {model.n_outcomes:,} outcomes")
     eps, tie_m = 0.1, 0.01
     t = time.perf_counter()
     exact = {"cautious": on_policy_q(model, eps), "shortest": optimal_q(model)}
     references = {k: safest_among(model, equally_good(v.q, tie_m), eps, value=v.q) for k, v in exact.items()}
     out["exact_s"] = time.perf_counter() - t
+    _stage(name, f"exact references and ties {out['exact_s']:.1f} s")
     cheapest = float(-model.reward[model.event == 0].max())
     slack = tie_m + 0.05 * cheapest
     to_go = model_cost_to_go(model)
@@ -118,6 +126,7 @@ def run_case(name: str, max_sweeps: int) -> dict:
                        "updates": int(learned.steps_total), "converged": bool(learned.stopped_by_rule),
                        "p_incident": float(learned.check_p_incident[-1]),
                        "reference": [references[policy].p_incident, references[policy].p_incident_max]}
+        _stage(name, f"{method}: {learned.n_sweeps:,} sweeps in {out[policy]['learn_s']:.1f} s")
     out["total_s"] = time.perf_counter() - began
     out["peak_bytes"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     return out
@@ -137,9 +146,9 @@ def main() -> None:
     for case in args.cases:
         env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
         done = subprocess.run([sys.executable, __file__, "--child", case, "--max-sweeps", str(args.max_sweeps)],
-                              capture_output=True, text=True, env=env)
+                              stdout=subprocess.PIPE, text=True, env=env)
         if done.returncode != 0:
-            print(f"{case}: failed\n{done.stderr[-2000:]}")
+            print(f"{case}: failed (exit {done.returncode}; its stderr is above)")
             missed = True
             continue
         r = json.loads(done.stdout.strip().splitlines()[-1])
