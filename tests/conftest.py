@@ -139,3 +139,20 @@ def hazard_free_route():
     grid = rasterise(site, GridSpec(5.0))
     model = build_model(grid, Dynamics(drift_scale=0.0))
     return site, grid, model, build_route("shortest", nominal_path(model, descend(grid)), grid, site, model)
+
+
+def to_projected(data, crs):
+    """A site dict with every position projected into ``crs`` and a legacy ``crs`` member naming it."""
+    from pyproj import Transformer
+
+    t = Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+
+    def walk(node):
+        if node and isinstance(node[0], (int, float)):
+            return list(t.transform(node[0], node[1]))
+        return [walk(n) for n in node]
+
+    for f in data["features"]:
+        f["geometry"]["coordinates"] = walk(f["geometry"]["coordinates"])
+    data["crs"] = {"type": "name", "properties": {"name": f"urn:ogc:def:crs:{crs.replace(':', '::')}"}}
+    return data

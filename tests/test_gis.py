@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from conftest import small_site_dict
+from conftest import small_site_dict, to_projected
 
 from planner.cli import cli
 from planner.errors import SiteError
@@ -596,19 +596,7 @@ def test_z_coordinates_and_multipolygons_give_the_same_grid(demo_grids, tmp_path
 
 
 def test_check_says_in_one_line_that_a_projected_file_was_reprojected(tmp_path):
-    from pyproj import Transformer
-
-    data = small_site_dict()
-    t = Transformer.from_crs("EPSG:4326", "EPSG:32632", always_xy=True)
-
-    def walk(node):
-        if node and isinstance(node[0], (int, float)):
-            return list(t.transform(node[0], node[1]))
-        return [walk(n) for n in node]
-
-    for f in data["features"]:
-        f["geometry"]["coordinates"] = walk(f["geometry"]["coordinates"])
-    data["crs"] = {"type": "name", "properties": {"name": "urn:ogc:def:crs:EPSG::32632"}}
+    data = to_projected(small_site_dict(), "EPSG:32632")
     path = tmp_path / "utm.geojson"
     path.write_text(json.dumps(data))
     result = run("check", path, "--cell", "2")

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import feature, point, rect, to_lonlat
+from conftest import feature, point, rect, to_lonlat, to_projected
 from geographiclib.geodesic import Geodesic
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -746,23 +746,9 @@ def test_a_crs_member_naming_wgs84_lonlat_is_accepted_with_a_note(site_dict, nam
     assert not site.warnings
 
 
-def _to_projected(data, crs):
-    t = Transformer.from_crs("EPSG:4326", crs, always_xy=True)
-
-    def walk(node):
-        if node and isinstance(node[0], (int, float)):
-            return list(t.transform(node[0], node[1]))
-        return [walk(n) for n in node]
-
-    for f in data["features"]:
-        f["geometry"]["coordinates"] = walk(f["geometry"]["coordinates"])
-    data["crs"] = {"type": "name", "properties": {"name": f"urn:ogc:def:crs:{crs.replace(':', '::')}"}}
-    return data
-
-
 def test_a_crs_member_naming_a_projected_crs_is_reprojected_and_said(site_dict):
     plain = site_from_geojson(copy.deepcopy(site_dict))
-    site = site_from_geojson(_to_projected(site_dict, "EPSG:32632"))
+    site = site_from_geojson(to_projected(site_dict, "EPSG:32632"))
     (note,) = site.notes
     assert "WGS 84 / UTM zone 32N (EPSG:32632)" in note and "reprojected to WGS 84 lon/lat with pyproj" in note
     # the same site to well under a millimetre: UTM there and back is exact to round-off
@@ -772,7 +758,7 @@ def test_a_crs_member_naming_a_projected_crs_is_reprojected_and_said(site_dict):
 
 
 def test_a_malformed_position_in_a_projected_file_names_the_feature(site_dict):
-    data = _to_projected(site_dict, "EPSG:32632")
+    data = to_projected(site_dict, "EPSG:32632")
     data["features"][3]["geometry"]["coordinates"][0][1] = [500000.0, "north"]
     with pytest.raises(SiteError, match=r"feature 3 \('Pond'\): a coordinate is not a number"):
         site_from_geojson(data)

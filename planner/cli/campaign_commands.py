@@ -62,7 +62,7 @@ def scenario_settings(campaign, plan_values: dict, scenario, site_of, grid_of):
     ``plan``'s parser fills the defaults.
     """
     from planner.cli.plan_commands import default_episodes, plan
-    from planner.cli.settings_file import _as_option_value, _option_names
+    from planner.cli.settings_file import _option_names, option_value
 
     known = _option_names(plan)
     values = dict(plan_values)
@@ -72,18 +72,10 @@ def scenario_settings(campaign, plan_values: dict, scenario, site_of, grid_of):
     ctx = plan.make_context("plan", ["SITE", "RUN"], resilient_parsing=True)
     default_map = {}
     for name, (value, where) in values.items():
-        param = known[name]
         try:
-            if param.is_flag and not isinstance(value, bool):
-                raise ValueError(f"{value!r} is not true or false")
-            if not param.is_flag and isinstance(value, bool):
-                raise ValueError(f"{value!r} is not a value of --{name}")
-            value = _as_option_value(name, param, value)
-            param.type_cast_value(ctx, value)
-        except (click.BadParameter, ValueError) as err:
-            message = err.message if isinstance(err, click.BadParameter) else str(err)
-            raise _refuse(campaign.path, where, f"{name} = {value!r}: {message}") from err
-        default_map[param.name] = value
+            default_map[known[name].name] = option_value(ctx, name, known[name], value)
+        except ValueError as err:
+            raise _refuse(campaign.path, where, f"{name} = {value!r}: {err}") from err
     try:
         p = plan.make_context("plan", ["SITE", "RUN"], default_map=default_map).params
         return _settings_from_params(p, site_of, grid_of, default_episodes)

@@ -185,19 +185,28 @@ def _check(ctx: click.Context, path: Path, values: dict[str, object], command: c
     known = _option_names(command)
     default_map = {}
     for name, value in values.items():
-        param = known[name]
         try:
-            if param.is_flag and not isinstance(value, bool):
-                raise ValueError(f"{value!r} is not true or false")
-            if not param.is_flag and isinstance(value, bool):
-                raise ValueError(f"{value!r} is not a value of --{name}")
-            value = _as_option_value(name, param, value)
-            param.type_cast_value(ctx, value)
-        except (click.BadParameter, ValueError) as err:
-            message = err.message if isinstance(err, click.BadParameter) else str(err)
-            raise _refuse(path, f"{name} = {value!r}: {message}") from err
-        default_map[param.name] = value
+            default_map[known[name].name] = option_value(ctx, name, known[name], value)
+        except ValueError as err:
+            raise _refuse(path, f"{name} = {value!r}: {err}") from err
     return default_map
+
+
+def option_value(ctx: click.Context, name: str, param: click.Option, value):
+    """A value from a file, as the option takes it from the command line, checked by the option's own type.
+
+    Raises ``ValueError`` with the option type's message when the value does not fit.
+    """
+    if param.is_flag and not isinstance(value, bool):
+        raise ValueError(f"{value!r} is not true or false")
+    if not param.is_flag and isinstance(value, bool):
+        raise ValueError(f"{value!r} is not a value of --{name}")
+    value = _as_option_value(name, param, value)
+    try:
+        param.type_cast_value(ctx, value)
+    except click.BadParameter as err:
+        raise ValueError(err.message) from err
+    return value
 
 
 def load_settings(ctx: click.Context, param, value):
