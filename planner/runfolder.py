@@ -25,6 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from planner import __version__
+from planner.budget_plan import ROUTE_NAME
 from planner.errors import RunFolderError, SettingsError
 from planner.export import RUN_FORMAT
 from planner.transactions import (  # the storage transactions, used here and by the commands
@@ -44,8 +45,10 @@ POLICY_ARRAYS = {
     "q_exact_on_policy": "float64", "q_exact_optimal": "float64",
 }
 POLICIES = ("cautious", "shortest")
-#: The third route, delivered with ``--risk-budget`` (``planner.budget_plan``).
-ROUTE_BUDGET = "budget"
+#: The third route, delivered with ``--risk-budget``.
+ROUTE_BUDGET = ROUTE_NAME
+#: Arrays ``policies.npz`` holds only for some runs (checked like the others when present).
+OPTIONAL_POLICY_ARRAYS = {f"greedy_{ROUTE_BUDGET}": "int64"}
 #: Largest root seed: the 128 bits of entropy ``SeedSequence`` draws when no seed is given,
 #: so every run's recorded entropy can be given back to ``--seed``.
 MAX_SEED = 2**128 - 1
@@ -1194,8 +1197,10 @@ def _load_policies(path: Path, data: bytes) -> dict:
             arrays = {k: npz[k] for k in npz.files}
     except (ValueError, OSError, zipfile.BadZipFile, EOFError) as err:
         raise RunFolderError(f"{path}: cannot read policies ({err})") from err
-    for key, dtype in POLICY_ARRAYS.items():
+    for key, dtype in {**POLICY_ARRAYS, **OPTIONAL_POLICY_ARRAYS}.items():
         if key not in arrays:
+            if key in OPTIONAL_POLICY_ARRAYS:
+                continue
             raise RunFolderError(f"{path}: missing array {key!r}")
         if arrays[key].dtype != np.dtype(dtype):
             raise RunFolderError(f"{path}: array {key!r} has dtype {arrays[key].dtype}, expected {dtype}")
@@ -1221,19 +1226,13 @@ def rebuild_grid(run: Run):
         raise RunFolderError(f"{run.folder}: its recorded settings do not rebuild the run ({err}); the manifest "
                              "was changed") from err
     n_states, n_actions = grid.n_cells, s.dynamics.n_actions
-    for key in POLICY_ARRAYS:
+    present = [*POLICY_ARRAYS, *(k for k in OPTIONAL_POLICY_ARRAYS if k in run.arrays)]
+    for key in present:
         arr = run.arrays[key]
         expected = (n_states,) if key.startswith("greedy") else (n_states, n_actions)
         if arr.shape != expected:
             raise RunFolderError(f"{run.folder}: policy array {key!r} has shape {arr.shape}, expected {expected}")
-    budget_key = f"greedy_{ROUTE_BUDGET}"
-    if budget_key in run.arrays:
-        arr = run.arrays[budget_key]
-        if arr.dtype != np.int64 or arr.shape != (n_states,):
-            raise RunFolderError(f"{run.folder}: policy array {budget_key!r} has shape {arr.shape} and dtype "
-                                 f"{arr.dtype}, expected {(n_states,)} int64")
-    for key in [k for k in POLICY_ARRAYS if k.startswith("greedy")] + ([budget_key] if budget_key in run.arrays
-                                                                      else []):
+    for key in (k for k in present if k.startswith("greedy")):
         arr = run.arrays[key]
         if arr.size and (arr.min() < 0 or arr.max() >= n_actions):
             raise RunFolderError(f"{run.folder}: policy array {key!r} holds actions outside 0..{n_actions - 1}")
