@@ -61,7 +61,7 @@ def scenario_settings(campaign, plan_values: dict, scenario, site_of, grid_of):
     Each value goes through ``plan``'s own option type (one rule, one message), then
     ``plan``'s parser fills the defaults.
     """
-    from planner.cli.plan_commands import default_episodes, plan
+    from planner.cli.plan_commands import plan
     from planner.cli.settings_file import _option_names, option_value
 
     known = _option_names(plan)
@@ -78,44 +78,28 @@ def scenario_settings(campaign, plan_values: dict, scenario, site_of, grid_of):
             raise _refuse(campaign.path, where, f"{name} = {value!r}: {err}") from err
     try:
         p = plan.make_context("plan", ["SITE", "RUN"], default_map=default_map).params
-        return _settings_from_params(p, site_of, grid_of, default_episodes)
+        return _settings_from_params(p, site_of, grid_of)
     except click.ClickException as err:
         raise _refuse(campaign.path, f"scenario {scenario.name!r}: ", err.format_message()) from err
 
 
-def _settings_from_params(p: dict, site_of, grid_of, default_episodes):
-    """PlanSettings from ``plan``'s parsed parameters, as ``plan`` builds them."""
+def _settings_from_params(p: dict, site_of, grid_of):
+    """PlanSettings from ``plan``'s parsed parameters, as ``plan`` builds them (:func:`plan_settings`)."""
     from planner.cli.options import float_list
-    from planner.cli.site_commands import make_dynamics
+    from planner.cli.plan_commands import plan_settings
     from planner.grid import GridSpec, default_cell_m, grid_shape
-    from planner.learn import LearnSettings
-    from planner.motion import travel_budget_m
-    from planner.runfolder import PlanSettings
 
     spec_site = site_of(p["crs"], p["fix"])
     cell_m = default_cell_m(spec_site) if p["cell_m"] is None else p["cell_m"]
     spec = GridSpec(cell_m=cell_m, hazard_overlap=p["hazard_overlap"], boundary_cover=p["boundary_cover"],
                     max_cells=p["max_cells"])
     grid_shape(spec_site, spec.cell_m)
-    dynamics = make_dynamics(p["n_actions"], p["slip"], p["stall"], p["drift_scale"], p["edge"], p["penalty_m"],
-                             p["move_m"], spec_site, spec)
     labelled = grid_of(spec, p["crs"], p["fix"])
-    episodes = p["episodes"]
-    if episodes is None:
-        episodes = default_episodes(int((labelled.passable() & ~labelled.goal).sum()))
-    learn = LearnSettings(epsilon=p["epsilon"], step_size=p["step_size"], step_decay=p["step_decay"],
-                          gamma=p["gamma"], episodes=episodes, max_steps=p["max_steps"], n_seeds=p["n_seeds"],
-                          start_mode=p["start_mode"], q_init=p["q_init"], max_sweeps=p["max_sweeps"])
     # The headline figures are the table's row at the run's noise and planning drift, so
     # each scenario's table holds its own (added at the end when the list lacks it).
     noises = _with(float_list(p["noises"], "--table-noises", high=1.0), p["epsilon"])
     drift_scales = _with(float_list(p["drift_scales"], "--table-drifts"), p["drift_scale"])
-    return PlanSettings(grid=spec, dynamics=dynamics, learn=learn, noises=noises, drift_scales=drift_scales,
-                        budget_m=travel_budget_m(p["budget_m"], p["budget_min"], p["speed_mps"]),
-                        budget_min=p["budget_min"], speed_mps=p["speed_mps"], rollouts=p["rollouts"], seed=None,
-                        crs=p["crs"], fix=p["fix"], max_bytes=p["max_bytes"], alt_m=p["alt_m"], tie_m=p["tie_m"],
-                        shortest_schedule=p["shortest_schedule"], grid_check=p["grid_check"],
-                        grid_levels=p["grid_levels"])
+    return plan_settings(p, spec_site, spec, labelled, noises=noises, drift_scales=drift_scales, seed=None)
 
 
 def _with(values, value) -> tuple[float, ...]:

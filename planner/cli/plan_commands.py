@@ -54,6 +54,36 @@ def default_episodes(n_active: int) -> int:
 #: verdict after 2,048 to 4,096 sweeps (Q-learning after 64 or fewer).
 DEFAULT_MAX_SWEEPS = 8192
 
+def plan_settings(p: dict, loaded, spec, labelled, **given):
+    """The :class:`PlanSettings` of ``plan``'s parsed parameters ``p`` (by name).
+
+    For the loaded site, its grid settings and its grid; ``given`` sets fields directly
+    (``seed=None``). ``plan`` and ``campaign`` both build their settings here.
+    """
+    from planner.learn import LearnSettings
+    from planner.motion import travel_budget_m
+    from planner.runfolder import PlanSettings
+
+    dynamics = make_dynamics(p["n_actions"], p["slip"], p["stall"], p["drift_scale"], p["edge"], p["penalty_m"],
+                             p["move_m"], loaded, spec)
+    episodes = p["episodes"]
+    if episodes is None:
+        episodes = default_episodes(int((labelled.passable() & ~labelled.goal).sum()))
+    learn = LearnSettings(epsilon=p["epsilon"], step_size=p["step_size"], step_decay=p["step_decay"],
+                          gamma=p["gamma"], episodes=episodes, max_steps=p["max_steps"], n_seeds=p["n_seeds"],
+                          start_mode=p["start_mode"], q_init=p["q_init"], max_sweeps=p["max_sweeps"])
+    fields = dict(
+        grid=spec, dynamics=dynamics, learn=learn, noises=float_list(p["noises"], "--table-noises", high=1.0),
+        drift_scales=float_list(p["drift_scales"], "--table-drifts"),
+        budget_m=travel_budget_m(p["budget_m"], p["budget_min"], p["speed_mps"]), budget_min=p["budget_min"],
+        speed_mps=p["speed_mps"], rollouts=p["rollouts"], seed=p["seed"], crs=p["crs"], fix=p["fix"],
+        max_bytes=p["max_bytes"], alt_m=p["alt_m"], tie_m=p["tie_m"], cautious_schedule=p["cautious_schedule"],
+        shortest_schedule=p["shortest_schedule"], grid_check=p["grid_check"], grid_levels=p["grid_levels"],
+        risk_budget=p["risk_budget"], budget_set_by=p["budget_set_by"],
+    )
+    return PlanSettings(**{**fields, **given})
+
+
 #: Exit code of ``plan --strict`` when the run was written but is not ready to sign.
 EXIT_NOT_READY = 3
 
@@ -128,9 +158,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
       veerwise plan maps/drone-range.geojson run-budget --risk-budget 1e-3 --budget-set-by "A. Reviewer, range safety"
     """
     from planner.grid import rasterise
-    from planner.learn import LearnSettings
-    from planner.motion import travel_budget_m
-    from planner.runfolder import PlanSettings, Progress, compute_plan, write_run
+    from planner.runfolder import Progress, compute_plan, write_run
     from planner.transactions import check_out, run_lock, stop_on_sigterm
 
     started = time.perf_counter()
@@ -149,23 +177,9 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     if made_from is not None and made_from != loaded.sha256:
         click.echo(f"veerwise: note: {' + '.join(site)} is not the site file the run in {settings_file} was made from "
                    "(its hash differs); the settings are taken all the same", err=True)
-    dynamics = make_dynamics(n_actions, slip, stall, drift_scale, edge, penalty_m, move_m, loaded, spec)
     labelled = rasterise(loaded, spec)
-    if episodes is None:
-        episodes = default_episodes(int((labelled.passable() & ~labelled.goal).sum()))
-    learn = LearnSettings(epsilon=epsilon, step_size=step_size, step_decay=step_decay, gamma=gamma,
-                          episodes=episodes, max_steps=max_steps, n_seeds=n_seeds, start_mode=start_mode,
-                          q_init=q_init, max_sweeps=max_sweeps)
-    settings = PlanSettings(grid=spec, dynamics=dynamics, learn=learn,
-                            noises=float_list(noises, "--table-noises", high=1.0),
-                            drift_scales=float_list(drift_scales, "--table-drifts"),
-                            budget_m=travel_budget_m(budget_m, budget_min, speed_mps), budget_min=budget_min,
-                            speed_mps=speed_mps,
-                            rollouts=rollouts, seed=seed, crs=crs, fix=fix, max_bytes=max_bytes, alt_m=alt_m,
-                            tie_m=tie_m, cautious_schedule=cautious_schedule, shortest_schedule=shortest_schedule,
-                            grid_check=grid_check,
-                            settings_file=settings_file, settings_sha256=settings_sha256,
-                            grid_levels=grid_levels, risk_budget=risk_budget, budget_set_by=budget_set_by)
+    settings = plan_settings(click.get_current_context().params, loaded, spec, labelled,
+                             settings_file=settings_file, settings_sha256=settings_sha256)
     with stop_on_sigterm(), Progress(progress_console(quiet)) as progress:
         try:
             result = compute_plan(site, settings, progress, site=loaded, grid=labelled)
