@@ -28,6 +28,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from planner import notation, style
+from planner.budget_plan import ROUTE_NAME as BUDGET_ROUTE
 from planner.errors import RunFolderError
 from planner.risk import find_row, format_prob
 from planner.risk_table import three_level_words
@@ -237,13 +238,14 @@ def brief_content(inputs: BriefInputs) -> dict:
         "notice": NOTICE,
     }
     content["banners"] = _banners(policies)
-    budget = inputs.budget if inputs.budget is not None and "budget" in inputs.routes else None
+    budget = inputs.budget if inputs.budget is not None and BUDGET_ROUTE in inputs.routes else None
     content["budget"] = budget
     if budget is not None:
         from planner.brief_budget import budget_policy
         from planner.budget_plan import budget_text
 
-        content["budget_route"] = budget_policy(budget, inputs.routes["budget"], find_row(rows, "budget", eps, base))
+        content["budget_route"] = budget_policy(budget, inputs.routes[BUDGET_ROUTE],
+                                                find_row(rows, BUDGET_ROUTE, eps, base))
         if not budget["met"]:
             content["banners"].append("RISK BUDGET NOT MET: no route meets P(incident) at most "
                                       f"{budget_text(budget['budget'], format_prob)}; §budget says how close the least risky "
@@ -824,7 +826,7 @@ def _section_waypoints(inputs: BriefInputs) -> list:
     blocks = [_para("Waypoints as written to routes-*.geojson and waypoints-*.csv (simulation only). Clearance: "
                     "distance from the waypoint to the nearest hazard as drawn, buffers not included. Latitude and "
                     "longitude in degrees (WGS 84).", small=True)]
-    for name in (*POLICIES, *(["budget"] if "budget" in inputs.routes and inputs.budget is not None else [])):
+    for name in (*POLICIES, *([BUDGET_ROUTE] if BUDGET_ROUTE in inputs.routes and inputs.budget is not None else [])):
         route = inputs.routes[name]
         wrows = [[w.seq, f"{w.east_m:.1f}", f"{w.north_m:.1f}", f"{w.lat:.7f}", f"{w.lon:.7f}", f"{w.leg_m:.1f}",
                   f"{w.cumulative_m:.1f}", _metres(w.clearance_m), w.nearest_hazard or "-"] for w in route.waypoints]

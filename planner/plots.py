@@ -693,15 +693,16 @@ def figure_sensitivity(rows, *, title: str = "Sensitivity of the incident probab
     Values below the notation's floor (1 in 10^12) are drawn on a floor line of their
     own with open markers, never as if they were the floor value.
     """
+    from planner.budget_plan import ROUTE_LABEL, ROUTE_NAME
     from planner.notation import FLOOR, FLOOR_TEXT, one_in
 
     panels = [("learned policies", ("cautious", "shortest")), ("exact references", ("exact on-policy",
-                                                                                    "exact optimal", "budget"))]
+                                                                                    "exact optimal", ROUTE_NAME))]
     looks = {"cautious": style.POLICY["cautious"], "shortest": style.POLICY["shortest"],
              "exact on-policy": style.REFERENCE["cautious"], "exact optimal": style.REFERENCE["shortest"],
-             "budget": style.BUDGET}
+             ROUTE_NAME: style.BUDGET}
     panels = [(t, [n for n in names if any(r.policy == n for r in rows)]) for t, names in panels]
-    panels = [(f"{t} and the within-budget route" if "budget" in names else t, names) for t, names in panels]
+    panels = [(f"{t} and the {ROUTE_LABEL} route" if ROUTE_NAME in names else t, names) for t, names in panels]
     panels = [(t, names) for t, names in panels if names]
     scales = sorted({r.drift_scale for r in rows})
     # fewer series: the planning scale and the strongest tabulated one
@@ -730,7 +731,7 @@ def figure_sensitivity(rows, *, title: str = "Sensitivity of the incident probab
                         lw=widths[m], zorder=3)
                 ax.plot(x[~under], y[~under], "o", color=look["color"], ms=3.5, zorder=4)
                 ax.plot(x[under], y[under], "o", mfc="white", mec=look["color"], ms=4.5, zorder=4)
-                shown = "within-budget" if name == "budget" else name
+                shown = ROUTE_LABEL if name == ROUTE_NAME else name
                 labels.append((y[-1], f"{shown}, drift x{m:g}", look["color"], x[-1]))
         pending.append((ax, labels))
         ax.set_yscale("log")

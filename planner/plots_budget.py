@@ -20,12 +20,13 @@ import numpy as np  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 
 from planner import plots, style  # noqa: E402
+from planner.budget_plan import ROUTE_NAME  # noqa: E402
 from planner.notation import FLOOR, one_in  # noqa: E402
 
 #: Order in which routes are drawn and listed.
-ROUTE_ORDER = ("cautious", "shortest", "budget")
+ROUTE_ORDER = ("cautious", "shortest", ROUTE_NAME)
 #: Marker of each delivered route on the trade-off curve.
-ROUTE_MARKER = {"cautious": "o", "shortest": "s", "budget": "D"}
+ROUTE_MARKER = {"cautious": "o", "shortest": "s", ROUTE_NAME: "D"}
 
 
 def _label(name: str) -> str:
