@@ -808,35 +808,6 @@ def _uniform(state):
 
 
 @numba.njit(cache=True, inline="always")
-def _greedy(q, base, n_actions, state):
-    """Best value of the Q row at ``base`` and a greedy action, exact ties at random.
-
-    Returns (generator state, action, best value). The common case (one best action)
-    is found without data-dependent branches; only a tie costs a draw, which picks
-    uniformly among the tied actions.
-    """
-    best = q[base]
-    a = 0
-    for b in range(1, n_actions):
-        v = q[base + b]
-        a = b if v > best else a
-        best = max(best, v)
-    ties = 0
-    for b in range(n_actions):
-        ties += q[base + b] == best
-    if ties > 1:
-        state, u = _uniform(state)
-        pick = min(int(u * ties), ties - 1)
-        for b in range(n_actions):
-            if q[base + b] == best:
-                if pick == 0:
-                    a = b
-                    break
-                pick -= 1
-    return state, a, best
-
-
-@numba.njit(cache=True, inline="always")
 def _sample(table, first, last, draw):
     """Index of the outcome a 32-bit ``draw`` selects in the block ``first..last``.
 
@@ -880,7 +851,7 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
                 state, u = _uniform(state)
                 s = corridor[min(int(u * n_corridor), n_corridor - 1)]
         base = s * n_actions
-        state, g, best = _greedy(q, base, n_actions, state)
+        state, g, best = _greedy(q, np.uint64(base), n_actions, state)
         state, a = _explore(g, n_actions, epsilon, state)
         ret = 0.0
         disc = 1.0
@@ -915,7 +886,7 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
             first = rec.first
             for i in range(_AHEAD):
                 _prefetch(table, min(first + 3 * i, n_records - 1))
-            state, g2, best2 = _greedy(q, base2, n_actions, state)
+            state, g2, best2 = _greedy(q, np.uint64(base2), n_actions, state)
             if method == 0:
                 state, a2 = _explore(g2, n_actions, epsilon, state)
                 q[k] += alpha * (r + gamma * q[base2 + a2] - q[k])
@@ -923,7 +894,7 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
                 q[k] += alpha * (r + gamma * best2 - q[k])
                 if base2 == base:
                     # The update touched the row the next action is chosen from.
-                    state, g2, best2 = _greedy(q, base2, n_actions, state)
+                    state, g2, best2 = _greedy(q, np.uint64(base2), n_actions, state)
                 state, a2 = _explore(g2, n_actions, epsilon, state)
             if t >= max_steps:
                 break
@@ -937,11 +908,13 @@ def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, 
 
 
 @numba.njit(cache=True, inline="always")
-def _greedy_at(q, base, n_actions, state):
-    """:func:`_greedy` with an unsigned row offset ``base`` (``np.uint64``).
+def _greedy(q, base, n_actions, state):
+    """Best value of the Q row at ``base`` (``np.uint64``) and a greedy action, exact ties at random.
 
-    Unsigned indices need no negative-index wraparound check, which on the sweeps'
-    scattered reads costs about a tenth of the loop; the result is the same.
+    Returns (generator state, action, best value). The common case (one best action)
+    is found without data-dependent branches; only a tie costs a draw, which picks
+    uniformly among the tied actions. Indices are unsigned: they need no negative-index
+    wraparound check, which on the sweeps' scattered reads costs about a tenth of the loop.
     """
     best = q[base]
     a = 0
@@ -977,7 +950,7 @@ def _sweep_seed(offsets, table, n_actions, q, method, epsilon, gamma, decay, hor
     updated once per sweep, so the ``n``-th update of every block falls in sweep ``n``
     and its step size is one number per sweep: ``n ** -decay`` (a polynomial schedule,
     ``decay`` in (0.5, 1]) when ``horizon`` is 0, else ``horizon / (horizon + n - 1)``.
-    Indices are unsigned (see :func:`_greedy_at`). Returns the generator state to
+    Indices are unsigned (see :func:`_greedy`). Returns the generator state to
     continue from.
     """
     state = rng_state
@@ -1001,7 +974,7 @@ def _sweep_seed(offsets, table, n_actions, q, method, epsilon, gamma, decay, hor
                 q[k] += alpha * (r - q[k])
                 continue
             base2 = np.uint64(code) * n_a
-            state, g2, best2 = _greedy_at(q, base2, n_actions, state)
+            state, g2, best2 = _greedy(q, base2, n_actions, state)
             if method == 0:
                 state, a2 = _explore(g2, n_actions, epsilon, state)
                 q[k] += alpha * (r + gamma * q[base2 + np.uint64(a2)] - q[k])
