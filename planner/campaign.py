@@ -463,6 +463,8 @@ class Job:
     site_key: str
     site_bytes: bytes = field(repr=False)
     folder: str
+    #: SHA-256 of ``site_bytes`` (what the run's manifest must name to count as finished)
+    site_sha256: str
 
 
 @dataclass(frozen=True)
@@ -534,6 +536,7 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
     by_place: dict = {}
     sites: dict = {}
     loaded: dict = {}
+    digests: dict = {}
     grids: dict = {}
     prepared: dict = {}
     jobs = []
@@ -545,6 +548,7 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
             slug = re.sub(r"[^a-z0-9]+", "-", scenario.pair.name.casefold()).strip("-")[:40] or "pair"
             by_place[where] = f"{slug}-{digest[:10]}"
             sites[by_place[where]] = (f"{by_place[where]}.geojson", data)
+            digests[by_place[where]] = digest
         site_key = by_place[where]
         data = sites[site_key][1]
         try:
@@ -572,12 +576,13 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
             check_plan_size(grid, settings)
         except PlannerError as err:
             raise _scenario_error(campaign, scenario, err) from err
-        identity = scenario_identity(hashlib.sha256(data).hexdigest(), settings_record(settings))
+        identity = scenario_identity(digests[site_key], settings_record(settings))
         seed = scenario_seed(campaign.seed, identity)
         settings = dataclasses.replace(settings, seed=seed, settings_file=str(campaign.path),
                                        settings_sha256=campaign.sha256)
         jobs.append(Job(index=index, scenario=scenario, settings=settings, identity=identity, seed=seed,
-                        site_key=site_key, site_bytes=data, folder=folder_name(scenario, identity)))
+                        site_key=site_key, site_bytes=data, folder=folder_name(scenario, identity),
+                        site_sha256=digests[site_key]))
     return Plan(campaign=campaign, jobs=jobs, sites=sites, prepared=prepared)
 
 
@@ -614,7 +619,7 @@ def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = 
     started = time.perf_counter()
     outcome = {"index": job.index, "folder": str(Path(RUNS_DIR) / job.folder), "status": "failed", "error": None,
                "elapsed_s": 0.0, "worker_pid": os.getpid()}
-    site_sha256 = hashlib.sha256(job.site_bytes).hexdigest()
+    site_sha256 = job.site_sha256
     try:
         with run_lock(folder):
             if finished(folder, job, site_sha256):
