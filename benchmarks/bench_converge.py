@@ -85,7 +85,8 @@ def _stage(case: str, text: str) -> None:
 def run_case(name: str, max_sweeps: int) -> dict:
     """One case in this process; returns its figures."""
     from planner.exact import on_policy_q, optimal_q
-    from planner.learn import SARSA_SWEEP_HORIZON, LearnSettings, learned_ties, model_cost_to_go, train
+    from planner.learn import SARSA_SWEEP_HORIZON, LearnSettings, learned_ties, train
+    from planner.learn_paths import model_cost_to_go
     from planner.ties import equally_good, safest_among
     from planner.verdict import risk_verdict
 

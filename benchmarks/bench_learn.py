@@ -1,6 +1,6 @@
 """Learning throughput: environment steps per second on one core.
 
-Runs the numba learning kernels of ``planner.learn`` and, side by side in the same
+Runs the numba learning kernels (``planner.learn_kernels``, through ``planner.learn.train``) and, side by side in the same
 run, a plain-Python loop of the same update (epsilon-greedy with random tie-breaking,
 the same cumulative walk over the same packed outcome table, the same Q table) on a
 synthetic 200 x 200 grid with 8 moves, actuation slip, a drift band and a hazard band.
@@ -23,7 +23,9 @@ import time
 import numpy as np
 
 from planner.grid import FREE, DriftInfo, HazardInfo, grid_from_arrays
-from planner.learn import LearnSettings, heuristic_q, model_cost_to_go, sampling_table, train
+from planner.learn import LearnSettings, train
+from planner.learn_kernels import sampling_table
+from planner.learn_paths import heuristic_q, model_cost_to_go
 from planner.model import Dynamics, build_model
 
 

@@ -2,7 +2,7 @@
 
 Builds a synthetic 200 x 200 yard of 1 m cells (8 headings, slip 0.1, a hazard band
 with a gate), packs its outcome table for the learners, and runs
-``planner.learn._sweep_seed`` (numba) and ``benchmarks/sweep_reference.c`` (compiled
+``planner.learn_kernels.run_sweeps`` (numba) and ``benchmarks/sweep_reference.c`` (compiled
 here with the machine's C compiler at -O2) on the same table, the same sweep order, the
 same initial Q and the same splitmix64 seed, alternately, several times each. Both must
 give the same Q table bit for bit (same arithmetic in the same order); the figure quoted
@@ -28,16 +28,9 @@ from pathlib import Path
 import numpy as np
 
 from planner.grid import FREE, HazardInfo, grid_from_arrays
-from planner.learn import (
-    METHODS,
-    SARSA_SWEEP_HORIZON,
-    SWEEP_DECAY,
-    _sweep_seed,
-    heuristic_q,
-    model_cost_to_go,
-    sampling_table,
-    sweep_order,
-)
+from planner.learn import METHODS, SARSA_SWEEP_HORIZON, SWEEP_DECAY
+from planner.learn_kernels import rates, run_sweeps, sampling_inputs
+from planner.learn_paths import heuristic_q, model_cost_to_go, sweep_order
 from planner.model import Dynamics, build_model
 
 HERE = Path(__file__).resolve().parent
@@ -66,7 +59,8 @@ def main() -> None:
     model = synthetic_model()
     to_go = model_cost_to_go(model)
     order = sweep_order(model, to_go)
-    table = sampling_table(model)
+    sampling = sampling_inputs(model)
+    table = sampling.records
     q0 = heuristic_q(model, to_go).reshape(-1)
     method, eps, seed = METHODS[args.method], 0.1, 20261203
     horizon = args.horizon if args.horizon is not None else (SARSA_SWEEP_HORIZON if args.method == "sarsa" else 0.0)
@@ -76,8 +70,8 @@ def main() -> None:
     def numba_run():
         q = q0.copy()
         began = time.perf_counter()
-        _sweep_seed(model.offsets, table, model.n_actions, q, method, eps, 1.0, SWEEP_DECAY, horizon, order, 0,
-                    args.sweeps, np.uint64(seed))
+        run_sweeps(sampling, rates(method, eps, 1.0, decay=SWEEP_DECAY, horizon=horizon), order, q,
+                   np.array([seed], np.uint64), 0, args.sweeps)
         return time.perf_counter() - began, q
 
     numba_run()  # compile (or load the cache) outside the timing

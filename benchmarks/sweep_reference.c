@@ -1,4 +1,4 @@
-/* The sweeps-schedule TD update of planner.learn._sweep_seed, written in C as a speed
+/* The sweeps-schedule TD update of planner.learn_kernels.run_sweeps, written in C as a speed
  * reference: the same packed outcome table (20-byte records), the same splitmix64
  * stream, the same epsilon-greedy choice with random tie-breaking and the same
  * polynomial step size (one per sweep), so that both produce the same Q table bit for bit.

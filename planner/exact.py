@@ -133,7 +133,7 @@ def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int
         raise SettingsError(f"tol must be a positive number, got {tol!r}")
     if not (isinstance(max_iter, (int, np.integer)) and not isinstance(max_iter, bool) and max_iter >= 1):
         raise SettingsError(f"max_iter must be a whole number >= 1, got {max_iter!r}")
-    from planner.learn import model_cost_to_go
+    from planner.learn_paths import model_cost_to_go
 
     n_s, n_a = model.n_states, model.n_actions
     escapes = _can_end(model)

@@ -1,22 +1,19 @@
 """Learners: SARSA gives the cautious Q, Q-learning the shortest Q.
 
 This stage owns tabular temporal-difference learning over the outcome table of a
-:class:`~planner.model.Model`: the settings (:class:`LearnSettings`), the Q
-initialisation (:func:`heuristic_q`, from a cheapest-path cost-to-go), the numba
-kernels that run whole training runs per seed, and the tie sets of a learned Q
-(:func:`learned_ties`, from the seeds' spread) from which the delivered policy is
-picked by safety (:func:`planner.exact.safest_among`).
+:class:`~planner.model.Model`: the settings (:class:`LearnSettings`), the two training
+schedules with their stopping rule (:func:`train`, :func:`check_marks`), the learned
+arrays (:class:`Learned`), and the tie sets of a learned Q (:func:`learned_ties`, from
+the seeds' spread) from which the delivered policy is picked by safety
+(:func:`planner.ties.safest_among`).
 
-The kernels sample outcomes straight from the model's flat CSR arrays (a cumulative
-walk inside each (state, action) block that cannot fall off the end), so learning and
-the exact methods of :mod:`planner.exact` see one and the same model. Each seed owns a
-small in-kernel generator (splitmix64) whose 64-bit state comes from a child of one
-recorded :class:`numpy.random.SeedSequence`; seeds are independent, so the results do
-not depend on how many threads run them.
-
-The module is longer than most on purpose: the kernels of both schedules sit beside the
-generator, sampler and greedy helpers they share, so one file shows every number a seed
-draws and in which order, which is what reproducibility rests on.
+Two modules beside it hold the parts: :mod:`planner.learn_paths` the cheapest paths
+on the model that training starts from (the heuristic initial Q, the step cap, the
+sweep order), :mod:`planner.learn_kernels` the numba kernels, which sample outcomes
+straight from the model's flat CSR arrays (a cumulative walk inside each (state,
+action) block that cannot fall off the end), so learning and the exact methods of
+:mod:`planner.exact` see one and the same model. Each seed owns its generator state,
+so the results do not depend on how many threads run the seeds.
 """
 
 from __future__ import annotations
@@ -28,19 +25,34 @@ import time
 from concurrent.futures import ThreadPoolExecutor, wait
 from dataclasses import dataclass, field
 
-import numba
 import numpy as np
-from llvmlite import ir
-from numba.core import cgutils, types
-from numba.extending import intrinsic
 
 from planner.errors import SettingsError, SiteError
-from planner.model import EVENT_GOAL, EVENT_NONE, Model
+from planner.learn_kernels import (
+    END_STEP_CAP,
+    QLEARNING,
+    SARSA,
+    Episodes,
+    Starts,
+    rates,
+    run_episodes,
+    run_sweeps,
+    sampling_inputs,
+    seed_states,
+)
+from planner.learn_paths import (
+    checked_cost_to_go,
+    cost_from_start,
+    fewest_moves,
+    heuristic_q,
+    model_cost_to_go,
+    sweep_order,
+)
+from planner.model import Model
+from planner.outcomes import EVENT_BOUNDARY, EVENT_GOAL
 
-#: ``ends`` code of an episode stopped by the step cap (other codes are model events).
-END_STEP_CAP = -1
 #: Method names accepted by :func:`train`, and their kernel codes.
-METHODS = {"sarsa": 0, "qlearning": 1}
+METHODS = {"sarsa": SARSA, "qlearning": QLEARNING}
 #: Without ``max_steps``, an episode may last this many times the fewest moves from
 #: the start to the goal ...
 STEP_CAP_FACTOR = 10
@@ -231,87 +243,6 @@ class Learned:
         """Training moves per second of wall-clock time, all seeds together."""
         return self.steps_total / self.seconds if self.seconds > 0 else float("inf")
 
-
-# ----------------------------------------------------------------------------- cheapest paths on the model
-
-
-def _outcome_graph(model: Model):
-    """Directed graph of the model: an edge per possible continuing or goal outcome.
-
-    Node ``n_states`` stands for "goal reached". Edge weights are the outcome's cost
-    (minus its reward); parallel edges keep their cheapest weight.
-    """
-    from scipy.sparse import csr_matrix
-
-    n_s, n_a = model.n_states, model.n_actions
-    counts = np.diff(model.offsets)
-    src = np.repeat(np.arange(n_s * n_a, dtype=np.int64), counts) // n_a
-    going = model.event == EVENT_NONE
-    reached = model.event == EVENT_GOAL
-    keep = (going | reached) & (model.next_state != src)
-    dst = np.where(reached, n_s, model.next_state.astype(np.int64))[keep]
-    src = src[keep]
-    cost = np.maximum(-model.reward[keep], 1e-12)
-    order = np.lexsort((cost, dst, src))
-    src, dst, cost = src[order], dst[order], cost[order]
-    first = np.ones(src.size, dtype=bool)
-    first[1:] = (src[1:] != src[:-1]) | (dst[1:] != dst[:-1])
-    return csr_matrix((cost[first], (src[first], dst[first])), shape=(n_s + 1, n_s + 1))
-
-
-def model_cost_to_go(model: Model) -> np.ndarray:
-    """Cheapest cost to the goal from each state if every move had its best outcome.
-
-    Dijkstra on the model's outcome graph (every outcome with positive probability is
-    an edge, weighted by its cost). This is the deterministic shortest-path cost of the
-    model's own rewards: no run that reaches the goal costs less.
-
-    Parameters
-    ----------
-    model : the model.
-
-    Returns
-    -------
-    float64 ``(n_states,)``: 0 on goal cells, ``inf`` where the goal is unreachable and
-    on the other inactive cells (hazards that end the run, outside the boundary).
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> from planner.grid import grid_from_arrays
-    >>> from planner.model import Dynamics, build_model
-    >>> goal = np.zeros((1, 4), bool); goal[0, 3] = True
-    >>> m = build_model(grid_from_arrays(np.full((1, 4), -1), goal=goal, start=(0, 0)),
-    ...                 Dynamics(n_actions=4, slip=0.0, edge="wall", step_cost="move"))
-    >>> model_cost_to_go(m)[:3].tolist()
-    [3.0, 2.0, 1.0]
-    """
-    from scipy.sparse.csgraph import dijkstra
-
-    graph = _outcome_graph(model)
-    cost = dijkstra(graph.T.tocsr(), directed=True, indices=model.n_states)[: model.n_states]
-    cost[~model.active] = np.inf
-    cost[model.goal] = 0.0
-    return cost
-
-
-def fewest_moves(model: Model) -> float:
-    """Fewest moves from the start to the goal if every move had its best outcome.
-
-    Parameters
-    ----------
-    model : the model.
-
-    Returns
-    -------
-    float, ``inf`` when no sequence of outcomes reaches the goal.
-    """
-    from scipy.sparse.csgraph import dijkstra
-
-    graph = _outcome_graph(model)
-    return float(dijkstra(graph, directed=True, indices=model.start, unweighted=True)[model.n_states])
-
-
 def corridor_states(model: Model, cost_to_go: np.ndarray | None = None, margin: float = CORRIDOR_MARGIN) -> np.ndarray:
     """States near the start-goal corridor, the pool of exploring starts.
 
@@ -331,56 +262,15 @@ def corridor_states(model: Model, cost_to_go: np.ndarray | None = None, margin: 
     -------
     int64 array of sorted state indices; the start is always among them.
     """
-    from scipy.sparse.csgraph import dijkstra
-
     if not (_is_real(margin) and margin >= 0):
         raise SettingsError(f"corridor margin must be a number >= 0, got {margin!r}")
-    to_go = model_cost_to_go(model) if cost_to_go is None else _checked_cost_to_go(model, cost_to_go)
-    from_start = dijkstra(_outcome_graph(model), directed=True, indices=model.start)[: model.n_states]
+    to_go = model_cost_to_go(model) if cost_to_go is None else checked_cost_to_go(model, cost_to_go)
+    from_start = cost_from_start(model)
     budget = (1.0 + margin) * to_go[model.start]
     ok = model.active & np.isfinite(to_go) & np.isfinite(from_start) & (from_start + to_go <= budget * (1 + 1e-12))
     ok[model.start] = True
     return np.flatnonzero(ok).astype(np.int64)
 
-
-def _checked_cost_to_go(model: Model, cost_to_go) -> np.ndarray:
-    cost = np.asarray(cost_to_go, dtype=np.float64).ravel()
-    if cost.size != model.n_states:
-        raise SettingsError(f"cost_to_go has {cost.size} entries, the model has {model.n_states} states")
-    if np.any(np.isnan(cost)) or np.any(cost < 0):
-        raise SettingsError("cost_to_go must be >= 0 (inf where the goal is unreachable), with no NaN")
-    return cost
-
-
-def heuristic_q(model: Model, cost_to_go) -> np.ndarray:
-    """Initial Q from a deterministic cost-to-go: one exact step, then the heuristic.
-
-    ``Q(s, a) = sum_o p_o (r_o + [o continues] * (-cost_to_go[next_o]))``: an outcome
-    that ends the run contributes only its reward; a continuing outcome into a cell
-    whose cost to go is ``inf`` (the goal is unreachable from there) is valued at minus
-    the model's boundary penalty, the cost the model puts on giving up a run. The
-    heuristic is undiscounted whatever ``gamma`` the learner uses.
-
-    Parameters
-    ----------
-    model : the model.
-    cost_to_go : float ``(n_states,)`` or grid-shaped, in the model's reward units
-        (metres-equivalent), e.g. ``planner.grid.cost_to_goal(grid, n_actions)`` or
-        :func:`model_cost_to_go`.
-
-    Returns
-    -------
-    float64 ``(n_states, n_actions)``; rows of inactive states are 0.
-    """
-    cost = _checked_cost_to_go(model, cost_to_go)
-    n_s, n_a = model.n_states, model.n_actions
-    counts = np.diff(model.offsets)
-    pair = np.repeat(np.arange(n_s * n_a, dtype=np.int64), counts)
-    going = model.event == EVENT_NONE
-    after = cost[np.where(going, model.next_state, 0)]
-    after = np.where(np.isfinite(after), -after, -model.boundary_penalty_m)
-    value = model.prob * (model.reward + np.where(going, after, 0.0))
-    return np.bincount(pair, weights=value, minlength=n_s * n_a).reshape(n_s, n_a)
 
 
 # ----------------------------------------------------------------------------- consensus policy
@@ -448,95 +338,6 @@ def learned_ties(learned, tie_m: float = 0.0, *, z: float = 2.0, max_slack_m: fl
     return (mean >= best - slack) | (mean == best)
 
 
-# ----------------------------------------------------------------------------- training
-
-
-#: One outcome in sampling form: the cumulative probability up to and including it in
-#: units of 2**-32 (``threshold``), the next state or minus the event that ends the run
-#: (``code``), the first record of the next state (``first``, for fetching ahead), reward.
-TABLE_DTYPE = np.dtype([("threshold", np.uint32), ("code", np.int32), ("first", np.int32), ("reward", np.float64)])
-
-
-def sampling_table(model: Model) -> np.ndarray:
-    """The outcome table packed for the learning kernels, ``TABLE_DTYPE`` ``(n_outcomes,)``.
-
-    One record per outcome, in the model's order, so the kernel touches one small
-    record instead of four arrays. Sampling draws a 32-bit integer ``d`` and walks the
-    (state, action) block to the first record with ``d < threshold``, stopping at the
-    block's last record whatever its threshold: the walk cannot leave the block. Each
-    outcome is then drawn with its model probability to within 2**-32.
-
-    Parameters
-    ----------
-    model : the model.
-
-    Returns
-    -------
-    numpy structured array of ``TABLE_DTYPE``, ``(n_outcomes,)``.
-
-    Raises
-    ------
-    BudgetError
-        When the table has 2**31 or more outcomes (the records index it with int32).
-    """
-    from planner.errors import BudgetError
-
-    if model.n_outcomes >= 2**31 - 1:
-        raise BudgetError(f"the model has {model.n_outcomes:,} outcomes; the learners handle fewer than 2**31")
-    cum = _block_cumsum(model.offsets, model.prob)
-    going = model.event == EVENT_NONE
-    nxt = np.where(going, model.next_state, 0).astype(np.int64)
-    table = np.empty(model.n_outcomes, TABLE_DTYPE)
-    table["threshold"] = np.minimum(np.round(cum * 2.0**32), 2.0**32 - 1).astype(np.uint32)
-    table["code"] = np.where(going, nxt, -model.event.astype(np.int64))
-    table["first"] = np.where(going, model.offsets[nxt * model.n_actions], 0)
-    table["reward"] = model.reward
-    return table
-
-
-@numba.njit(cache=True)
-def _block_cumsum(offsets, prob):
-    """Cumulative probabilities within each block, the last of each set to exactly 1."""
-    cum = np.empty(prob.size, np.float64)
-    for k in range(offsets.size - 1):
-        lo = offsets[k]
-        hi = offsets[k + 1]
-        total = 0.0
-        for j in range(lo, hi):
-            total += prob[j]
-            cum[j] = total
-        if hi > lo:
-            cum[hi - 1] = 1.0
-    return cum
-
-
-def seed_states(seed, n_seeds: int) -> tuple[np.random.SeedSequence, np.ndarray]:
-    """The root ``SeedSequence`` and one 64-bit kernel generator state per seed.
-
-    ``seed`` may be a ``SeedSequence``, an int, or ``None`` (fresh entropy). Children
-    are spawned from a copy (same entropy and spawn key), so passing the same
-    sequence twice gives the same streams.
-
-    Parameters
-    ----------
-    seed : ``numpy.random.SeedSequence``, int >= 0 or ``None``.
-    n_seeds : children to spawn.
-
-    Returns
-    -------
-    (root SeedSequence, uint64 ``(n_seeds,)`` generator states)
-    """
-    if isinstance(seed, np.random.SeedSequence):
-        root = seed
-    elif seed is None or (isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0):
-        root = np.random.SeedSequence(seed)
-    else:
-        raise SettingsError(f"--root-seed must be a whole number >= 0, got {seed!r}")
-    fresh = np.random.SeedSequence(root.entropy, spawn_key=root.spawn_key, pool_size=root.pool_size)
-    states = np.array([child.generate_state(1, np.uint64)[0] for child in fresh.spawn(n_seeds)], dtype=np.uint64)
-    return root, states
-
-
 def _entropy(root: np.random.SeedSequence):
     entropy = root.entropy
     return int(entropy) if isinstance(entropy, (int, np.integer)) else tuple(int(e) for e in entropy)
@@ -591,7 +392,7 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
     if not model.active[model.start]:
         raise SiteError("the start cell is not an active state of the model")
 
-    to_go = model_cost_to_go(model) if cost_to_go is None else _checked_cost_to_go(model, cost_to_go)
+    to_go = model_cost_to_go(model) if cost_to_go is None else checked_cost_to_go(model, cost_to_go)
     max_steps = settings.max_steps
     if max_steps is None:
         fewest = fewest_moves(model)
@@ -610,8 +411,10 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
     returns = np.zeros((n_seeds, n_ep), np.float64)
     moves = np.zeros((n_seeds, n_ep), np.int32)
     ends = np.zeros((n_seeds, n_ep), np.int16)
-    table = sampling_table(model)
+    sampling = sampling_inputs(model)
     decay = 0.0 if settings.step_decay is None else float(settings.step_decay)
+    learning = rates(METHODS[method], settings.epsilon, settings.gamma, step_size=settings.step_size, decay=decay)
+    starts = Starts(int(model.start), corridor, START_SHARE, int(max_steps))
     chunk = -(-n_ep // PROGRESS_CHUNKS)
     lock, stop, done = threading.Lock(), threading.Event(), [0]
 
@@ -619,17 +422,13 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
         # Chunks only pause the kernel between episodes; the generator state and the
         # tables carry over, so the arrays are the same as from one call.
         visits = np.zeros(n_s * n_a if decay > 0 else 0, np.int64)
-        flat_q, rng_state, steps = q[i].reshape(-1), np.uint64(states[i]), 0
+        flat_q, rng, steps = q[i].reshape(-1), states[i:i + 1], 0
         for lo in range(0, n_ep, chunk):
             if stop.is_set():
                 break
             hi = min(n_ep, lo + chunk)
-            taken, rng_state = _run_seed(
-                model.offsets, table, n_a, flat_q, visits, METHODS[method], float(settings.epsilon),
-                float(settings.step_size), decay, float(settings.gamma), hi - lo, int(max_steps), int(model.start),
-                corridor, START_SHARE, np.uint64(rng_state), returns[i, lo:hi], moves[i, lo:hi], ends[i, lo:hi],
-            )
-            steps += taken
+            out = Episodes(returns[i, lo:hi], moves[i, lo:hi], ends[i, lo:hi])
+            steps += run_episodes(sampling, learning, starts, flat_q, visits, rng, out)
             with lock:
                 done[0] += hi - lo
         return steps
@@ -663,24 +462,6 @@ def _wait_all(futures, stop, progress, done, total) -> list:
     return [f.result() for f in futures]
 
 
-def sweep_order(model: Model, cost_to_go: np.ndarray) -> np.ndarray:
-    """The (state, action) blocks a sweep updates, in the order it updates them.
-
-    Every action of every active state from which the goal can be reached, states in
-    increasing cost to go (nearest the goal first, so that one sweep carries values
-    along a whole route), actions in index order within a state.
-
-    Returns
-    -------
-    int64 ``(n_pairs,)`` flat block indices ``s * n_actions + a``.
-    """
-    cost = _checked_cost_to_go(model, cost_to_go)
-    ok = model.active & np.isfinite(cost) & ~model.goal
-    states = np.flatnonzero(ok)
-    states = states[np.argsort(cost[states], kind="stable")]
-    return (states[:, None] * model.n_actions + np.arange(model.n_actions)[None, :]).ravel().astype(np.int64)
-
-
 def check_marks(budget: int) -> list[int]:
     """Sweep counts at which the stopping rule is checked, ending with the budget.
 
@@ -704,12 +485,12 @@ def check_marks(budget: int) -> list[int]:
 
 def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_jobs, progress, stop_rule):
     """The sweeps schedule of :func:`train` (see :class:`LearnSettings`)."""
-    n_a, n_seeds = model.n_actions, settings.n_seeds
+    n_seeds = settings.n_seeds
     order = sweep_order(model, to_go)
-    table = sampling_table(model)
+    sampling = sampling_inputs(model)
     decay = SWEEP_DECAY if settings.step_decay is None else float(settings.step_decay)
     horizon = 0.0 if settings.sweep_horizon is None else float(settings.sweep_horizon)
-    rng_states = [np.uint64(x) for x in states]
+    learning = rates(METHODS[method], settings.epsilon, settings.gamma, decay=decay, horizon=horizon)
     checks, p_checks, values = [], [], []
     lock, stop, done = threading.Lock(), threading.Event(), [0]
     budget = int(settings.max_sweeps)
@@ -721,9 +502,7 @@ def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_
         while at < last and not stop.is_set():
             # Small calls, so that progress is reported and a stop request is honoured.
             step = min(last - at, max(1, budget // PROGRESS_CHUNKS))
-            rng_states[i] = np.uint64(_sweep_seed(
-                model.offsets, table, n_a, flat_q, METHODS[method], float(settings.epsilon), float(settings.gamma),
-                decay, horizon, order, at, step, rng_states[i]))
+            run_sweeps(sampling, learning, order, flat_q, states[i:i + 1], at, step)
             at += step
             with lock:
                 done[0] += step
@@ -755,242 +534,6 @@ def _train_sweeps(model, method, settings, q, to_go, states, root, max_steps, n_
     )
 
 
-# ----------------------------------------------------------------------------- kernels
-
-_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
-_MIX1 = np.uint64(0xBF58476D1CE4E5B9)
-_MIX2 = np.uint64(0x94D049BB133111EB)
-_S30 = np.uint64(30)
-_S27 = np.uint64(27)
-_S31 = np.uint64(31)
-_S32 = np.uint64(32)
-_S11 = np.uint64(11)
-_TO_UNIT = 1.0 / 9007199254740992.0  # 2**-53
-#: Records of the state just reached that are fetched ahead, every third record.
-_AHEAD = 12
-
-
-@intrinsic
-def _prefetch(typingctx, array, index):
-    """Hint the CPU to fetch ``array[index]`` into cache (no effect on results)."""
-    sig = types.void(array, index)
-
-    def codegen(context, builder, signature, args):
-        data = context.make_array(signature.args[0])(context, builder, args[0]).data
-        byte_ptr = ir.IntType(8).as_pointer()
-        i32 = ir.IntType(32)
-        fnty = ir.FunctionType(ir.VoidType(), [byte_ptr, i32, i32, i32])
-        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
-        address = builder.bitcast(builder.gep(data, [args[1]]), byte_ptr)
-        # read, keep in all cache levels, data cache
-        builder.call(fn, [address, ir.Constant(i32, 0), ir.Constant(i32, 3), ir.Constant(i32, 1)])
-        return context.get_dummy_value()
-
-    return sig, codegen
-
-
-@numba.njit(cache=True, inline="always")
-def _next(state):
-    """splitmix64: the next generator state and its 64-bit output."""
-    # The cast keeps the arithmetic unsigned when a caller hands in a plain integer.
-    state = np.uint64(state) + _GOLDEN
-    z = state
-    z = (z ^ (z >> _S30)) * _MIX1
-    z = (z ^ (z >> _S27)) * _MIX2
-    return state, z ^ (z >> _S31)
-
-
-@numba.njit(cache=True, inline="always")
-def _uniform(state):
-    """The next state and a double uniform on [0, 1) from the output's top 53 bits."""
-    state, z = _next(state)
-    return state, float(z >> _S11) * _TO_UNIT
-
-
-@numba.njit(cache=True, inline="always")
-def _sample(table, first, last, draw):
-    """Index of the outcome a 32-bit ``draw`` selects in the block ``first..last``.
-
-    Walks to the first record whose threshold exceeds the draw, and stops at ``last``
-    whatever its threshold, so it can never leave the block.
-    """
-    j = first
-    while j < last and draw >= table[j].threshold:
-        j += 1
-    return j
-
-
-@numba.njit(cache=True, inline="always")
-def _explore(greedy, n_actions, epsilon, state):
-    """Epsilon-greedy: uniform over all actions with probability epsilon."""
-    state, u = _uniform(state)
-    if u < epsilon:
-        # u / epsilon is itself uniform on [0, 1): no second draw needed.
-        return state, min(int(u / epsilon * n_actions), n_actions - 1)
-    return state, greedy
-
-
-@numba.njit(cache=True, nogil=True)
-def _run_seed(offsets, table, n_actions, q, visits, method, epsilon, step_size, decay, gamma, n_episodes,
-              max_steps, start, corridor, start_share, rng_state, returns, moves, ends):
-    """All episodes of one seed, updating ``q`` (flat, ``s * n_actions + a``) in place.
-
-    ``table`` is the outcome table in sampling form (see :func:`sampling_table`);
-    ``method`` 0 is SARSA, 1 is Q-learning; ``decay`` 0 means a constant step size.
-    Returns the number of steps taken and the generator state to continue from.
-    """
-    state = rng_state
-    total = 0
-    n_corridor = corridor.size
-    n_records = table.size
-    for ep in range(n_episodes):
-        s = start
-        if n_corridor > 0:
-            state, u = _uniform(state)
-            if u >= start_share:
-                state, u = _uniform(state)
-                s = corridor[min(int(u * n_corridor), n_corridor - 1)]
-        base = s * n_actions
-        state, g, best = _greedy(q, np.uint64(base), n_actions, state)
-        state, a = _explore(g, n_actions, epsilon, state)
-        ret = 0.0
-        disc = 1.0
-        t = 0
-        end = -1
-        while True:
-            k = base + a
-            j = offsets[k]
-            last = offsets[k + 1] - 1
-            state, z = _next(state)
-            j = _sample(table, j, last, np.uint32(z >> _S32))
-            rec = table[j]
-            r = rec.reward
-            code = rec.code
-            ret += disc * r
-            disc *= gamma
-            t += 1
-            if decay > 0.0:
-                visits[k] += 1
-                alpha = visits[k] ** (-decay)
-            else:
-                alpha = step_size
-            if code < 0:
-                q[k] += alpha * (r - q[k])
-                end = -code
-                break
-            base2 = code * n_actions
-            # The next state's offsets and outcome records are needed one step from now:
-            # start fetching them while its Q row is read.
-            _prefetch(offsets, base2)
-            _prefetch(offsets, base2 + n_actions)
-            first = rec.first
-            for i in range(_AHEAD):
-                _prefetch(table, min(first + 3 * i, n_records - 1))
-            state, g2, best2 = _greedy(q, np.uint64(base2), n_actions, state)
-            if method == 0:
-                state, a2 = _explore(g2, n_actions, epsilon, state)
-                q[k] += alpha * (r + gamma * q[base2 + a2] - q[k])
-            else:
-                q[k] += alpha * (r + gamma * best2 - q[k])
-                if base2 == base:
-                    # The update touched the row the next action is chosen from.
-                    state, g2, best2 = _greedy(q, np.uint64(base2), n_actions, state)
-                state, a2 = _explore(g2, n_actions, epsilon, state)
-            if t >= max_steps:
-                break
-            base = base2
-            a = a2
-        returns[ep] = ret
-        moves[ep] = t
-        ends[ep] = end
-        total += t
-    return total, state
-
-
-@numba.njit(cache=True, inline="always")
-def _greedy(q, base, n_actions, state):
-    """Best value of the Q row at ``base`` (``np.uint64``) and a greedy action, exact ties at random.
-
-    Returns (generator state, action, best value). The common case (one best action)
-    is found without data-dependent branches; only a tie costs a draw, which picks
-    uniformly among the tied actions. Indices are unsigned: they need no negative-index
-    wraparound check, which on the sweeps' scattered reads costs about a tenth of the loop.
-    """
-    best = q[base]
-    a = 0
-    for b in range(1, n_actions):
-        v = q[base + np.uint64(b)]
-        a = b if v > best else a
-        best = max(best, v)
-    ties = 0
-    for b in range(n_actions):
-        ties += q[base + np.uint64(b)] == best
-    if ties > 1:
-        state, u = _uniform(state)
-        pick = min(int(u * ties), ties - 1)
-        for b in range(n_actions):
-            if q[base + np.uint64(b)] == best:
-                if pick == 0:
-                    a = b
-                    break
-                pick -= 1
-    return state, a, best
-
-
-@numba.njit(cache=True, nogil=True)
-def _sweep_seed(offsets, table, n_actions, q, method, epsilon, gamma, decay, horizon, order, done, n_sweeps,
-                rng_state):
-    """Sweeps ``done + 1`` to ``done + n_sweeps`` over the (state, action) blocks in ``order``.
-
-    One transition sampled from the model per block and sweep, one TD update of ``q``
-    (flat, in place).
-
-    Q-learning (``method`` 1) bootstraps on the best next value; SARSA (0) on the value
-    of a next action drawn from the current epsilon-greedy policy. Every block is
-    updated once per sweep, so the ``n``-th update of every block falls in sweep ``n``
-    and its step size is one number per sweep: ``n ** -decay`` (a polynomial schedule,
-    ``decay`` in (0.5, 1]) when ``horizon`` is 0, else ``horizon / (horizon + n - 1)``.
-    Indices are unsigned (see :func:`_greedy`). Returns the generator state to
-    continue from.
-    """
-    state = rng_state
-    n_a = np.uint64(n_actions)
-    one = np.uint64(1)
-    for sweep in range(done + 1, done + n_sweeps + 1):
-        alpha = horizon / (horizon + sweep - 1.0) if horizon > 0.0 else float(sweep) ** (-decay)
-        for i in range(order.size):
-            k = np.uint64(order[np.uint64(i)])
-            state, z = _next(state)
-            draw = np.uint32(z >> _S32)
-            # the cumulative walk of _sample, on unsigned indices
-            j = np.uint64(offsets[k])
-            last = np.uint64(offsets[k + one]) - one
-            while j < last and draw >= table[j].threshold:
-                j += one
-            rec = table[j]
-            r = rec.reward
-            code = rec.code
-            if code < 0:
-                q[k] += alpha * (r - q[k])
-                continue
-            base2 = np.uint64(code) * n_a
-            state, g2, best2 = _greedy(q, base2, n_actions, state)
-            if method == 0:
-                state, a2 = _explore(g2, n_actions, epsilon, state)
-                q[k] += alpha * (r + gamma * q[base2 + np.uint64(a2)] - q[k])
-            else:
-                q[k] += alpha * (r + gamma * best2 - q[k])
-    return state
-
-
-__all__ = [
-    "CORRIDOR_MARGIN", "END_STEP_CAP", "METHODS", "Learned", "LearnSettings", "corridor_states",
-    "TABLE_DTYPE", "fewest_moves", "greedy_actions", "heuristic_q", "learned_ties", "model_cost_to_go",
-    "sweep_order", "check_marks",
-    "sampling_table", "seed_states", "train",
-]
-
-
 def learning_curves(learned: Learned, n_bins: int = 1000) -> dict[str, np.ndarray]:
     """Per-seed learning curves averaged over consecutive blocks of episodes.
 
@@ -1020,5 +563,11 @@ def learning_curves(learned: Learned, n_bins: int = 1000) -> dict[str, np.ndarra
         "return_mean": block_mean(learned.returns),
         "moves_mean": block_mean(learned.moves),
         "goal_share": block_mean(learned.ends == EVENT_GOAL),
-        "incident_share": block_mean(learned.ends >= 2),
+        "incident_share": block_mean(learned.ends >= EVENT_BOUNDARY),
     }
+
+
+__all__ = [
+    "CORRIDOR_MARGIN", "END_STEP_CAP", "METHODS", "Learned", "LearnSettings", "check_marks", "corridor_states",
+    "greedy_actions", "learned_ties", "learning_curves", "train",
+]

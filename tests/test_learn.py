@@ -12,21 +12,21 @@ from numpy.testing import assert_allclose
 from planner.errors import SettingsError
 from planner.exact import on_policy_q, optimal_q
 from planner.grid import FREE, DriftInfo, HazardInfo, cost_to_goal, grid_from_arrays
-from planner.learn import (
-    END_STEP_CAP,
-    LearnSettings,
+from planner.learn import END_STEP_CAP, LearnSettings, corridor_states, greedy_actions, train
+from planner.learn_kernels import (
+    QLEARNING,
+    SARSA,
+    Episodes,
+    Starts,
     _greedy,
-    _run_seed,
     _sample,
-    corridor_states,
-    fewest_moves,
-    greedy_actions,
-    heuristic_q,
-    model_cost_to_go,
+    rates,
+    run_episodes,
+    run_sweeps,
+    sampling_inputs,
     sampling_table,
-    sweep_order,
-    train,
 )
+from planner.learn_paths import fewest_moves, heuristic_q, model_cost_to_go, sweep_order
 from planner.model import Dynamics, build_model
 from planner.route import nominal_path
 from planner.verdict import convergence_report, policy_value
@@ -188,8 +188,9 @@ def test_sampled_outcomes_follow_the_model():
     q = np.full(model.n_states * 4, -1.0)
     q[model.start * 4 + 0] = 0.0
     returns, moves, ends = np.zeros(n), np.zeros(n, np.int32), np.zeros(n, np.int16)
-    _run_seed(model.offsets, sampling_table(model), 4, q, np.zeros(0, np.int64), 1, 0.0, 0.0, 0.0, 1.0, n, 10,
-              model.start, np.zeros(0, np.int64), 0.5, np.uint64(3), returns, moves, ends)
+    run_episodes(sampling_inputs(model), rates(QLEARNING, 0.0, 1.0, step_size=0.0),
+                 Starts(int(model.start), np.zeros(0, np.int64), 0.5, 10), q, np.zeros(0, np.int64),
+                 np.array([3], np.uint64), Episodes(returns, moves, ends))
     share = np.array([(ends == code).mean() for code in (1, 3, 4)])
     # Binomial: 40,000 draws; 5 standard errors of a share of 0.1 is 0.0075.
     assert_allclose(share, [0.8, 0.1, 0.1], atol=0.0075)
@@ -388,17 +389,14 @@ def test_sweep_step_with_a_horizon_is_rescaled_linear():
     # 4 / (4 + 1) and 4 / (4 + 2), worked by hand: Q = -0.8, then -0.8 + (2/3)(-1 + 0.8).
     from test_exact import corridor_model
 
-    from planner.learn import _sweep_seed
-
     model = corridor_model(2)
     east = 1
     order = np.array([model.start * model.n_actions + east], np.int64)
     q = np.zeros(model.n_states * model.n_actions)
-    _sweep_seed(model.offsets, sampling_table(model), model.n_actions, q, 0, 0.1, 1.0, 0.7, 4.0, order, 1, 1,
-                np.uint64(1))
+    sampling, learning = sampling_inputs(model), rates(SARSA, 0.1, 1.0, decay=0.7, horizon=4.0)
+    run_sweeps(sampling, learning, order, q, np.array([1], np.uint64), 1, 1)
     assert_allclose(q[order[0]], -0.8, rtol=1e-15)
-    _sweep_seed(model.offsets, sampling_table(model), model.n_actions, q, 0, 0.1, 1.0, 0.7, 4.0, order, 2, 1,
-                np.uint64(1))
+    run_sweeps(sampling, learning, order, q, np.array([1], np.uint64), 2, 1)
     assert_allclose(q[order[0]], -0.8 - 0.2 * 2 / 3, rtol=1e-15)
 
 
