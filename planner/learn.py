@@ -281,7 +281,7 @@ def greedy_actions(q: np.ndarray, rng: np.random.Generator | None = None) -> np.
 
     Without ``rng``, exact ties go to the lowest action index; with ``rng``, uniformly
     among the tied actions. Neither is how the product delivers a policy: ties there
-    go to the safest action (:func:`planner.exact.safest_among`). This is the plain
+    go to the safest action (:func:`planner.ties.safest_among`). This is the plain
     rule, for tables known to have no ties and for showing what a tie-break by action
     order would report.
 
@@ -311,7 +311,7 @@ def learned_ties(learned, tie_m: float = 0.0, *, z: float = 2.0, max_slack_m: fl
     plus ``z`` standard errors of the difference (the seeds' spread; common practice:
     two standard errors) of the best mean; with one seed, within ``tie_m`` (and exact
     ties). The delivered policy picks among them by safety
-    (:func:`planner.exact.safest_among`), never by action order.
+    (:func:`planner.ties.safest_among`), never by action order.
 
     Parameters
     ----------
