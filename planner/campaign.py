@@ -527,7 +527,8 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
         Naming the scenario (or the site file) and what is wrong with it.
     """
     from planner.grid import rasterise
-    from planner.runfolder import budget_moves, check_drift_scales, check_plan_size, settings_record
+    from planner.runfolder import budget_moves, check_drift_scales
+    from planner.settings import check_plan_size, settings_record
     from planner.site import parse_site_bytes, read_site_bytes, site_from_bytes
 
     base_bytes = read_site_bytes(campaign.site_path)
@@ -589,7 +590,8 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
 def finished(folder: Path, job: Job, site_sha256: str) -> bool:
     """Whether ``folder`` holds this job's complete run (its site, settings and seed)."""
     from planner.errors import RunFolderError
-    from planner.runfolder import load_run, settings_record
+    from planner.runfolder import load_run
+    from planner.settings import settings_record
 
     if not (folder / "manifest.json").is_file():
         return False

@@ -28,6 +28,14 @@ from planner import __version__
 from planner.budget_plan import ROUTE_NAME
 from planner.errors import RunFolderError, SettingsError
 from planner.export import RUN_FORMAT
+from planner.settings import (
+    MAX_SEED,
+    PlanSettings,
+    check_plan_size,
+    check_seed,
+    settings_from_record,
+    settings_record,
+)
 from planner.transactions import (  # the storage transactions, used here and by the commands
     atomic_folder,
     run_lock,
@@ -49,245 +57,12 @@ POLICIES = ("cautious", "shortest")
 ROUTE_BUDGET = ROUTE_NAME
 #: Arrays ``policies.npz`` holds only for some runs (checked like the others when present).
 OPTIONAL_POLICY_ARRAYS = {f"greedy_{ROUTE_BUDGET}": "int64"}
-#: Largest root seed: the 128 bits of entropy ``SeedSequence`` draws when no seed is given,
-#: so every run's recorded entropy can be given back to ``--seed``.
-MAX_SEED = 2**128 - 1
 #: Actions within this many cells (metres-equivalent / cell size) of the exact best
 #: count as agreeing: a detour below the grid's resolution is no disagreement.
 TIE_CELLS = 0.25
 #: A learned policy within this share of the exact value at the start (or one cell)
 #: counts as converged on value.
 GAP_SHARE = 0.01
-
-
-# ----------------------------------------------------------------------------- settings
-
-
-@dataclass(frozen=True)
-class PlanSettings:
-    """Everything ``plan`` needs besides the site file (recorded in the manifest)."""
-
-    grid: object
-    dynamics: object
-    learn: object
-    episodes_shortest: int | None = None
-    noises: tuple[float, ...] = (0.0, 0.05, 0.1, 0.2)
-    drift_scales: tuple[float, ...] = (1.0, 1.5, 2.0)
-    budget_m: float | None = None
-    budget_min: float | None = None
-    speed_mps: float | None = None
-    rollouts: int = 20000
-    seed: int | None = None
-    crs: str | None = None
-    fix: bool = False
-    max_bytes: int = 50_000_000
-    alt_m: float | None = None
-    convergence_threshold: float = 0.95
-    tie_m: float = 0.01
-    cautious_schedule: str = "sweeps"
-    shortest_schedule: str = "sweeps"
-    grid_check: bool = True
-    grid_levels: int = 2
-    #: the ``--settings`` file the options were read from, and its SHA-256, or None
-    settings_file: str | None = None
-    settings_sha256: str | None = None
-    #: ``--risk-budget``: also deliver the shortest route with P(incident) at most this
-    #: (at ``learn.epsilon`` and the planning drift); who set it (``--budget-set-by``).
-    risk_budget: float | None = None
-    budget_set_by: str | None = None
-
-    def __post_init__(self):
-        if not 0.0 <= self.learn.epsilon < 1.0:
-            raise SettingsError(f"--epsilon must be in [0, 1) for plan (1 would be a random walk), "
-                                f"got {self.learn.epsilon}")
-        for n in self.noises:
-            if not (0.0 <= n < 1.0):
-                raise SettingsError(f"--table-noises values must be in [0, 1), got {n}")
-        for m in self.drift_scales:
-            if not (np.isfinite(m) and m >= 0.0):
-                raise SettingsError(f"--table-drifts values must be finite and >= 0, got {m}")
-        # The headline figures, the verdicts and the grid check are read from the row at
-        # the planning noise and drift: a table without it cannot carry them.
-        if not any(math.isclose(n, self.learn.epsilon) for n in self.noises):
-            raise SettingsError(f"--table-noises must include the planning noise --epsilon {self.learn.epsilon:g}: "
-                                "the headline figures are read from that row")
-        if not any(math.isclose(m, self.dynamics.drift_scale) for m in self.drift_scales):
-            raise SettingsError(f"--table-drifts must include the planning drift --plan-drift "
-                                f"{self.dynamics.drift_scale:g}: the headline figures are read from that row")
-        if self.budget_m is not None and not (np.isfinite(self.budget_m) and self.budget_m > 0):
-            raise SettingsError(f"--budget-m must be a positive number of metres, got {self.budget_m}")
-        if self.budget_min is not None:
-            from planner.motion import travel_budget_m
-
-            if not math.isclose(travel_budget_m(None, self.budget_min, self.speed_mps), self.budget_m or 0.0):
-                raise SettingsError(f"--budget-min {self.budget_min:g} at --speed-mps {self.speed_mps:g} is not "
-                                    f"--budget-m {self.budget_m!r}")
-        if self.rollouts < 0:
-            raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
-        if self.grid_levels not in (2, 3) or isinstance(self.grid_levels, bool):
-            raise SettingsError(f"--grid-levels must be 2 or 3, got {self.grid_levels!r}")
-        if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
-                and np.isfinite(self.tie_m) and self.tie_m >= 0):
-            raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
-        check_seed(self.seed, "--root-seed")
-        if self.risk_budget is not None or self.budget_set_by is not None:
-            from planner.budget_plan import check_budget, check_set_by
-
-            if self.risk_budget is None:
-                raise SettingsError("--budget-set-by needs --risk-budget")
-            check_budget(self.risk_budget)
-            check_set_by(self.budget_set_by)
-        check_counts(training_runs=self.learn.n_seeds,
-                     episodes=max(self.learn.episodes, self.episodes_shortest or 0),
-                     max_steps=self.learn.max_steps, rollouts=self.rollouts, budget_m=self.budget_m,
-                     table_noises=len(self.noises), table_drifts=len(self.drift_scales))
-        from planner.site import MAX_PENALTY_M
-
-        penalty = self.dynamics.hazard_penalty_m
-        if penalty is not None and penalty > MAX_PENALTY_M:
-            raise SettingsError(f"--penalty must be at most {MAX_PENALTY_M:g} m (a penalty above it swamps every "
-                                f"route and its costs lose precision), got {penalty:g}")
-
-
-#: Upper bounds on counts, checked when the settings are made (before any work): far
-#: beyond any useful plan, and low enough that no setting alone can run for days.
-COUNT_LIMITS = {
-    "--training-runs": 100, "--episodes": 100_000_000, "--max-steps": 10_000_000, "--rollouts": 10_000_000,
-    "--budget-m": 10_000_000, "--table-noises": 50, "--table-drifts": 50,
-}
-#: Share of the memory the system reports available that one plan may plan to use.
-MEMORY_SHARE = 0.8
-
-
-def check_counts(**counts) -> None:
-    """Refuse a count over its bound in :data:`COUNT_LIMITS` (keyword: the option without ``--``, ``_`` for ``-``)."""
-    for key, value in counts.items():
-        option = "--" + key.replace("_", "-")
-        limit = COUNT_LIMITS[option]
-        if value is not None and value > limit:
-            what = f"gives {value:,} values" if option in ("--table-noises", "--table-drifts") else f"{value:,} is"
-            raise SettingsError(f"{option} {what}, over the limit of {limit:,}")
-
-
-def available_memory_bytes() -> int | None:
-    """Memory the system says is available now (Linux ``MemAvailable``), or None if unknown."""
-    try:
-        with open("/proc/meminfo") as f:
-            for line in f:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except (OSError, ValueError, IndexError):
-        pass
-    try:
-        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
-    except (ValueError, OSError, AttributeError):
-        return None
-
-
-def estimate_plan_bytes(grid, settings: PlanSettings) -> dict:
-    """Upper estimates (bytes) of what ``plan`` holds at once, from the grid and settings alone.
-
-    The model's outcome table (and as much again for the chain matrices of one
-    policy), the Q tables of every seed of both learners (and the visit counts of a
-    decaying step size), the per-episode learning curves, and one risk row's rollouts.
-    """
-    from planner.model import estimate_bytes
-
-    learn = settings.learn
-    s_a = grid.n_cells * settings.dynamics.n_actions
-    episodes = max(learn.episodes, settings.episodes_shortest or 0)
-    return {
-        "model": 2 * estimate_bytes(grid, settings.dynamics),
-        "Q tables": 2 * learn.n_seeds * s_a * 8 * (2 if learn.step_decay else 1) + 4 * s_a * 8,
-        "learning curves": 2 * learn.n_seeds * episodes * (8 + 4 + 2),
-        "rollouts": settings.rollouts * (2 + 8 + 8),
-    }
-
-
-def check_plan_size(grid, settings: PlanSettings) -> None:
-    """Refuse, before allocating, a plan whose estimated memory is over what the machine has.
-
-    The message gives the estimate, its largest part and the option that shrinks it.
-    """
-    from planner.errors import BudgetError
-    from planner.grid import format_bytes
-
-    parts = estimate_plan_bytes(grid, settings)
-    total = sum(parts.values())
-    available = available_memory_bytes()
-    if available is None or total <= MEMORY_SHARE * available:
-        return
-    largest = max(parts, key=parts.get)
-    option = {"model": "a larger --cell", "Q tables": "a larger --cell or fewer --training-runs",
-              "learning curves": "fewer --episodes or --training-runs", "rollouts": "fewer --rollouts"}[largest]
-    raise BudgetError(f"plan would need about {format_bytes(total)} of memory (most for the {largest}: "
-                      f"{format_bytes(parts[largest])}), more than the {format_bytes(available)} available; "
-                      f"use {option}")
-
-
-def check_seed(seed, option: str = "--seed") -> None:
-    """Refuse a root seed outside [0, 2**128): the one rule for ``plan``, ``risk`` and manifests."""
-    if seed is None:
-        return
-    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed <= MAX_SEED:
-        shown = f"{seed}" if not isinstance(seed, int) or seed.bit_length() < 200 else "a larger number"
-        raise SettingsError(f"{option} must be a whole number in [0, 2**128), got {shown}")
-
-
-def settings_record(settings: PlanSettings) -> dict:
-    """Plain-data view of the settings for the manifest."""
-    out = {}
-    for f in dataclasses.fields(settings):
-        value = getattr(settings, f.name)
-        out[f.name] = dataclasses.asdict(value) if dataclasses.is_dataclass(value) else value
-    out["noises"] = list(settings.noises)
-    out["drift_scales"] = list(settings.drift_scales)
-    return out
-
-
-#: Types of the plain settings in a manifest (the nested ones are checked by their classes).
-SETTING_TYPES = {
-    "episodes_shortest": (int, type(None)), "budget_m": (int, float, type(None)),
-    "budget_min": (int, float, type(None)), "speed_mps": (int, float, type(None)), "rollouts": (int,),
-    "seed": (int, type(None)), "crs": (str, type(None)), "fix": (bool,), "max_bytes": (int,),
-    "alt_m": (int, float, type(None)), "convergence_threshold": (int, float), "tie_m": (int, float),
-    "cautious_schedule": (str,), "shortest_schedule": (str,),
-    "grid_check": (bool,), "grid_levels": (int,),
-    "settings_file": (str, type(None)), "settings_sha256": (str, type(None)),
-    "risk_budget": (int, float, type(None)), "budget_set_by": (str, type(None)),
-}
-
-
-def settings_from_record(record: dict) -> PlanSettings:
-    """Rebuild :class:`PlanSettings` from a manifest's ``settings``."""
-    from planner.grid import GridSpec
-    from planner.learn import LearnSettings
-    from planner.motion import Dynamics
-
-    try:
-        rec = dict(record)
-        rec["grid"] = GridSpec(**rec["grid"])
-        rec["dynamics"] = Dynamics(**rec["dynamics"])
-        rec["learn"] = LearnSettings(**rec["learn"])
-        for key in ("noises", "drift_scales"):
-            values = rec[key]
-            if not (isinstance(values, list) and all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                                                     for v in values)):
-                raise RunFolderError(f"manifest settings: {key!r} is not a list of numbers")
-            rec[key] = tuple(values)
-        for key, kinds in SETTING_TYPES.items():
-            # run folders from before the risk budget have no budget settings
-            value = rec.get(key) if key in rec or key not in ("risk_budget", "budget_set_by") else None
-            if not isinstance(value, kinds) or (isinstance(value, bool) and bool not in kinds):
-                raise RunFolderError(f"manifest settings: {key!r} is {value!r}, not of the type plan writes")
-        return PlanSettings(**rec)
-    except (KeyError, TypeError, AttributeError) as err:
-        raise RunFolderError(f"manifest settings are incomplete or unknown ({err})") from err
-    except SettingsError as err:
-        raise RunFolderError(f"manifest settings are out of range ({err}); the run folder was changed") from err
-    except (ValueError, OverflowError) as err:
-        raise RunFolderError(f"manifest settings do not make valid settings ({err}); the run folder was "
-                             "changed") from err
 
 
 def versions() -> dict:

@@ -405,7 +405,8 @@ def test_progress_shows_every_long_stage_and_how_far_it_is(planned, tmp_path, ca
 
     from rich.console import Console
 
-    from planner.runfolder import PlanSettings, Progress, compute_plan, load_run, write_run
+    from planner.runfolder import Progress, compute_plan, load_run, write_run
+    from planner.settings import PlanSettings
 
     site = planned[0]
     settings = load_run(planned[1]).settings

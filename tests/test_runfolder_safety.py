@@ -218,9 +218,9 @@ def test_memory_running_out_anywhere_is_one_line(tmp_path, site, monkeypatch):
 
 
 def test_a_plan_larger_than_the_memory_is_refused_with_its_estimate(tmp_path, site, monkeypatch, no_heavy_work):
-    import planner.runfolder
+    import planner.settings
 
-    monkeypatch.setattr(planner.runfolder, "available_memory_bytes", lambda: 2**20, raising=False)
+    monkeypatch.setattr(planner.settings, "available_memory_bytes", lambda: 2**20, raising=False)
     line = one_error_line(invoke("plan", site, tmp_path / "run", *QUICK[:2], "--episodes", "5000000",
                                  *QUICK[4:]))
     assert "would need about" in line and "learning curves" in line and "--episodes" in line, line

@@ -62,7 +62,7 @@ def plan_settings(p: dict, loaded, spec, labelled, **given):
     """
     from planner.learn import LearnSettings
     from planner.motion import travel_budget_m
-    from planner.runfolder import PlanSettings
+    from planner.settings import PlanSettings
 
     dynamics = make_dynamics(p["n_actions"], p["slip"], p["stall"], p["drift_scale"], p["edge"], p["penalty_m"],
                              p["move_m"], loaded, spec)

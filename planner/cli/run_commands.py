@@ -57,7 +57,8 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
       veerwise risk run-yard --format csv > risk-again.csv
     """
     from planner.risk_table import format_table
-    from planner.runfolder import check_counts, check_seed, load_run, rebuild_grid, run_risk
+    from planner.runfolder import load_run, rebuild_grid, run_risk
+    from planner.settings import check_counts, check_seed
 
     check_seed(rollout_seed, "--rollout-seed")
     loaded = load_run(run)
