@@ -42,7 +42,7 @@ def plan(site: Path, out: Path) -> Path:
 def inputs_of(folder: Path):
     from planner.brief import BriefInputs
     from planner.risk import RiskRow
-    from planner.runfolder import load_run, rebuild, run_routes
+    from planner.runload import load_run, rebuild, run_routes
 
     run = load_run(folder)
     site, grid, model = rebuild(run)

@@ -55,7 +55,7 @@ def delivered_policies(path, move_m):
     """Greedy policies of a default plan at cell = move (seed 1), and its grid and model."""
     from planner.cli.plan_commands import default_episodes
     from planner.learn import LearnSettings
-    from planner.runfolder import compute_plan
+    from planner.pipeline import compute_plan
     from planner.settings import PlanSettings
 
     site = load_site(path)

@@ -28,8 +28,8 @@ from planner.errors import PlannerError  # noqa: E402
 from planner.grid import GridSpec  # noqa: E402
 from planner.learn import LearnSettings  # noqa: E402
 from planner.motion import Dynamics  # noqa: E402
+from planner.pipeline import compute_plan  # noqa: E402
 from planner.risk import format_prob  # noqa: E402
-from planner.runfolder import compute_plan  # noqa: E402
 from planner.settings import PlanSettings  # noqa: E402
 
 HERE = Path(__file__).resolve().parent

@@ -527,7 +527,7 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
         Naming the scenario (or the site file) and what is wrong with it.
     """
     from planner.grid import rasterise
-    from planner.runfolder import budget_moves, check_drift_scales
+    from planner.pipeline import budget_moves, check_drift_scales
     from planner.settings import check_plan_size, settings_record
     from planner.site import parse_site_bytes, read_site_bytes, site_from_bytes
 
@@ -590,7 +590,7 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
 def finished(folder: Path, job: Job, site_sha256: str) -> bool:
     """Whether ``folder`` holds this job's complete run (its site, settings and seed)."""
     from planner.errors import RunFolderError
-    from planner.runfolder import load_run
+    from planner.runload import load_run
     from planner.settings import settings_record
 
     if not (folder / "manifest.json").is_file():
@@ -614,7 +614,9 @@ def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = 
     so the other scenarios go on; nothing is left half-written (the run folder's own
     transaction).
     """
-    from planner.runfolder import Progress, compute_plan, write_run
+    from planner.pipeline import compute_plan
+    from planner.progress import Progress
+    from planner.runfolder import write_run
     from planner.transactions import check_out, run_lock
 
     folder = Path(out_dir) / RUNS_DIR / job.folder
@@ -656,7 +658,7 @@ def _num(x):
 
 def route_rows(folder: Path) -> list[dict]:
     """Per route of a finished run folder: P(incident), length, verdicts (read back and checked by hash)."""
-    from planner.runfolder import load_run
+    from planner.runload import load_run
 
     run = load_run(folder)
     manifest = run.manifest

@@ -40,7 +40,8 @@ from planner.brief import (
 from planner.errors import RunFolderError
 from planner.notation import probability_range
 from planner.risk import RiskRow, format_prob
-from planner.runfolder import load_run, rebuild, run_identity, run_routes
+from planner.runfolder import run_identity
+from planner.runload import load_run, rebuild, run_routes
 
 #: A plan small enough for a test (a few seconds) that still exercises every section.
 PLAN_ARGS = ("--cell", "2", "--episodes", "2000", "--training-runs", "2", "--rollouts", "300", "--root-seed", "5")

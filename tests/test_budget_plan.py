@@ -139,7 +139,7 @@ def test_the_briefing_shows_the_budget_route_the_curve_and_the_causes(planned):
 def test_without_a_name_the_signoff_leaves_a_field_for_who_set_the_budget(tmp_path):
     from planner.brief import BriefInputs, brief_content
     from planner.budget_plan import extras_from_records
-    from planner.runfolder import load_run, rebuild, run_routes
+    from planner.runload import load_run, rebuild, run_routes
 
     _, out, result = plan_small_site(tmp_path, *SMALL, "--rollouts", "0", "--risk-budget", "0.2", "--no-grid-check")
     assert result.exit_code == 0, result.output

@@ -405,7 +405,10 @@ def test_progress_shows_every_long_stage_and_how_far_it_is(planned, tmp_path, ca
 
     from rich.console import Console
 
-    from planner.runfolder import Progress, compute_plan, load_run, write_run
+    from planner.pipeline import compute_plan
+    from planner.progress import Progress
+    from planner.runfolder import write_run
+    from planner.runload import load_run
     from planner.settings import PlanSettings
 
     site = planned[0]

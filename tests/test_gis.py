@@ -388,7 +388,7 @@ def test_the_geotiff_holds_the_products_own_risk_maps_in_the_manifest_frame(plan
     from planner.gridfiles import label_codes
     from planner.model import epsilon_greedy
     from planner.risk import risk_map
-    from planner.runfolder import load_run, rebuild
+    from planner.runload import load_run, rebuild
 
     manifest = json.loads((planned_run / "manifest.json").read_text())
     loaded = load_run(planned_run)
@@ -430,7 +430,7 @@ def test_a_cell_centre_in_the_geotiff_lies_at_the_products_own_lon_lat(planned_r
 def test_hazard_cells_are_geojson_polygons_gdal_reads(planned_run, tmp_path):
     import shapely
 
-    from planner.runfolder import load_run, rebuild_grid
+    from planner.runload import load_run, rebuild_grid
 
     target = tmp_path / "cells.geojson"
     _export(planned_run, target, "--contents", "hazard-cells")

@@ -162,7 +162,7 @@ def exact_route_line(folder: Path, policy: str) -> LineString:
     """The nominal route of the exact reference policy (value iteration) of a run."""
     from planner.learn import greedy_actions
     from planner.route import build_route, nominal_path
-    from planner.runfolder import load_run, rebuild
+    from planner.runload import load_run, rebuild
 
     run = load_run(folder)
     with warnings.catch_warnings():

@@ -893,7 +893,7 @@ def _paths(node, prefix=()):
 
 def _load_or_refuse(folder: Path) -> None:
     """The reader either gives a run or refuses with our error; a run it gives can be read by ``risk``."""
-    from planner.runfolder import load_run
+    from planner.runload import load_run
 
     try:
         load_run(folder)

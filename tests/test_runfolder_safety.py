@@ -230,17 +230,17 @@ def test_a_plan_larger_than_the_memory_is_refused_with_its_estimate(tmp_path, si
 
 
 def test_the_site_copy_is_the_bytes_that_were_hashed(tmp_path, site, monkeypatch):
-    import planner.runfolder
+    import planner.pipeline
 
     original = site.read_bytes()
-    compute = planner.runfolder.compute_plan
+    compute = planner.pipeline.compute_plan
 
     def edited_meanwhile(*args, **kwargs):
         result = compute(*args, **kwargs)
         site.write_text(site.read_text().replace("Gravel", "Sand  "))  # someone saves the file mid-run
         return result
 
-    monkeypatch.setattr(planner.runfolder, "compute_plan", edited_meanwhile)
+    monkeypatch.setattr(planner.pipeline, "compute_plan", edited_meanwhile)
     out = tmp_path / "run"
     result = invoke("plan", site, out, *QUICK)
     assert result.exit_code == 0, result.output

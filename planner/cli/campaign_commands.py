@@ -192,7 +192,7 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
     from planner.campaign import make_client, run_jobs
     from planner.campaign_report import outcome_line, write_report
     from planner.errors import Interrupted
-    from planner.runfolder import Progress
+    from planner.progress import Progress
     from planner.transactions import run_lock
 
     started = time.perf_counter()

@@ -158,7 +158,9 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
       veerwise plan maps/drone-range.geojson run-budget --risk-budget 1e-3 --budget-set-by "A. Reviewer, range safety"
     """
     from planner.grid import rasterise
-    from planner.runfolder import Progress, compute_plan, write_run
+    from planner.pipeline import compute_plan
+    from planner.progress import Progress
+    from planner.runfolder import write_run
     from planner.transactions import check_out, run_lock, stop_on_sigterm
 
     started = time.perf_counter()
@@ -217,8 +219,8 @@ def format_grid_check(checks, name) -> str:
 def plan_summary(result, settings, out, elapsed_s: float) -> dict:
     """What ``plan`` reports when it is done, as plain data (``--json`` prints it as is)."""
     from planner.brief import compare_routes, route_figures, seeds_banner
+    from planner.pipeline import METHOD_NAMES
     from planner.risk import find_row
-    from planner.runfolder import METHOD_NAMES
 
     eps, base = settings.learn.epsilon, settings.dynamics.drift_scale
     figures = {}

@@ -57,7 +57,7 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
       veerwise risk run-yard --format csv > risk-again.csv
     """
     from planner.risk_table import format_table
-    from planner.runfolder import load_run, rebuild_grid, run_risk
+    from planner.runload import load_run, rebuild_grid, run_risk
     from planner.settings import check_counts, check_seed
 
     check_seed(rollout_seed, "--rollout-seed")
@@ -75,7 +75,7 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid = rebuild_grid(loaded)
     from planner.cli.plan_commands import progress_console
-    from planner.runfolder import Progress
+    from planner.progress import Progress
 
     with Progress(progress_console(False)) as progress, progress.task(
             "risk table (rows)", len(names) * len(noise_levels) * len(scales)) as report:
@@ -139,7 +139,7 @@ def export(run, output, force, fmt, contents, policy, alt_m, ground_elev_m, dem,
         refuse_run_folder_target,
         sidecar_path,
     )
-    from planner.runfolder import load_run
+    from planner.runload import load_run
     from planner.transactions import read_lock
 
     out = Path(output)
@@ -210,7 +210,7 @@ def _export_files(loaded, fmt, contents, names, out, targets, alt_m, ground) -> 
         write_geojson,
         write_gpx,
     )
-    from planner.runfolder import rebuild, run_routes
+    from planner.runload import rebuild, run_routes
 
     site, grid, model = rebuild(loaded)
     if fmt == "geotiff" or contents == "hazard-cells":
@@ -267,7 +267,8 @@ def brief(run, quiet):
     """
     from planner.brief import pdf_unavailable
     from planner.cli.plan_commands import progress_console
-    from planner.runfolder import Progress, rewrite_brief
+    from planner.progress import Progress
+    from planner.runload import rewrite_brief
 
     with Progress(progress_console(quiet)) as progress, progress.task("briefing (HTML, then PDF)"):
         html_path, pdf_path = rewrite_brief(run)
