@@ -1,15 +1,16 @@
 """The briefing's account of the risk budget: the within-budget route, the trade-off, and why routes are risky.
 
-A part of the briefing stage kept apart from :mod:`planner.brief` (already long): it
-turns the records of :mod:`planner.budget_plan` (as ``risk.json`` stores them) into
-the briefing's blocks, and gives the sign-off its budget field. No computation beyond
-formatting.
+Part of the briefing stage (:mod:`planner.brief`): it turns the records of
+:mod:`planner.budget_plan` (as ``risk.json`` stores them) into the briefing's blocks
+(the kinds of :mod:`planner.brief_page`), and gives the sign-off its budget field. No
+computation beyond formatting.
 """
 
 from __future__ import annotations
 
 import math
 
+from planner.brief_page import figure, para, subhead, table
 from planner.budget_plan import ROUTE_NAME, budget_statement, budget_text, moves_text
 from planner.risk import find_row, format_prob
 
@@ -56,13 +57,8 @@ def _vertex_marks(record: dict, causes: dict) -> list[str]:
     return marks
 
 
-def section_budget(content: dict, record: dict, causes: dict, routes: dict, rows, blocks) -> list:
-    """The blocks of the briefing's section on the risk budget and the causes of risk.
-
-    ``blocks`` is :mod:`planner.brief`'s block makers (``para``, ``subhead``,
-    ``table``, ``figure``), passed in so both modules build the same kinds of block.
-    """
-    para, subhead, table, figure = blocks["para"], blocks["subhead"], blocks["table"], blocks["figure"]
+def section_budget(content: dict, record: dict, causes: dict, routes: dict, rows) -> list:
+    """The blocks of the briefing's section on the risk budget and the causes of risk."""
     eps, base = content["noise"], content["drift_scale"]
     route = routes[ROUTE_NAME]
     row = find_row(rows, ROUTE_NAME, eps, base)

@@ -26,17 +26,9 @@ from conftest import plan_small_site
 from numpy.testing import assert_allclose
 from pypdf import PdfReader
 
-from planner.brief import (
-    CAUTIONS,
-    NOTICE,
-    PRINT_PPI,
-    SIGNOFF_FIELDS,
-    BriefInputs,
-    brief_content,
-    footer_text,
-    render_html,
-    write_brief,
-)
+from planner.brief import NOTICE, BriefInputs, brief_content, write_brief
+from planner.brief_page import PRINT_PPI, footer_text, render_html
+from planner.brief_sections import CAUTIONS, SIGNOFF_FIELDS
 from planner.errors import RunFolderError
 from planner.notation import probability_range
 from planner.risk import RiskRow, format_prob
@@ -437,7 +429,7 @@ def test_weasyprint_uses_all_of_the_stylesheet(inputs, tmp_path, caplog):
     """WeasyPrint warns about CSS it ignores or resources it cannot load: there must be none."""
     import logging
 
-    from planner.brief import write_pdf
+    from planner.brief_page import write_pdf
 
     with caplog.at_level(logging.WARNING, logger="weasyprint"):
         write_pdf(tmp_path / "brief.pdf", _page_html(inputs))
@@ -460,12 +452,12 @@ def test_without_pango_the_html_is_still_written(planned, tmp_path, monkeypatch)
     """No system libraries for WeasyPrint: brief.html is written, brief.pdf is not, one line says why."""
     from click.testing import CliRunner
 
-    import planner.brief
+    import planner.brief_page
     from planner.cli import cli
 
     folder = tmp_path / "run"
     shutil.copytree(planned[0], folder)
-    monkeypatch.setattr(planner.brief, "_weasyprint", lambda: None)
+    monkeypatch.setattr(planner.brief_page, "_weasyprint", lambda: None)
     result = CliRunner().invoke(cli, ["brief", str(folder)])
     assert result.exit_code == 0, result.output
     assert (folder / "brief.html").is_file() and not (folder / "brief.pdf").exists()
@@ -494,9 +486,9 @@ def test_brief_refuses_a_manifest_changed_after_the_run(planned, tmp_path):
 
 
 def test_plan_without_pango_writes_the_html_and_says_what_to_install(tmp_path, monkeypatch):
-    import planner.brief
+    import planner.brief_page
 
-    monkeypatch.setattr(planner.brief, "_weasyprint", lambda: None)
+    monkeypatch.setattr(planner.brief_page, "_weasyprint", lambda: None)
     _, out, result = plan_small_site(tmp_path, *PLAN_ARGS)
     assert result.exit_code == 0, result.output
     assert (out / "brief.html").is_file() and not (out / "brief.pdf").exists()
@@ -745,12 +737,12 @@ def test_time_stamp_and_hashes_are_printed_verbatim(inputs):
 def test_without_the_python_package_the_note_says_pip(monkeypatch):
     import importlib.util
 
-    import planner.brief
+    import planner.brief_page
 
-    monkeypatch.setattr(planner.brief, "_weasyprint", lambda: None)
+    monkeypatch.setattr(planner.brief_page, "_weasyprint", lambda: None)
     real = importlib.util.find_spec
     monkeypatch.setattr(importlib.util, "find_spec", lambda name, *a: None if name == "weasyprint" else real(name, *a))
-    assert "pip install weasyprint" in planner.brief.pdf_unavailable()
+    assert "pip install weasyprint" in planner.brief_page.pdf_unavailable()
 
 
 @pytest.mark.parametrize("flagged", [False, True])

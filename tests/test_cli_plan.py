@@ -129,7 +129,7 @@ def test_plan_json_and_strict(tmp_path):
 
 def test_seeds_disagreement_banner_and_strict_verdict():
     """The banner and --strict follow the seeds' route agreement, not only convergence."""
-    from planner.brief import route_figures, seeds_banner
+    from planner.brief_headline import route_figures, seeds_banner
 
     class Route:
         length_m, reached_goal, end_event = 100.0, True, "goal"

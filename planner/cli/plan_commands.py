@@ -191,7 +191,7 @@ def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, 
     summary = plan_summary(result, settings, run, time.perf_counter() - started)
     click.echo(json.dumps(_plain(summary), indent=2, sort_keys=True, allow_nan=False) if as_json
                else format_plan_summary(summary))
-    from planner.brief import pdf_unavailable
+    from planner.brief_page import pdf_unavailable
 
     if pdf_unavailable() is not None:
         click.echo(f"veerwise: note: {pdf_unavailable()}", err=True)
@@ -218,7 +218,7 @@ def format_grid_check(checks, name) -> str:
 
 def plan_summary(result, settings, out, elapsed_s: float) -> dict:
     """What ``plan`` reports when it is done, as plain data (``--json`` prints it as is)."""
-    from planner.brief import compare_routes, route_figures, seeds_banner
+    from planner.brief_headline import compare_routes, route_figures, seeds_banner
     from planner.pipeline import METHOD_NAMES
     from planner.risk import find_row
 
@@ -274,7 +274,7 @@ def plan_summary(result, settings, out, elapsed_s: float) -> dict:
 
 def figures_ends(route) -> str:
     """How a nominal route ends, as the summary says it."""
-    from planner.brief import _ends
+    from planner.brief_headline import route_ends as _ends
 
     return _ends(route)
 

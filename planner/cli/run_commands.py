@@ -265,7 +265,7 @@ def brief(run, quiet):
     Example:
       veerwise brief run-yard
     """
-    from planner.brief import pdf_unavailable
+    from planner.brief_page import pdf_unavailable
     from planner.cli.plan_commands import progress_console
     from planner.progress import Progress
     from planner.runload import rewrite_brief
