@@ -1,9 +1,8 @@
 """Figures of the risk budget: the trade-off curve, and where each route's risk comes from.
 
-Apart from :mod:`planner.plots` (which draws the site, the routes and the risk maps,
-and whose helpers these reuse) so that neither module grows past a few hundred lines
-of its own. Each function takes the plain records of :mod:`planner.budget_plan`, as
-they are stored in ``risk.json``, and a path, draws one PNG and returns the path.
+Drawn over the map layers of :mod:`planner.plots`, whose helpers these reuse. Each
+function takes the plain records of :mod:`planner.budget_plan`, as they are stored in
+``risk.json``, and a path, draws one PNG and returns the path.
 """
 
 from __future__ import annotations
@@ -48,7 +47,7 @@ def _prob_axis(ax, values) -> None:
     ax.minorticks_off()
 
 
-@plots._styled
+@plots.styled
 def figure_tradeoff(record: dict, causes: dict, *, title: str = "Length against risk"):
     """P(incident) (log scale) against expected length over the trade-off curve's vertices.
 
@@ -98,10 +97,10 @@ def figure_tradeoff(record: dict, causes: dict, *, title: str = "Length against 
     return fig
 
 
-@plots._styled
+@plots.styled
 def plot_tradeoff(record: dict, causes: dict, path, *, title: str = "Length against risk") -> Path:
     """The trade-off figure (see :func:`figure_tradeoff`) saved to ``path``."""
-    return plots._save(figure_tradeoff(record, causes, title=title), path)
+    return plots.save(figure_tradeoff(record, causes, title=title), path)
 
 
 def _draw_paths(ax, record: dict) -> None:
@@ -123,7 +122,7 @@ def _draw_paths(ax, record: dict) -> None:
                     bbox={"fc": "white", "ec": "none", "alpha": 0.75, "pad": 0.5})
 
 
-@plots._styled
+@plots.styled
 def figure_causes(site, grid, routes: dict, causes: dict):
     """For each delivered route: its failure paths on the map, and its P(incident) by leg beside it.
 
@@ -191,16 +190,16 @@ def figure_causes(site, grid, routes: dict, causes: dict):
     handles = [Line2D([], [], color=style.FAILURE_PATH, lw=0.7, ls=(0, (2, 1)), label="failure path"),
                Line2D([], [], ls="none", marker="o", mfc="none", mec=style.FAILURE_PATH, ms=3,
                       label="move where noise or drift acted")]
-    handles += plots._route_handles({n: routes[n] for n in names})
+    handles += plots.route_handles({n: routes[n] for n in names})
     fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.45 / width, 0.0), ncol=3,
                fontsize=style.FONT_SIZE - 2, frameon=False)
     return fig
 
 
-@plots._styled
+@plots.styled
 def plot_causes(site, grid, routes: dict, causes: dict, path) -> Path:
     """The failure-path figure (see :func:`figure_causes`) saved to ``path``."""
-    return plots._save(figure_causes(site, grid, routes, causes), path)
+    return plots.save(figure_causes(site, grid, routes, causes), path)
 
 
 __all__ = ["figure_causes", "figure_tradeoff", "plot_causes", "plot_tradeoff"]

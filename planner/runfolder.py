@@ -77,7 +77,7 @@ def write_run(result: PlanResult, settings: PlanSettings, site_path, out, *, for
 
 def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folder: Path, progress,
                     run_name: str) -> None:
-    from planner import plots
+    from planner import plots, plots_learning, plots_risk
     from planner.brief import BriefInputs, write_brief
     from planner.export import write_csv, write_geojson
     from planner.risk import risk_map
@@ -123,8 +123,8 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
                                budget=result.budget_record, causes=result.causes)
         (folder / "risk.json").write_text(json.dumps(records, sort_keys=True, indent=2, allow_nan=False) + "\n")
     with progress.task("figures", 4 if result.budget is None else 6) as report:
-        plots.plot_learning(result.learned, folder / "learning.png",
-                            title=f"{result.site.name} - learning curves")
+        plots_learning.plot_learning(result.learned, folder / "learning.png",
+                                     title=f"{result.site.name} - learning curves")
         report(1)
         plots.plot_routes(result.site, result.grid, result.routes, folder / "routes.png")
         report(2)
@@ -134,10 +134,10 @@ def _write_contents(result: PlanResult, settings: PlanSettings, site_path, folde
         for name in result.routes:
             probs = epsilon_greedy(result.greedy[name], result.model.n_actions, noise)
             maps[name] = risk_map(result.model, probs)
-        plots.plot_risk_maps(result.site, result.grid, maps, result.routes, folder / "riskmap.png", noise=noise)
+        plots_risk.plot_risk_maps(result.site, result.grid, maps, result.routes, folder / "riskmap.png", noise=noise)
         report(3)
-        plots.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
-                               title=f"{result.site.name} - incident probability under worse execution and wind")
+        plots_risk.plot_sensitivity(result.risk_rows, folder / "sensitivity.png",
+                                    title=f"{result.site.name} - incident probability under worse execution and wind")
         if result.budget is not None:
             from planner import plots_budget
 

@@ -24,7 +24,7 @@ from matplotlib.colors import to_rgb  # noqa: E402
 from matplotlib.patches import FancyArrowPatch, PathPatch  # noqa: E402
 from numpy.testing import assert_allclose  # noqa: E402
 
-from planner import plots, style  # noqa: E402
+from planner import plots, plots_risk, style  # noqa: E402
 from planner.grid import GridSpec, descend, rasterise  # noqa: E402
 from planner.model import Dynamics, build_model  # noqa: E402
 from planner.risk import RiskRow, risk_map  # noqa: E402
@@ -233,7 +233,7 @@ def risk_figure(crowded):
     site, grid, model, routes = crowded
     probs = epsilon_greedy(descend(grid), model.n_actions, 0.1)
     maps = {name: risk_map(model, probs) for name in routes}
-    fig = plots.figure_risk_maps(site, grid, maps, routes, noise=0.1)
+    fig = plots_risk.figure_risk_maps(site, grid, maps, routes, noise=0.1)
     fig.canvas.draw()
     yield fig, maps
     plt.close(fig)
@@ -243,7 +243,7 @@ def test_risk_map_says_what_it_shows_and_keeps_hazards_off_the_scale(risk_figure
     fig, _ = risk_figure
     text = " ".join(t.get_text() for t in fig.texts)
     assert "if the vehicle were here" in text
-    norm, cmap = plots.risk_colour_scale()
+    norm, cmap = plots_risk.risk_colour_scale()
     scale = [cmap(x)[:3] for x in np.linspace(0, 1, 64)]
     for deficiency in (None, *DEFICIENCIES):
         lab = _delta_e_matrix([style.RISK_HAZARD, style.RISK_BELOW_FLOOR, *scale], deficiency)
@@ -259,7 +259,7 @@ def test_risk_map_says_what_it_shows_and_keeps_hazards_off_the_scale(risk_figure
 def test_risk_map_draws_values_below_its_floor_in_their_own_colour(risk_figure):
     fig, maps = risk_figure
     values = next(iter(maps.values()))
-    floor = plots.risk_colour_scale()[0].vmin
+    floor = plots_risk.risk_colour_scale()[0].vmin
     ax = fig.axes[0]
     shown = ax.get_images()[1].get_array()
     below = np.isfinite(values) & (values < floor)
@@ -287,7 +287,7 @@ def _rows():
 
 
 def test_sensitivity_has_few_series_direct_labels_and_its_own_panel_for_exact_references():
-    fig = plots.figure_sensitivity(_rows())
+    fig = plots_risk.figure_sensitivity(_rows())
     fig.canvas.draw()
     renderer = fig.canvas.get_renderer()
     learned, exact = fig.axes[:2]
