@@ -46,7 +46,7 @@ def load() -> str:
 
 def run_campaign(file: Path, out: Path, n_workers: int, share: bool) -> tuple[float, float]:
     """(seconds including the cluster's start, seconds of the scenarios alone)."""
-    from planner.campaign import make_client, run_jobs
+    from planner.campaign_jobs import make_client, run_jobs
     from planner.cli.campaign_commands import checked_plan
 
     started = time.perf_counter()

@@ -109,8 +109,9 @@ def _with(values, value) -> tuple[float, ...]:
 
 
 def checked_plan(campaign_file):
-    """The campaign file read, every scenario checked and its job made (:class:`planner.campaign.Plan`)."""
-    from planner.campaign import check_campaign, read_campaign
+    """The campaign file read, every scenario checked and its job made (:class:`planner.campaign_jobs.Plan`)."""
+    from planner.campaign import read_campaign
+    from planner.campaign_jobs import check_campaign
 
     spec = read_campaign(campaign_file)
     plan_values = _plan_values(spec)
@@ -189,7 +190,7 @@ def campaign(campaign_file, out_dir, scheduler, n_workers, check_only, quiet):
       veerwise campaign day.toml --out day-1 --workers 4
       veerwise campaign day.toml --out day-1 --scheduler tcp://10.0.0.5:8786
     """
-    from planner.campaign import make_client, run_jobs
+    from planner.campaign_jobs import make_client, run_jobs
     from planner.campaign_report import outcome_line, write_report
     from planner.errors import Interrupted
     from planner.progress import Progress
