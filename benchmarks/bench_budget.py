@@ -10,6 +10,8 @@ Usage::
 
     python3 benchmarks/bench_budget.py [--size N] [--budget P]
 
+``--size 200`` is a quick case for development; the figures quoted are at 500.
+
 Not a test: run by hand (``/usr/bin/time -v`` gives the peak memory), on an otherwise
 idle machine for figures worth quoting.
 """
@@ -22,6 +24,7 @@ import time
 
 import numpy as np
 
+import planner.budget as budget
 from planner.budget import risk_budget
 from planner.grid import FREE, HazardInfo, grid_from_arrays
 from planner.model import Dynamics, build_model
@@ -48,6 +51,19 @@ def main() -> None:
     began = time.perf_counter()
     model = synthetic_model(args.size)
     built = time.perf_counter() - began
+    phases = {"value iteration": [0.0, 0], "ties by safety": [0.0, 0]}
+
+    def timed(name, function):
+        def run(*a, **k):
+            t = time.perf_counter()
+            out = function(*a, **k)
+            phases[name][0] += time.perf_counter() - t
+            phases[name][1] += getattr(out, "iterations", getattr(out, "improvements", 0))
+            return out
+        return run
+
+    budget.on_policy_q = timed("value iteration", budget.on_policy_q)
+    budget.safest_among = timed("ties by safety", budget.safest_among)
     began = time.perf_counter()
     answer = risk_budget(model, 0.1, args.budget)
     searched = time.perf_counter() - began
@@ -58,6 +74,8 @@ def main() -> None:
     if answer.shorter is not None:
         print(f"  riskier neighbour: P(incident) {answer.shorter.p_incident:.3g}, length "
               f"{answer.shorter.length_m:.1f}; mixing share {answer.mix_share:.3f}")
+    print(f"  value iteration {phases['value iteration'][0]:.1f} s ({phases['value iteration'][1]} sweeps), "
+          f"ties by safety {phases['ties by safety'][0]:.1f} s ({phases['ties by safety'][1]} improvement rounds)")
     print(f"load average at the end {os.getloadavg()[0]:.1f} (1 min)")
 
 

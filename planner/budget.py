@@ -121,6 +121,9 @@ class Solver:
         # the first solve may start from values the caller already has (a plan's exact
         # on-policy reference at the model's own penalty)
         self.warm = None if warm is None else np.asarray(warm, dtype=np.float64)
+        # the previous solve's penalty and its delivered policy's P(incident) from every
+        # state: the next solve starts from that policy's exact value at the new penalty
+        self.last: tuple[float, np.ndarray] | None = None
         self.n_solves = 0
         self.cache: dict[float, TradeoffPoint] = {}
 
@@ -132,10 +135,20 @@ class Solver:
         if self.n_solves >= MAX_SOLVES:
             raise SettingsError(f"the risk-budget search needed more than {MAX_SOLVES} exact solves")
         lagrangian = dataclasses.replace(self.model, reward=self.base.reward - penalty_m * self.incident)
-        solution = on_policy_q(lagrangian, self.epsilon, warm=self.warm)
+        warm, start = self.warm, None
+        if self.last is not None and warm is not None:
+            # V = -(length + penalty * P(incident)) for a fixed policy, so shifting the
+            # penalty shifts its value by the change times its P(incident): the exact
+            # value of the previous policy here, a close start for value iteration.
+            lam, incident = self.last
+            warm = warm - (penalty_m - lam) * incident
+            start = 1.0 - incident
+        solution = on_policy_q(lagrangian, self.epsilon, warm=warm)
         self.warm = solution.v
         choice = safest_among(lagrangian, equally_good(solution.q, self.tie_m), self.epsilon, value=solution.q,
-                              riskiest=False)
+                              riskiest=False, start=start)
+        if choice.incident is not None:
+            self.last = (penalty_m, choice.incident)
         self.n_solves += 1
         # The Lagrangian return is -(length + penalty * P(incident)).
         point = TradeoffPoint(penalty_m=penalty_m, greedy=choice.greedy, p_incident=choice.p_incident,
