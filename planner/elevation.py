@@ -21,7 +21,6 @@ out and the reason is said, never filled with an uncorrected value.
 
 from __future__ import annotations
 
-import math
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -29,6 +28,7 @@ from pathlib import Path
 
 import numpy as np
 
+from planner import checks
 from planner.errors import SettingsError
 
 #: How ``--vertical-datum`` names WGS 84 ellipsoidal heights.
@@ -60,7 +60,7 @@ class Ground:
         return datum_name(self.datum)
 
 
-def parse_datum(text: str | None, option: str = "--vertical-datum"):
+def parse_datum(text: str | None, option: str = "parse_datum.text"):
     """``ellipsoid`` as None, else the vertical CRS pyproj resolves ``text`` to."""
     if text is None:
         raise SettingsError(f"{option} is needed with a ground elevation: name the vertical datum its heights are "
@@ -101,9 +101,8 @@ def _check_ground(values: np.ndarray, where: str) -> np.ndarray:
 
 def constant_ground(elevation_m: float, datum_text: str | None) -> Ground:
     """A ground elevation the same everywhere (``--ground-elev-m``)."""
-    if isinstance(elevation_m, bool) or not isinstance(elevation_m, (int, float)) or not math.isfinite(elevation_m):
-        raise SettingsError(f"--ground-elev-m must be a finite number of metres, got {elevation_m!r}")
-    _check_ground(np.array([elevation_m]), "--ground-elev-m")
+    checks.number(elevation_m, "constant_ground.elevation_m", says="a finite number of metres")
+    _check_ground(np.array([elevation_m]), "constant_ground.elevation_m")
     datum = parse_datum(datum_text)
     value = float(elevation_m)
     return Ground(elevation=lambda lon, lat: np.full(np.shape(lon), value), datum=datum,
@@ -122,7 +121,7 @@ def dem_ground(path, datum_text: str | None) -> Ground:
     try:
         import rasterio
     except ImportError as err:
-        raise SettingsError(f"--dem {path}: reading a GeoTIFF needs the optional GIS extra: "
+        raise SettingsError(f"dem_ground.path {path}: reading a GeoTIFF needs the optional GIS extra: "
                             "pip install 'veerwise[gis]'") from err
     from pyproj import CRS, Transformer
 
@@ -133,9 +132,9 @@ def dem_ground(path, datum_text: str | None) -> Ground:
             transform, crs_wkt = dem.transform, dem.crs.to_wkt() if dem.crs else None
             shape = dem.shape
     except rasterio.errors.RasterioError as err:
-        raise SettingsError(f"--dem {path}: not a raster rasterio reads ({str(err).splitlines()[0][:160]})") from err
+        raise SettingsError(f"dem_ground.path {path}: not a raster rasterio reads ({str(err).splitlines()[0][:160]})") from err
     if crs_wkt is None:
-        raise SettingsError(f"--dem {path}: the DEM has no coordinate reference system; assign one in the GIS editor")
+        raise SettingsError(f"dem_ground.path {path}: the DEM has no coordinate reference system; assign one in the GIS editor")
     to_dem = Transformer.from_crs(CRS.from_epsg(4326), CRS.from_wkt(crs_wkt), always_xy=True)
     values = np.ma.filled(band.astype(float), np.nan)
     name = Path(path).name
@@ -148,13 +147,13 @@ def dem_ground(path, datum_text: str | None) -> Ground:
         lon_a, lat_a = np.atleast_1d(lon), np.atleast_1d(lat)
         if not inside.all():
             k = int(np.flatnonzero(~inside)[0])
-            raise SettingsError(f"--dem {path}: the point at {lat_a[k]:.7f} N, {lon_a[k]:.7f} E lies outside the DEM")
+            raise SettingsError(f"dem_ground.path {path}: the point at {lat_a[k]:.7f} N, {lon_a[k]:.7f} E lies outside the DEM")
         out = values[rows, cols]
         if np.isnan(out).any():
             k = int(np.flatnonzero(np.isnan(out))[0])
-            raise SettingsError(f"--dem {path}: the point at {lat_a[k]:.7f} N, {lon_a[k]:.7f} E falls on a nodata "
+            raise SettingsError(f"dem_ground.path {path}: the point at {lat_a[k]:.7f} N, {lon_a[k]:.7f} E falls on a nodata "
                                 "pixel")
-        return _check_ground(out, f"--dem {path}")
+        return _check_ground(out, f"dem_ground.path {path}")
 
     return Ground(elevation=elevation, datum=datum, described=f"sampled from the DEM {name}, {datum_name(datum)}")
 

@@ -27,6 +27,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from xml.sax.saxutils import escape
 
+from planner import checks
 from planner.errors import RunFolderError, SettingsError
 from planner.names import csv_cell
 from planner.route import Route
@@ -57,9 +58,17 @@ GPX_EXTENSION_NAMESPACE = "urn:veerwise:gpx-extensions:1"
 def _check_alt(alt_m) -> float | None:
     if alt_m is None:
         return None
-    if isinstance(alt_m, bool) or not isinstance(alt_m, (int, float)) or not math.isfinite(alt_m) or alt_m < 0:
-        raise SettingsError(f"--alt-m must be a finite number of metres above ground >= 0, got {alt_m!r}")
-    return float(alt_m)
+    return float(check_alt(alt_m, "export.alt_m"))
+
+
+#: Highest altitude above ground the waypoint files accept (metres).
+MAX_ALT_M = 10_000.0
+
+
+def check_alt(alt_m, name: str):
+    """An altitude above ground for the waypoint files: a finite number of metres >= 0 (or unset)."""
+    return checks.number(alt_m, name, low=0.0, high=MAX_ALT_M, unset=True,
+                         says=f"a number of metres above ground in [0, {MAX_ALT_M:g}]")
 
 
 def notice(alt_m: float | None = None) -> str:
@@ -483,7 +492,7 @@ FORMAT_OF_EXTENSION = {".geojson": "geojson", ".json": "geojson", ".csv": "csv",
                        ".tif": "geotiff", ".tiff": "geotiff", ".gpkg": "geopackage"}
 
 
-def output_format(path, allowed, *, fmt: str | None = None, option: str = "-o/--output") -> str:
+def output_format(path, allowed, *, fmt: str | None = None, option: str = "export.output") -> str:
     """The format of an output file, read from its extension; a ``fmt`` given too must match it.
 
     Raises
@@ -498,13 +507,13 @@ def output_format(path, allowed, *, fmt: str | None = None, option: str = "-o/--
         raise SettingsError(f"{option} {path}: the extension {suffix or '(none)'} names no format this command "
                             f"writes; use one of {names}")
     if fmt is not None and fmt != found:
-        raise SettingsError(f"{option} {path}: --format {fmt} does not match the extension {suffix} ({found}); "
-                            "drop --format or change the file name")
+        raise SettingsError(f"{option} {path}: export.fmt {fmt} does not match the extension {suffix} ({found}); "
+                            "drop export.fmt or change the file name")
     return found
 
 
 def check_output(path, allowed, *, fmt: str | None = None, force: bool = False,
-                 option: str = "-o/--output") -> str:
+                 option: str = "export.output") -> str:
     """Refuse an output file before any work, and return its format.
 
     Refused: a wrong extension, a folder, a missing parent folder, or a file already
@@ -515,7 +524,7 @@ def check_output(path, allowed, *, fmt: str | None = None, force: bool = False,
     if target.is_dir():
         raise RunFolderError(f"{option} {target}: is a folder, not a file")
     if target.exists() and not force:
-        raise RunFolderError(f"{option} {target}: already exists; choose another name or pass --force to replace it")
+        raise RunFolderError(f"{option} {target}: already exists; choose another name or pass export.force to replace it")
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise RunFolderError(f"{option} {target}: folder {folder} does not exist")
@@ -570,7 +579,7 @@ def export_routes(routes: Iterable[Route], folder, *, site, formats=("geojson", 
     routes = _routes(list(routes))
     unknown = sorted(set(formats) - {"geojson", "csv", "gpx"})
     if unknown:
-        raise SettingsError(f"--format {unknown[0]!r} is not one of geojson, csv, gpx")
+        raise SettingsError(f"export.formats {unknown[0]!r} is not one of geojson, csv, gpx")
     folder = Path(folder)
     written = []
     for r in routes:

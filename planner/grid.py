@@ -15,7 +15,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import shapely
 
+from planner import checks
 from planner.errors import BudgetError, SettingsError, SiteError
+from planner.motion import check_headings
 
 #: Cell label: outside the boundary.
 OUTSIDE = -2
@@ -57,14 +59,10 @@ class GridSpec:
     max_cells: int = DEFAULT_MAX_CELLS
 
     def __post_init__(self):
-        if not (isinstance(self.cell_m, (int, float)) and math.isfinite(self.cell_m) and self.cell_m > 0):
-            raise SettingsError(f"--cell must be a positive number of metres, got {self.cell_m!r}")
-        if not 0.0 <= self.hazard_overlap < 1.0:
-            raise SettingsError(f"--hazard-overlap must be in [0, 1), got {self.hazard_overlap}")
-        if not 0.0 < self.boundary_cover <= 1.0:
-            raise SettingsError(f"--boundary-cover must be in (0, 1], got {self.boundary_cover}")
-        if not (isinstance(self.max_cells, int) and self.max_cells > 0):
-            raise SettingsError(f"--max-cells must be a positive whole number, got {self.max_cells!r}")
+        checks.positive_metres(self.cell_m, "GridSpec.cell_m")
+        checks.number(self.hazard_overlap, "GridSpec.hazard_overlap", low=0.0, high=1.0, high_open=True)
+        checks.number(self.boundary_cover, "GridSpec.boundary_cover", low=0.0, high=1.0, low_open=True)
+        checks.whole(self.max_cells, "GridSpec.max_cells", low=1, says="a positive whole number")
 
 
 @dataclass(frozen=True)
@@ -170,7 +168,7 @@ def grid_shape(site, cell_m: float) -> tuple[int, int]:
     width, height = site.extent_m
     if cell_m > max(width, height):
         raise SettingsError(
-            f"--cell {cell_m:g} m is larger than the site ({width:.0f} m x {height:.0f} m)"
+            f"GridSpec.cell_m {cell_m:g} m is larger than the site ({width:.0f} m x {height:.0f} m)"
         )
     # Drawing precision keeps coordinate round-off from adding a sliver column.
     slack = drawing_tolerance_m(cell_m) / cell_m
@@ -191,8 +189,8 @@ def check_budget(n_cells: int, max_cells: int, cell_m: float) -> None:
     """Refuse a grid over the cell budget, with the numbers to choose a better cell."""
     if n_cells > max_cells:
         raise BudgetError(
-            f"--cell {cell_m:g} m gives {n_cells:,} cells, over the --max-cells budget of {max_cells:,} "
-            f"(about {format_bytes(estimate_model_bytes(n_cells, 8, 9))} of model); use a larger --cell"
+            f"GridSpec.cell_m {cell_m:g} m gives {n_cells:,} cells, over the GridSpec.max_cells budget of "
+            f"{max_cells:,} (about {format_bytes(estimate_model_bytes(n_cells, 8, 9))} of model); use a larger GridSpec.cell_m"
         )
 
 
@@ -280,22 +278,24 @@ def rasterise(site, spec: GridSpec) -> Grid:
     if label[start] >= 0 and hazards[label[start]].ends_run:
         raise SiteError(
             f"{site.source}: start {site.start_name!r} falls in a cell touched by hazard "
-            f"{hazards[label[start]].label} at --cell {cell:g} m; use a smaller --cell or move the start"
+            f"{hazards[label[start]].label} at GridSpec.cell_m {cell:g} m; use a smaller GridSpec.cell_m or move "
+            "the start"
         )
     if label[start] == OUTSIDE:
         raise SiteError(
             f"{site.source}: start {site.start_name!r} falls in a cell not wholly inside the boundary "
-            f"at --cell {cell:g} m; use a smaller --cell or move the start inward"
+            f"at GridSpec.cell_m {cell:g} m; use a smaller GridSpec.cell_m or move the start inward"
         )
     goal_hazard = [int(label[g]) for g in goal_cells if label[g] >= 0 and hazards[label[g]].ends_run]
     if goal_hazard and len(goal_hazard) == len(goal_cells):
         raise SiteError(
             f"{site.source}: goal {site.goal_name!r} falls in cells touched by hazard "
-            f"{hazards[goal_hazard[0]].label} at --cell {cell:g} m; use a smaller --cell or move the goal"
+            f"{hazards[goal_hazard[0]].label} at GridSpec.cell_m {cell:g} m; use a smaller GridSpec.cell_m or move "
+            "the goal"
         )
     usable_goal = goal & ~((label >= 0) & np.isin(label, [h for h in range(len(hazards)) if hazards[h].ends_run]))
     if not usable_goal.any():
-        raise SiteError(f"{site.source}: goal {site.goal_name!r} has no usable cell at --cell {cell:g} m")
+        raise SiteError(f"{site.source}: goal {site.goal_name!r} has no usable cell at GridSpec.cell_m {cell:g} m")
     goal = usable_goal
     # A goal cell on the boundary edge still counts: the goal point itself is inside.
     label[goal & (label == OUTSIDE)] = FREE
@@ -312,7 +312,7 @@ def rasterise(site, spec: GridSpec) -> Grid:
     if not np.isfinite(cost_to_goal(grid, 8)[grid.start_index]):
         raise SiteError(
             f"{site.source}: no sequence of moves reaches goal {site.goal_name!r} from start "
-            f"{site.start_name!r} at --cell {cell:g} m (hazards or the boundary close every way)"
+            f"{site.start_name!r} at GridSpec.cell_m {cell:g} m (hazards or the boundary close every way)"
         )
     return grid
 
@@ -431,9 +431,8 @@ def lattice_moves(n_headings: int) -> np.ndarray:
     """The cell-lattice moves for shortest paths: rook moves for 4 headings, king moves otherwise."""
     if n_headings == 4:
         return ROOK_MOVES
-    if n_headings in (8, 16):
-        return KING_MOVES
-    raise SettingsError(f"--headings must be 4, 8 or 16, got {n_headings!r}")
+    check_headings(n_headings)
+    return KING_MOVES
 
 
 def _deterministic_moves(grid: Grid, n_actions: int, hazard_penalty_m, unit_cost: bool):

@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from planner import checks
 from planner.errors import SettingsError, SiteError
 from planner.learn_kernels import (
     END_STEP_CAP,
@@ -146,41 +147,18 @@ class LearnSettings:
     sweep_horizon: float | None = None
 
     def __post_init__(self):
-        if not (_is_real(self.epsilon) and 0.0 <= self.epsilon <= 1.0):
-            raise SettingsError(f"--epsilon must be a number in [0, 1], got {self.epsilon!r}")
-        if not (_is_real(self.step_size) and 0.0 < self.step_size <= 1.0):
-            raise SettingsError(f"--step-size must be a number in (0, 1], got {self.step_size!r}")
-        if self.step_decay is not None and not (_is_real(self.step_decay) and 0.5 < self.step_decay <= 1.0):
-            raise SettingsError(f"--step-decay must be a number in (0.5, 1] (or unset), got {self.step_decay!r}")
-        if not (_is_real(self.gamma) and 0.0 < self.gamma <= 1.0):
-            raise SettingsError(f"--gamma must be a number in (0, 1], got {self.gamma!r}")
-        if not (_is_whole(self.episodes) and self.episodes >= 1):
-            raise SettingsError(f"--episodes must be a whole number >= 1, got {self.episodes!r}")
-        if self.max_steps is not None and not (_is_whole(self.max_steps) and self.max_steps >= 1):
-            raise SettingsError(f"--max-steps must be a whole number >= 1 (or unset), got {self.max_steps!r}")
-        if not (_is_whole(self.n_seeds) and self.n_seeds >= 1):
-            raise SettingsError(f"--training-runs must be a whole number >= 1, got {self.n_seeds!r}")
-        if self.start_mode not in ("start", "explore"):
-            raise SettingsError(f"--start-mode must be 'start' or 'explore', got {self.start_mode!r}")
-        if self.q_init not in ("heuristic", "zeros"):
-            raise SettingsError(f"--q-init must be 'heuristic' or 'zeros', got {self.q_init!r}")
-        if self.schedule not in SCHEDULES:
-            raise SettingsError(f"LearnSettings.schedule must be one of {', '.join(SCHEDULES)}, got {self.schedule!r}")
-        if not (_is_whole(self.max_sweeps) and 1 <= self.max_sweeps <= MAX_SWEEPS):
-            raise SettingsError(f"LearnSettings.max_sweeps must be a whole number in [1, {MAX_SWEEPS}], "
-                                f"got {self.max_sweeps!r}")
-        if self.sweep_horizon is not None and not (_is_real(self.sweep_horizon) and self.sweep_horizon >= 1.0):
-            raise SettingsError(f"LearnSettings.sweep_horizon must be a number >= 1 (or unset), "
-                                f"got {self.sweep_horizon!r}")
-
-
-def _is_real(value) -> bool:
-    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool) \
-        and math.isfinite(value)
-
-
-def _is_whole(value) -> bool:
-    return isinstance(value, (int, np.integer)) and not isinstance(value, bool)
+        checks.probability(self.epsilon, "LearnSettings.epsilon")
+        checks.number(self.step_size, "LearnSettings.step_size", low=0.0, high=1.0, low_open=True)
+        checks.number(self.step_decay, "LearnSettings.step_decay", low=0.5, high=1.0, low_open=True, unset=True)
+        checks.number(self.gamma, "LearnSettings.gamma", low=0.0, high=1.0, low_open=True)
+        checks.whole(self.episodes, "LearnSettings.episodes", low=1)
+        checks.whole(self.max_steps, "LearnSettings.max_steps", low=1, unset=True)
+        checks.whole(self.n_seeds, "LearnSettings.n_seeds", low=1)
+        checks.one_of(self.start_mode, "LearnSettings.start_mode", ("start", "explore"))
+        checks.one_of(self.q_init, "LearnSettings.q_init", ("heuristic", "zeros"))
+        checks.one_of(self.schedule, "LearnSettings.schedule", SCHEDULES)
+        checks.whole(self.max_sweeps, "LearnSettings.max_sweeps", low=1, high=MAX_SWEEPS)
+        checks.number(self.sweep_horizon, "LearnSettings.sweep_horizon", low=1.0, says="a number >= 1", unset=True)
 
 
 @dataclass(frozen=True)
@@ -262,8 +240,7 @@ def corridor_states(model: Model, cost_to_go: np.ndarray | None = None, margin: 
     -------
     int64 array of sorted state indices; the start is always among them.
     """
-    if not (_is_real(margin) and margin >= 0):
-        raise SettingsError(f"corridor margin must be a number >= 0, got {margin!r}")
+    checks.number(margin, "margin", low=0.0, says="a number >= 0")
     to_go = model_cost_to_go(model) if cost_to_go is None else checked_cost_to_go(model, cost_to_go)
     from_start = cost_from_start(model)
     budget = (1.0 + margin) * to_go[model.start]
@@ -387,8 +364,8 @@ def train(model: Model, method: str, settings: LearnSettings = LearnSettings(), 
         raise SettingsError(f"settings must be LearnSettings, got {type(settings).__name__}")
     if n_jobs is None:
         n_jobs = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    elif not (_is_whole(n_jobs) and n_jobs >= 1):
-        raise SettingsError(f"--jobs must be a whole number >= 1, got {n_jobs!r}")
+    else:
+        checks.whole(n_jobs, "n_jobs", low=1)
     if not model.active[model.start]:
         raise SiteError("the start cell is not an active state of the model")
 

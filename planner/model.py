@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 import numba
 import numpy as np
 
+from planner import checks
 from planner.errors import SettingsError
 from planner.grid import FREE, OUTSIDE, Grid, cost_to_goal, estimate_model_bytes
 from planner.motion import Dynamics, landing_tables, move_lengths_m
@@ -419,8 +420,7 @@ def epsilon_greedy(greedy_action: np.ndarray, n_actions: int, epsilon: float) ->
 
     Greedy with probability ``1 - epsilon``, uniform over all actions otherwise.
     """
-    if not (math.isfinite(epsilon) and 0.0 <= epsilon <= 1.0):
-        raise SettingsError(f"--noise must be in [0, 1], got {epsilon}")
+    checks.probability(epsilon, "epsilon")
     greedy_action = np.asarray(greedy_action, dtype=np.int64)
     probs = np.full((greedy_action.size, n_actions), epsilon / n_actions)
     probs[np.arange(greedy_action.size), greedy_action] += 1.0 - epsilon

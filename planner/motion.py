@@ -36,6 +36,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from planner import checks
 from planner.errors import SettingsError
 
 #: Heading counts a vehicle may have.
@@ -75,8 +76,7 @@ def heading_bearings_deg(n_headings: int) -> np.ndarray:
 
 def check_headings(n_headings) -> None:
     """Refuse a heading count other than 4, 8 or 16."""
-    if isinstance(n_headings, bool) or n_headings not in HEADING_COUNTS:
-        raise SettingsError(f"--headings must be 4, 8 or 16, got {n_headings!r}")
+    checks.one_of(n_headings, "Dynamics.n_actions", HEADING_COUNTS)
 
 
 def moves_for(n_headings: int) -> np.ndarray:
@@ -129,34 +129,23 @@ class Dynamics:
 
     def __post_init__(self):
         check_headings(self.n_actions)
-        for name, value in (("--slip", self.slip), ("--stall", self.stall)):
-            if not (isinstance(value, (int, float)) and math.isfinite(value) and 0.0 <= value <= 1.0):
-                raise SettingsError(f"{name} must be in [0, 1], got {value}")
+        checks.probability(self.slip, "Dynamics.slip")
+        checks.probability(self.stall, "Dynamics.stall")
         if self.slip + self.stall > 1.0 + 1e-12:
-            raise SettingsError(f"--slip + --stall must be at most 1, got {self.slip + self.stall:g}")
-        if not (math.isfinite(self.drift_scale) and self.drift_scale >= 0):
-            raise SettingsError(f"--drift-scale must be a finite number >= 0, got {self.drift_scale}")
-        if self.edge not in ("boundary", "wall"):
-            raise SettingsError(f"--edge must be 'boundary' or 'wall', got {self.edge!r}")
-        if self.step_cost not in ("length", "move"):
-            raise SettingsError(f"step_cost must be 'length' or 'move', got {self.step_cost!r}")
-        if self.hazard_penalty_m is not None and not (
-            math.isfinite(self.hazard_penalty_m) and self.hazard_penalty_m > 0
-        ):
-            raise SettingsError(f"--penalty must be a positive number of metres, got {self.hazard_penalty_m}")
-        if self.move_m is not None and not (
-            isinstance(self.move_m, (int, float)) and not isinstance(self.move_m, bool)
-            and math.isfinite(self.move_m) and self.move_m > 0
-        ):
-            raise SettingsError(f"--move-m must be a positive number of metres, got {self.move_m!r}")
+            raise SettingsError(f"Dynamics.slip + Dynamics.stall must be at most 1, got {self.slip + self.stall:g}")
+        checks.drift_scale(self.drift_scale, "Dynamics.drift_scale")
+        checks.one_of(self.edge, "Dynamics.edge", ("boundary", "wall"))
+        checks.one_of(self.step_cost, "Dynamics.step_cost", ("length", "move"))
+        checks.positive_metres(self.hazard_penalty_m, "Dynamics.hazard_penalty_m", unset=True)
+        checks.positive_metres(self.move_m, "Dynamics.move_m", unset=True)
 
     def move_length_m(self, cell_m: float) -> float:
         """The move length on a grid of ``cell_m``, refusing a move shorter than a cell."""
         move = float(cell_m) if self.move_m is None else float(self.move_m)
         if move < cell_m * (1.0 - 1e-12):
             raise SettingsError(
-                f"--move-m {move:g} m is shorter than the cell ({cell_m:g} m): a move must reach past its own "
-                "cell; use a smaller --cell or a longer --move-m"
+                f"Dynamics.move_m {move:g} m is shorter than the cell ({cell_m:g} m): a move must reach past its "
+                "own cell; use a smaller GridSpec.cell_m or a longer Dynamics.move_m"
             )
         return move
 
@@ -175,17 +164,17 @@ def travel_budget_m(budget_m: float | None = None, budget_min: float | None = No
     """
     if budget_min is None:
         if speed_mps is not None and budget_m is None:
-            raise SettingsError("--speed-mps is the speed a time budget (--budget-min) is travelled at; "
-                                "give --budget-min with it")
-        return budget_m
+            raise SettingsError("PlanSettings.speed_mps is the speed a time budget (PlanSettings.budget_min) is "
+                                "travelled at; give PlanSettings.budget_min with it")
+        return checks.positive_metres(budget_m, "PlanSettings.budget_m", unset=True)
     if budget_m is not None:
-        raise SettingsError("give the travel budget once: --budget-m (metres) or --budget-min (minutes), not both")
-    for name, value in (("--budget-min", budget_min), ("--speed-mps", speed_mps)):
+        raise SettingsError("give the travel budget once: PlanSettings.budget_m (metres) or "
+                            "PlanSettings.budget_min (minutes), not both")
+    for name, value in (("PlanSettings.budget_min", budget_min), ("PlanSettings.speed_mps", speed_mps)):
         if value is None:
-            raise SettingsError("--budget-min needs --speed-mps, the vehicle's speed over ground in metres per "
-                                "second, to turn minutes into metres travelled")
-        if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
-            raise SettingsError(f"{name} must be a positive number, got {value!r}")
+            raise SettingsError("PlanSettings.budget_min needs PlanSettings.speed_mps, the vehicle's speed over "
+                                "ground in metres per second, to turn minutes into metres travelled")
+        checks.number(value, name, low=0.0, low_open=True, says="a positive number")
     return float(budget_min) * 60.0 * float(speed_mps)
 
 
@@ -383,8 +372,7 @@ def landing_tables(grid, dynamics: Dynamics, scale: float | None = None) -> Land
         push the vehicle further than the whole grid in one move.
     """
     scale = dynamics.drift_scale if scale is None else scale
-    if not (math.isfinite(scale) and scale >= 0):
-        raise SettingsError(f"--drift-scale must be a finite number >= 0, got {scale}")
+    checks.drift_scale(scale, "drift scale")
     cell = grid.cell_m
     move = dynamics.move_length_m(cell)
     reach = max(grid.shape) * cell

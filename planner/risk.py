@@ -27,7 +27,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from planner import notation
+from planner import checks, notation
 from planner.errors import SettingsError, SolverError
 from planner.model import (
     EVENT_BOUNDARY,
@@ -487,10 +487,8 @@ def evaluate(model: Model, greedy_action, *, noise: float, name: str = "policy",
     """
     if not model.active[model.start]:
         raise SettingsError(f"start state {model.start} is not a state the vehicle can be in")
-    if budget is not None and not (isinstance(budget, (int, np.integer)) and budget >= 0):
-        raise SettingsError(f"--budget must be a whole number of moves >= 0, got {budget!r}")
-    if not (isinstance(rollouts, (int, np.integer)) and rollouts >= 0):
-        raise SettingsError(f"--rollouts must be a whole number >= 0, got {rollouts!r}")
+    checks.whole(budget, "risk.budget", low=0, says="a whole number of moves >= 0", unset=True)
+    checks.whole(rollouts, "risk.rollouts", low=0)
     if rollouts > 0 and not isinstance(rng, np.random.Generator):
         raise SettingsError("Monte Carlo rollouts need a numpy.random.Generator (rng=...)")
     if not (isinstance(flag_z, (int, float)) and math.isfinite(flag_z) and flag_z > 0):

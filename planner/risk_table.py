@@ -40,7 +40,7 @@ def format_table(rows: Iterable[RiskRow], fmt: str = "text", *, details: bool = 
     """
     rows = list(rows)
     if fmt not in FORMATS:
-        raise SettingsError(f"--format must be one of {', '.join(FORMATS)}, got {fmt!r}")
+        raise SettingsError(f"risk_table.fmt must be one of {', '.join(FORMATS)}, got {fmt!r}")
     if fmt == "json":
         return json.dumps([r.as_dict() for r in rows], sort_keys=True, indent=2, allow_nan=False) + "\n"
     if fmt == "csv":

@@ -30,6 +30,7 @@ import numpy as np
 import shapely
 from shapely.geometry import MultiPolygon, Point, Polygon
 
+from planner import checks
 from planner.crs_member import crs_member_transform, reproject_positions
 from planner.errors import SettingsError, SiteError, SiteWarning
 from planner.names import check_unique, clean_name, file_key
@@ -52,7 +53,7 @@ MAX_VERTICES_PER_FEATURE = 200_000
 
 #: What a site file in another coordinate system should do.
 REPROJECT_ADVICE = ("reproject the file to WGS 84 longitude/latitude (EPSG:4326) in a GIS editor and save it "
-                    "again; --crs only chooses the working frame")
+                    "again; load_site.crs only chooses the working frame")
 #: Names a legacy GeoJSON ``crs`` member may give for WGS 84 lon/lat.
 LONLAT_CRS_NAMES = ("urn:ogc:def:crs:ogc:1.3:crs84", "urn:ogc:def:crs:ogc::crs84", "crs84", "ogc:crs84",
                     "epsg:4326", "urn:ogc:def:crs:epsg::4326", "urn:ogc:def:crs:epsg:6.6:4326")
@@ -289,8 +290,7 @@ def _refuse_repeated(obj, where: str) -> None:
 def read_site_bytes(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> bytes:
     """The bytes of a site file, read once, refused by size before reading."""
     path = Path(path)
-    if max_bytes <= 0:
-        raise SettingsError(f"--max-bytes must be positive, got {max_bytes}")
+    checks.whole(max_bytes, "load_site.max_bytes", low=1, says="a positive whole number of bytes")
     try:
         if not stat.S_ISREG(path.stat().st_mode):  # a pipe or device would block or never end
             raise SiteError(f"{path}: not a file")
@@ -300,7 +300,7 @@ def read_site_bytes(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> 
                 raise SiteError(f"{path}: not a file")
             if info.st_size > max_bytes:
                 raise SiteError(f"{path}: file is {info.st_size:,} bytes, over the {max_bytes:,}-byte limit "
-                                "(raise it with --max-bytes)")
+                                "(raise it with load_site.max_bytes)")
             data = f.read(max_bytes + 1)
     except IsADirectoryError as err:
         raise SiteError(f"{path}: not a file") from err
@@ -308,7 +308,7 @@ def read_site_bytes(path: str | Path, *, max_bytes: int = DEFAULT_MAX_BYTES) -> 
         raise SiteError(f"{path}: cannot read the site file ({err.strerror or err})") from err
     if len(data) > max_bytes:
         raise SiteError(f"{path}: file grew past the {max_bytes:,}-byte limit while it was read "
-                        "(raise it with --max-bytes)")
+                        "(raise it with load_site.max_bytes)")
     return data
 
 
@@ -510,7 +510,7 @@ def _build_site(obj, *, crs, fix, source, sha256, origins=None, notes=()) -> Sit
     if lon_b.max() - lon_b.min() > 180.0:
         raise SiteError(
             f"{boundary_item['where']}: boundary spans more than 180 degrees of longitude "
-            "(it straddles the antimeridian); split the site or name a --crs that covers it"
+            "(it straddles the antimeridian); split the site or name a load_site.crs that covers it"
         )
     frame = _make_frame(crs, lon_b, lat_b)
 
@@ -927,13 +927,14 @@ def _make_frame(crs: str | None, lon: np.ndarray, lat: np.ndarray) -> Frame:
     try:
         named = CRS.from_user_input(crs)
     except CRSError as err:
-        raise SettingsError(f"--crs {crs!r}: not a coordinate reference system pyproj knows") from err
+        raise SettingsError(f"load_site.crs {crs!r}: not a coordinate reference system pyproj knows") from err
     if not named.is_projected:
-        raise SettingsError(f"--crs {crs!r}: is not a projected CRS (a geographic CRS is in degrees; the working "
-                            "frame must be in metres: name a projected CRS such as a UTM zone, or leave out --crs)")
+        raise SettingsError(f"load_site.crs {crs!r}: is not a projected CRS (a geographic CRS is in degrees; the "
+                            "working frame must be in metres: name a projected CRS such as a UTM zone, or leave out "
+                            "load_site.crs)")
     units = {ax.unit_name for ax in named.axis_info}
     if units - {"metre", "meter"}:
-        raise SettingsError(f"--crs {crs!r}: axis units are {', '.join(sorted(units))}, not metres")
+        raise SettingsError(f"load_site.crs {crs!r}: axis units are {', '.join(sorted(units))}, not metres")
     return Frame(crs=named.to_wkt(), kind="named", lon_0=lon_0, lat_0=lat_0)
 
 
@@ -958,11 +959,12 @@ def _project_geometry(item: dict, frame: Frame, fix: bool, source: str, site_war
     if not geom.is_valid:
         reason = _reason_in_lonlat(shapely.is_valid_reason(geom), frame)
         if not fix:
-            raise SiteError(f"{where}: invalid polygon ({reason}); fix the drawing or pass --fix to repair it")
+            raise SiteError(f"{where}: invalid polygon ({reason}); fix the drawing or pass load_site.fix to repair "
+                            "it")
         try:
             repaired = shapely.make_valid(geom)
         except shapely.errors.GEOSException as err:
-            raise SiteError(f"{where}: invalid polygon ({reason}) that --fix cannot repair ({err})") from err
+            raise SiteError(f"{where}: invalid polygon ({reason}) that load_site.fix cannot repair ({err})") from err
         polys = [g for g in getattr(repaired, "geoms", [repaired]) if g.geom_type in _POLYGONAL]
         flat = []
         for g in polys:

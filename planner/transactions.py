@@ -48,11 +48,11 @@ def check_out(path, *, force: bool = False) -> tuple[Path, Path]:
     if path.exists() and not path.is_dir():
         raise RunFolderError(f"run folder {given}: exists and is not a folder")
     if path.exists() and not force:
-        raise RunFolderError(f"run folder {given}: already exists; choose another folder or pass --force to "
+        raise RunFolderError(f"run folder {given}: already exists; choose another folder or pass write_run.force to "
                              "replace it")
     if path.exists() and not (is_run_folder(path) or not any(path.iterdir())):
         raise RunFolderError(f"run folder {given}: is not a veerwise run folder (no manifest.json of ours); "
-                             "--force replaces only run folders and empty folders, so nothing else is lost")
+                             "write_run.force replaces only run folders and empty folders, so nothing else is lost")
     return path, parent
 
 

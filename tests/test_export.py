@@ -317,15 +317,15 @@ def test_export_routes_writes_one_file_per_policy_and_format(planned, tmp_path):
         "routes-shortest.geojson", "waypoints-shortest.csv", "routes-shortest.gpx",
         "routes-fewest-moves.geojson", "waypoints-fewest-moves.csv", "routes-fewest-moves.gpx",
     ]
-    with pytest.raises(SettingsError, match="--format 'kml'"):
+    with pytest.raises(SettingsError, match="export.formats 'kml' is not one of geojson, csv, gpx"):
         export_routes(routes, tmp_path, site=site, formats=("kml",))
 
 
 def test_bad_inputs_are_refused_and_write_nothing(planned, tmp_path):
     site, _grid, _model, routes = planned
-    with pytest.raises(SettingsError, match="--alt-m"):
+    with pytest.raises(SettingsError, match=r"export.alt_m must be a number of metres above ground in \[0, 10000\]"):
         write_geojson(routes, tmp_path / "x.geojson", site=site, alt_m=-1.0)
-    with pytest.raises(SettingsError, match="--alt-m"):
+    with pytest.raises(SettingsError, match=r"export.alt_m must be a number of metres above ground in \[0, 10000\]"):
         write_csv(routes[0], tmp_path / "x.csv", alt_m=float("nan"))
     with pytest.raises(SettingsError, match="policy name"):
         write_gpx([routes[0], routes[0]], tmp_path / "x.gpx")

@@ -215,33 +215,33 @@ def test_grid_over_the_cell_budget_is_refused_with_the_estimate():
     site = metric_site()
     # 100 m x 60 m at 0.1 m is 1000 x 600 cells; the estimate is 8 actions x (9
     # outcomes x 30 bytes + 8) bytes per cell = 1.33e9 bytes, 1.2 GiB.
-    with pytest.raises(BudgetError, match=r"--cell 0.1 m gives 600,000 cells, over the --max-cells budget of "
-                                          r"400,000 \(about 1.2 GiB of model\); use a larger --cell") as info:
+    with pytest.raises(BudgetError, match=r"GridSpec\.cell_m 0.1 m gives 600,000 cells, over the GridSpec.max_cells budget of "
+                                          r"400,000 \(about 1.2 GiB of model\); use a larger GridSpec\.cell_m") as info:
         rasterise(site, GridSpec(0.1))
     assert isinstance(info.value, MemoryError)
-    with pytest.raises(BudgetError, match=r"--cell 0.5 m gives 24,000 cells, over the --max-cells budget of 23,999"):
+    with pytest.raises(BudgetError, match=r"GridSpec\.cell_m 0.5 m gives 24,000 cells, over the GridSpec.max_cells budget of 23,999"):
         rasterise(site, GridSpec(0.5, max_cells=23_999))
     assert rasterise(site, GridSpec(0.5, max_cells=24_000)).n_cells == 24_000
 
 
 def test_cell_larger_than_the_site_is_refused():
     site = metric_site()
-    with pytest.raises(SettingsError, match=r"--cell 150 m is larger than the site \(100 m x 60 m\)"):
+    with pytest.raises(SettingsError, match=r"GridSpec\.cell_m 150 m is larger than the site \(100 m x 60 m\)"):
         rasterise(site, GridSpec(150.0))
 
 
 @pytest.mark.parametrize(("kwargs", "message"), [
-    ({"cell_m": 0.0}, r"--cell must be a positive number of metres, got 0.0"),
-    ({"cell_m": -5.0}, r"--cell must be a positive number of metres, got -5.0"),
-    ({"cell_m": float("nan")}, r"--cell must be a positive number of metres, got nan"),
-    ({"cell_m": float("inf")}, r"--cell must be a positive number of metres, got inf"),
-    ({"cell_m": "5"}, r"--cell must be a positive number of metres, got '5'"),
-    ({"cell_m": 5.0, "hazard_overlap": 1.0}, r"--hazard-overlap must be in \[0, 1\), got 1.0"),
-    ({"cell_m": 5.0, "hazard_overlap": -0.1}, r"--hazard-overlap must be in \[0, 1\), got -0.1"),
-    ({"cell_m": 5.0, "boundary_cover": 0.0}, r"--boundary-cover must be in \(0, 1\], got 0.0"),
-    ({"cell_m": 5.0, "boundary_cover": 1.5}, r"--boundary-cover must be in \(0, 1\], got 1.5"),
-    ({"cell_m": 5.0, "max_cells": 0}, r"--max-cells must be a positive whole number, got 0"),
-    ({"cell_m": 5.0, "max_cells": 1e6}, r"--max-cells must be a positive whole number, got 1000000.0"),
+    ({"cell_m": 0.0}, r"GridSpec\.cell_m must be a positive number of metres, got 0.0"),
+    ({"cell_m": -5.0}, r"GridSpec\.cell_m must be a positive number of metres, got -5.0"),
+    ({"cell_m": float("nan")}, r"GridSpec\.cell_m must be a positive number of metres, got nan"),
+    ({"cell_m": float("inf")}, r"GridSpec\.cell_m must be a positive number of metres, got inf"),
+    ({"cell_m": "5"}, r"GridSpec\.cell_m must be a positive number of metres, got '5'"),
+    ({"cell_m": 5.0, "hazard_overlap": 1.0}, r"GridSpec\.hazard_overlap must be a number in \[0, 1\), got 1.0"),
+    ({"cell_m": 5.0, "hazard_overlap": -0.1}, r"GridSpec\.hazard_overlap must be a number in \[0, 1\), got -0.1"),
+    ({"cell_m": 5.0, "boundary_cover": 0.0}, r"GridSpec\.boundary_cover must be a number in \(0, 1\], got 0.0"),
+    ({"cell_m": 5.0, "boundary_cover": 1.5}, r"GridSpec\.boundary_cover must be a number in \(0, 1\], got 1.5"),
+    ({"cell_m": 5.0, "max_cells": 0}, r"GridSpec\.max_cells must be a positive whole number, got 0"),
+    ({"cell_m": 5.0, "max_cells": 1e6}, r"GridSpec\.max_cells must be a positive whole number, got 1000000.0"),
 ])
 def test_grid_spec_refuses_bad_settings(kwargs, message):
     with pytest.raises(SettingsError, match=message):
@@ -252,7 +252,7 @@ def test_goal_behind_a_hazard_wall_is_refused(site_dict):
     site_dict["features"].append(feature("hazard", "Polygon", rect(70, -1, 73, 61), name="Perimeter wall"))
     site = site_from_geojson(site_dict)
     with pytest.raises(SiteError, match=r"no sequence of moves reaches goal 'Target' from start 'Launch' at "
-                                        r"--cell 5 m \(hazards or the boundary close every way\)"):
+                                        r"GridSpec\.cell_m 5 m \(hazards or the boundary close every way\)"):
         rasterise(site, GridSpec(CELL))
 
 
@@ -278,7 +278,7 @@ def test_start_in_a_cell_touched_by_a_buffer_is_refused_at_coarse_cells(site_dic
     site_dict["features"][1]["geometry"]["coordinates"] = point(37, 30)
     site = site_from_geojson(site_dict)
     with pytest.raises(SiteError, match=r"start 'Launch' falls in a cell touched by hazard feature 3 \('Pond'\) "
-                                        r"at --cell 5 m; use a smaller --cell or move the start"):
+                                        r"at GridSpec\.cell_m 5 m; use a smaller GridSpec\.cell_m or move the start"):
         rasterise(site, GridSpec(CELL))
     grid = rasterise(site, GridSpec(1.0))
     assert grid.label[grid.start] == FREE

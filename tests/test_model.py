@@ -212,13 +212,13 @@ def test_policy_chain_rows_are_distributions():
 
 
 def test_dynamics_refuse_out_of_range_settings():
-    with pytest.raises(SettingsError, match="--slip"):
+    with pytest.raises(SettingsError, match=r"Dynamics\.slip must be a number in \[0, 1\], got 1\.5"):
         Dynamics(slip=1.5)
-    with pytest.raises(SettingsError, match="--headings"):
+    with pytest.raises(SettingsError, match="Dynamics.n_actions must be 4, 8 or 16, got 6"):
         Dynamics(n_actions=6)
-    with pytest.raises(SettingsError, match="--edge"):
+    with pytest.raises(SettingsError, match="Dynamics.edge must be 'boundary' or 'wall', got 'bounce'"):
         Dynamics(edge="bounce")
-    with pytest.raises(SettingsError, match="--penalty"):
+    with pytest.raises(SettingsError, match="Dynamics.hazard_penalty_m must be a positive number of metres"):
         Dynamics(hazard_penalty_m=-1.0)
-    with pytest.raises(SettingsError, match="--noise"):
+    with pytest.raises(SettingsError, match=r"epsilon must be a number in \[0, 1\], got 1\.5"):
         epsilon_greedy(np.zeros(3, dtype=int), 4, 1.5)

@@ -102,13 +102,13 @@ def test_headings_are_the_lattice_moves_at_4_and_8_and_22_5_degrees_apart_at_16(
 
 @pytest.mark.parametrize("bad", [3, 6, 12, 32, 0, True])
 def test_heading_counts_other_than_4_8_16_are_refused(bad):
-    with pytest.raises(SettingsError, match="--headings must be 4, 8 or 16"):
+    with pytest.raises(SettingsError, match="Dynamics.n_actions must be 4, 8 or 16"):
         Dynamics(n_actions=bad)
 
 
 def test_a_move_shorter_than_the_cell_is_refused():
     grid = open_grid(5, 5, 2.0, (2, 2))
-    with pytest.raises(SettingsError, match=r"--move-m 1.5 m is shorter than the cell \(2 m\)"):
+    with pytest.raises(SettingsError, match=r"Dynamics\.move_m 1.5 m is shorter than the cell \(2 m\)"):
         build_model(grid, Dynamics(move_m=1.5))
 
 

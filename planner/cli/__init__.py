@@ -16,6 +16,7 @@ import warnings
 import click
 
 from planner import __version__
+from planner.cli.option_names import as_options
 from planner.errors import Interrupted, PlannerError, Stopped
 from planner.names import for_terminal
 
@@ -28,7 +29,9 @@ _MACHINE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.
 
 
 def _say(kind: str, message) -> None:
-    click.echo(f"veerwise: {kind}: {for_terminal(str(message))}", err=True)
+    """One line on stderr; the library's setting names (``Dynamics.slip``) said as options (``--slip``)."""
+    text = getattr(message, "said_as_options", None) or as_options(str(message))
+    click.echo(f"veerwise: {kind}: {for_terminal(text)}", err=True)
 
 
 def _show_warning(message, category, filename, lineno, file=None, line=None):
@@ -89,7 +92,7 @@ class _Group(click.Group):
             sys.exit(err.exit_code or EXIT_BAD_INPUT)
         except MemoryError as err:
             _say("error", f"out of memory{f' ({err})' if str(err) else ''}; nothing was written. Use a larger "
-                          "--cell, fewer --episodes, --seeds or --rollouts, or a machine with more memory")
+                          "--cell, fewer --episodes, --training-runs or --rollouts, or a machine with more memory")
             sys.exit(EXIT_BAD_INPUT)
         except OSError as err:
             if err.errno not in _MACHINE_ERRNOS:

@@ -97,8 +97,8 @@ def _settings_from_params(p: dict, site_of, grid_of):
     labelled = grid_of(spec, p["crs"], p["fix"])
     # The headline figures are the table's row at the run's noise and planning drift, so
     # each scenario's table holds its own (added at the end when the list lacks it).
-    noises = _with(float_list(p["noises"], "--table-noises", high=1.0), p["epsilon"])
-    drift_scales = _with(float_list(p["drift_scales"], "--table-drifts"), p["drift_scale"])
+    noises = _with(float_list(p["noises"], "PlanSettings.noises"), p["epsilon"])
+    drift_scales = _with(float_list(p["drift_scales"], "PlanSettings.drift_scales"), p["drift_scale"])
     return plan_settings(p, spec_site, spec, labelled, noises=noises, drift_scales=drift_scales, seed=None)
 
 

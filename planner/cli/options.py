@@ -8,10 +8,10 @@ and ``-o`` always names the one file a command writes.
 
 from __future__ import annotations
 
-import math
-
 import click
 
+from planner.cli.option_names import as_options
+from planner.errors import PlannerError, SettingsError
 from planner.grid import DEFAULT_MAX_CELLS
 from planner.site import DEFAULT_MAX_BYTES
 
@@ -50,22 +50,29 @@ class SectionedCommand(click.Command):
                     formatter.write_dl([record for _, record in sorted(groups[title], key=lambda x: x[0])])
 
 
-class Finite(click.FloatRange):
-    """A float in a range that is also finite (``nan`` and ``inf`` are refused, naming the option)."""
+    def invoke(self, ctx):
+        """Run the command; a library error's setting names become this command's options (or file keys)."""
+        try:
+            return super().invoke(ctx)
+        except PlannerError as err:
+            if getattr(err, "said_as_options", None) is None:
+                err.said_as_options = as_options(str(err), ctx)
+            raise
+
+
+class Number(click.ParamType):
+    """A number as typed; whether it is in range is the setting's own rule (:mod:`planner.checks`)."""
 
     name = "number"
 
     def convert(self, value, param, ctx):
-        """The value as a float, refused unless finite and in range."""
-        number = click.FLOAT.convert(value, param, ctx)
-        if not math.isfinite(number):
-            self.fail(f"{value!r} is not a finite number", param, ctx)
-        return super().convert(number, param, ctx)
+        """The value as a float (``nan`` and ``inf`` pass here and are refused by the setting's rule)."""
+        return click.FLOAT.convert(value, param, ctx)
 
 
-def finite(low=None, high=None, *, low_open: bool = False, high_open: bool = False) -> Finite:
-    """A click type for a finite number in [low, high] (ends open on request)."""
-    return Finite(low, high, min_open=low_open, max_open=high_open)
+def number() -> Number:
+    """A click type for a number whose range the settings check (one rule, one message)."""
+    return Number()
 
 
 class RiskBudget(click.ParamType):
@@ -117,21 +124,21 @@ def site_options(f):
                      help="Projected metric CRS to work in (e.g. EPSG:32632); the site file itself is always "
                           "lon/lat.", show_default="local transverse Mercator centred on the site")(f)
     f = click.option("--fix", is_flag=True, help="Repair invalid polygons (with a warning) instead of refusing them.")(f)
-    f = click.option("--max-bytes", type=click.IntRange(1), metavar="N", default=DEFAULT_MAX_BYTES, show_default=True,
+    f = click.option("--max-bytes", type=int, metavar="N", default=DEFAULT_MAX_BYTES, show_default=True,
                      help="Refuse site files larger than this many bytes before reading them.")(f)
     return f
 
 
 def grid_options(f):
     """Options that control rasterising."""
-    f = click.option("--cell", "cell_m", type=finite(0, low_open=True), default=None, metavar="M",
+    f = click.option("--cell", "cell_m", type=number(), default=None, metavar="M",
                      show_default="about 1/100 of the site's longer side, rounded to 0.5 m",
                      help="Cell size in metres: how finely the site is drawn.")(f)
-    f = click.option("--hazard-overlap", type=finite(0, 1, high_open=True), default=0.0, show_default=True,
+    f = click.option("--hazard-overlap", type=number(), default=0.0, show_default=True,
                      help="A cell is hazard when a buffered hazard covers more than this fraction of it.")(f)
-    f = click.option("--boundary-cover", type=finite(0, 1, low_open=True), default=1.0, show_default=True,
+    f = click.option("--boundary-cover", type=number(), default=1.0, show_default=True,
                      help="A cell is inside when the boundary covers at least this fraction of it.")(f)
-    f = click.option("--max-cells", type=click.IntRange(1), metavar="N", default=DEFAULT_MAX_CELLS, show_default=True,
+    f = click.option("--max-cells", type=int, metavar="N", default=DEFAULT_MAX_CELLS, show_default=True,
                      help="Refuse grids with more cells than this.")(f)
     return f
 
@@ -143,16 +150,16 @@ def dynamics_options(f):
     f = click.option("--move-m", "move_m", type=float, default=None, metavar="M",
                      help="Move length: metres travelled between heading decisions (at least one cell; "
                           "default: the site's default cell size, or one cell when --cell is coarser).")(f)
-    f = click.option("--slip", type=finite(0, 1), default=0.1, show_default=True,
+    f = click.option("--slip", type=number(), default=0.1, show_default=True,
                      help="Probability a move (of --move-m) veers to a neighbouring heading.")(f)
-    f = click.option("--stall", type=finite(0, 1), default=0.0, show_default=True,
+    f = click.option("--stall", type=number(), default=0.0, show_default=True,
                      help="Probability a move (of --move-m) makes no headway (drift still acts).")(f)
-    f = click.option("--plan-drift", "drift_scale", type=finite(0), default=1.0, show_default=True,
+    f = click.option("--plan-drift", "drift_scale", type=number(), default=1.0, show_default=True,
                      help="Drift scale the routes are planned for: multiplies every drift push and spread "
                           "(1 = as forecast). The risk table's scales are --table-drifts.")(f)
     f = click.option("--edge", type=click.Choice(["boundary", "wall"]), default="boundary", show_default=True,
                      help="Leaving the boundary is an incident (boundary) or blocked (wall).")(f)
-    f = click.option("--penalty", "penalty_m", type=finite(0, low_open=True), default=None, metavar="M",
+    f = click.option("--penalty", "penalty_m", type=number(), default=None, metavar="M",
                      show_default="twice the longest cheapest route to the goal, rounded up to 10 m",
                      help="Hazard penalty in metres-equivalent for hazards without their own penalty_m.")(f)
     return f
@@ -160,28 +167,28 @@ def dynamics_options(f):
 
 def learn_options(f):
     """Options of the two learners."""
-    f = click.option("--epsilon", type=finite(0, 1, high_open=True), default=0.1, show_default=True,
+    f = click.option("--epsilon", type=number(), default=0.1, show_default=True,
                      help="Execution noise the cautious policy is planned for (share of moves made at random); "
                           "also the noise of the headline figures.")(f)
-    f = click.option("--step-size", type=finite(0, 1, low_open=True), default=0.1, show_default=True,
+    f = click.option("--step-size", type=number(), default=0.1, show_default=True,
                      help="Constant step size.")(f)
-    f = click.option("--step-decay", type=finite(0.5, 1, low_open=True), default=None, metavar="W",
+    f = click.option("--step-decay", type=number(), default=None, metavar="W",
                      help="Use step size 1/n(s,a)^W instead of a constant.")(f)
-    f = click.option("--gamma", type=finite(0, 1, low_open=True), default=1.0, show_default=True,
+    f = click.option("--gamma", type=number(), default=1.0, show_default=True,
                      help="Discount (1 = none).")(f)
-    f = click.option("--episodes", type=click.IntRange(1), metavar="N", default=None,
+    f = click.option("--episodes", type=int, metavar="N", default=None,
                      show_default="50 per usable cell, 20,000 to 500,000",
                      help="Training episodes per training run.")(f)
-    f = click.option("--max-steps", type=click.IntRange(1), metavar="N", default=None,
+    f = click.option("--max-steps", type=int, metavar="N", default=None,
                      show_default="10 x the fewest moves to the goal", help="Episode step cap.")(f)
-    f = click.option("--training-runs", "n_seeds", type=click.IntRange(1), metavar="N", default=8, show_default=True,
+    f = click.option("--training-runs", "n_seeds", type=int, metavar="N", default=8, show_default=True,
                      help="Independent training runs per learner (each from its own seed spawned from "
                           "--root-seed); figures are reported as a range over them.")(f)
     f = click.option("--start-mode", type=click.Choice(["start", "explore"]), default="explore",
                      show_default=True, help="Episodes begin at the start, or also near the start-goal corridor.")(f)
     f = click.option("--q-init", type=click.Choice(["heuristic", "zeros"]), default="heuristic", show_default=True,
                      help="Initial Q: from a shortest-path heuristic, or zeros.")(f)
-    f = click.option("--root-seed", "seed", type=click.IntRange(0), default=None, metavar="N",
+    f = click.option("--root-seed", "seed", type=int, default=None, metavar="N",
                      show_default="fresh entropy, recorded in the manifest",
                      help="Root seed of the whole run; every training run and the Monte Carlo rollouts get "
                           "seeds spawned from it.")(f)
@@ -198,29 +205,25 @@ def risk_table_options(f, *, defaults_from_run: bool = False):
                      metavar="LIST", show_default=run_default or True,
                      help="Drift scales of the risk table, comma-separated, each >= 0 (2 = drift twice the "
                           "forecast). The planning scale is --plan-drift.")(f)
-    f = click.option("--budget-m", "budget_m", type=finite(0, low_open=True), default=None, metavar="M",
+    f = click.option("--budget-m", "budget_m", type=number(), default=None, metavar="M",
                      help="Also report risk within this many metres travelled, and P(timeout).")(f)
-    f = click.option("--budget-min", "budget_min", type=finite(0, low_open=True), default=None, metavar="MIN",
+    f = click.option("--budget-min", "budget_min", type=number(), default=None, metavar="MIN",
                      help="The same budget as minutes of travel at --speed-mps (instead of --budget-m).")(f)
-    f = click.option("--speed-mps", "speed_mps", type=finite(0, low_open=True), default=None, metavar="V",
+    f = click.option("--speed-mps", "speed_mps", type=number(), default=None, metavar="V",
                      show_default=run_default,
                      help="Speed over ground, metres per second, that --budget-min is travelled at.")(f)
-    f = click.option("--rollouts", type=click.IntRange(0), metavar="N", default=None if defaults_from_run else 20000,
+    f = click.option("--rollouts", type=int, metavar="N", default=None if defaults_from_run else 20000,
                      show_default=run_default or True,
                      help="Monte Carlo rollouts per row of the risk table (0 = none).")(f)
     return f
 
 
-def float_list(text: str, option: str, *, low: float = 0.0, high: float | None = None) -> tuple[float, ...]:
-    """Parse "0,0.05,0.1" into finite floats in ``[low, high)``, naming the option when they are not."""
+def float_list(text: str, setting: str) -> tuple[float, ...]:
+    """Parse "0,0.05,0.1" into floats, checked by the rule of ``setting`` (``PlanSettings.noises``)."""
+    from planner import checks
+
     try:
         values = tuple(float(v) for v in text.split(",") if v.strip())
     except ValueError as err:
-        raise click.BadParameter(f"{text!r} is not a comma-separated list of numbers", param_hint=option) from err
-    if not values:
-        raise click.BadParameter("needs at least one number", param_hint=option)
-    for v in values:
-        if not (math.isfinite(v) and v >= low and (high is None or v < high)):
-            where = f"in [{low:g}, {high:g})" if high is not None else f"a finite number >= {low:g}"
-            raise click.BadParameter(f"{v:g} is not {where}", param_hint=option)
-    return values
+        raise SettingsError(f"{setting} {text!r} is not a comma-separated list of numbers") from err
+    return checks.LIST_RULES[setting](values, setting)

@@ -14,11 +14,11 @@ from planner.cli import cli
 from planner.cli.options import (
     SectionedCommand,
     dynamics_options,
-    finite,
     float_list,
     force_option,
     grid_options,
     learn_options,
+    number,
     risk_budget_options,
     risk_table_options,
     run_argument,
@@ -73,8 +73,8 @@ def plan_settings(p: dict, loaded, spec, labelled, **given):
                           gamma=p["gamma"], episodes=episodes, max_steps=p["max_steps"], n_seeds=p["n_seeds"],
                           start_mode=p["start_mode"], q_init=p["q_init"], max_sweeps=p["max_sweeps"])
     fields = dict(
-        grid=spec, dynamics=dynamics, learn=learn, noises=float_list(p["noises"], "--table-noises", high=1.0),
-        drift_scales=float_list(p["drift_scales"], "--table-drifts"),
+        grid=spec, dynamics=dynamics, learn=learn, noises=float_list(p["noises"], "PlanSettings.noises"),
+        drift_scales=float_list(p["drift_scales"], "PlanSettings.drift_scales"),
         budget_m=travel_budget_m(p["budget_m"], p["budget_min"], p["speed_mps"]), budget_min=p["budget_min"],
         speed_mps=p["speed_mps"], rollouts=p["rollouts"], seed=p["seed"], crs=p["crs"], fix=p["fix"],
         max_bytes=p["max_bytes"], alt_m=p["alt_m"], tie_m=p["tie_m"], cautious_schedule=p["cautious_schedule"],
@@ -104,9 +104,9 @@ EXIT_NOT_READY = 3
 @learn_options
 @risk_table_options
 @risk_budget_options
-@click.option("--alt-m", type=finite(0, 10_000), default=None, metavar="M",
+@click.option("--alt-m", type=number(), default=None, metavar="M",
               help="Constant altitude above ground written into the waypoint files (aerial simulators).")
-@click.option("--tie-m", type=finite(0, low_open=True), default=0.01, show_default=True, metavar="M",
+@click.option("--tie-m", type=number(), default=0.01, show_default=True, metavar="M",
               help="Actions within this many metres-equivalent of the best are equally good; among them the "
                    "safest is taken (must stay below the shortest move).")
 @click.option("--cautious-schedule", type=click.Choice(["sweeps", "episodes"]), default="sweeps", show_default=True,
@@ -115,13 +115,13 @@ EXIT_NOT_READY = 3
 @click.option("--shortest-schedule", type=click.Choice(["sweeps", "episodes"]), default="sweeps", show_default=True,
               help="How Q-learning samples: sweeps over every state-action pair (stopping when its risk verdict "
                    "passes), or episodes from the start.")
-@click.option("--max-sweeps", type=click.IntRange(1, 1_000_000), metavar="N", default=DEFAULT_MAX_SWEEPS,
+@click.option("--max-sweeps", type=int, metavar="N", default=DEFAULT_MAX_SWEEPS,
               show_default=True, help="Update budget of the sweeps schedule, in sweeps per training run (checks "
                                       "of the risk verdict after 4, 8, 16, ... sweeps, then every 25% more, stop it earlier).")
 @click.option("--grid-check/--no-grid-check", "grid_check", default=True, show_default=True,
               help="Re-evaluate each delivered policy on a grid of half the cell (same move length) and report "
                    "both figures.")
-@click.option("--grid-levels", "grid_levels", type=click.IntRange(2, 3), default=2, show_default=True,
+@click.option("--grid-levels", "grid_levels", type=int, default=2, show_default=True,
               help="Grids of the check: 2 (the cell and half the cell) or 3 (also a quarter: an observed order "
                    "and an error estimate by Richardson extrapolation).")
 def plan(site, run, force, as_json, strict, quiet, crs, fix, max_bytes, cell_m, hazard_overlap, boundary_cover,

@@ -9,9 +9,9 @@ import click
 from planner.cli import cli
 from planner.cli.options import (
     SectionedCommand,
-    finite,
     float_list,
     force_option,
+    number,
     output_option,
     risk_table_options,
     run_argument,
@@ -63,8 +63,8 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
     check_seed(rollout_seed, "--rollout-seed")
     loaded = load_run(run)
     s = loaded.settings
-    noise_levels = s.noises if noises is None else float_list(noises, "--table-noises", high=1.0)
-    scales = s.drift_scales if drift_scales is None else float_list(drift_scales, "--table-drifts")
+    noise_levels = s.noises if noises is None else float_list(noises, "PlanSettings.noises")
+    scales = s.drift_scales if drift_scales is None else float_list(drift_scales, "PlanSettings.drift_scales")
     n_rollouts = s.rollouts if rollouts is None else rollouts
     from planner.motion import travel_budget_m
 
@@ -101,9 +101,9 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
               show_default=True,
               help="Which policy's route (or risk map): both = cautious and shortest; budget = the within-budget "
                    "route of a run planned with --risk-budget; all = every route of the run.")
-@click.option("--alt-m", type=finite(0, 10_000), default=None, metavar="M",
+@click.option("--alt-m", type=number(), default=None, metavar="M",
               help="Constant altitude above ground for aerial simulators (metres), written in its own field.")
-@click.option("--ground-elev-m", type=finite(-500, 9000), default=None, metavar="M",
+@click.option("--ground-elev-m", type=number(), default=None, metavar="M",
               help="Ground elevation of the whole site (metres, in --vertical-datum): fills GPX <ele> and the "
                    "GeoJSON third coordinate with ground + --alt-m.")
 @click.option("--dem", type=click.Path(dir_okay=False, path_type=str), default=None, metavar="FILE",
