@@ -32,7 +32,7 @@ PATHS_SHOWN = 5
 MOVES_LISTED = 6
 
 
-def check_budget(value, option: str = "--risk-budget") -> float:
+def check_budget(value, option: str = "PlanSettings.risk_budget") -> float:
     """The risk budget as a float, refused unless a probability strictly between 0 and 1."""
     try:
         number = float(value)
@@ -51,7 +51,7 @@ def check_set_by(name) -> str | None:
         return None
     from planner.names import clean_name
 
-    return clean_name(name, "--budget-set-by")
+    return clean_name(name, "PlanSettings.budget_set_by")
 
 
 @dataclass(frozen=True)

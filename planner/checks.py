@@ -24,8 +24,8 @@ import numpy as np
 
 from planner.errors import SettingsError
 
-#: Largest root seed (numpy's SeedSequence takes any whole number >= 0; a manifest
-#: records it as JSON, which keeps 128 bits exactly as a decimal string).
+#: Largest root seed: the 128 bits of entropy ``SeedSequence`` draws when no seed is
+#: given, so every run's recorded entropy can be given back as a seed.
 MAX_SEED = 2**128 - 1
 
 

@@ -1,7 +1,8 @@
 """The one exception hierarchy of veerwise.
 
 Every error a user can cause is a ``PlannerError``; the command line turns it into
-one line on stderr and exit code 2. Each subclass also inherits the builtin that
+one line on stderr and exit code 2, with the library's setting names said as its
+options (:mod:`planner.cli.option_names`). Each subclass also inherits the builtin that
 callers would naturally catch, so existing ``except ValueError`` clauses keep working.
 """
 
@@ -17,7 +18,11 @@ class SiteError(PlannerError, ValueError):
 
 
 class SettingsError(PlannerError, ValueError):
-    """An option or setting is out of its allowed range (names the option)."""
+    """A setting is out of its allowed range.
+
+    The message names the setting as its owner and field (``Dynamics.slip``, see
+    :mod:`planner.checks`); the command line says the option instead (``--slip``).
+    """
 
 
 class BudgetError(PlannerError, MemoryError):

@@ -19,6 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
+from planner import checks
 from planner.errors import RunFolderError, SettingsError
 from planner.export import RUN_FORMAT
 from planner.pipeline import POLICIES, ROUTE_BUDGET, budget_moves, check_drift_scales, table_z
@@ -29,7 +30,7 @@ from planner.runfolder import (
     run_identity,
     write_manifest,
 )
-from planner.settings import MAX_SEED, PlanSettings, check_seed, settings_from_record
+from planner.settings import PlanSettings, settings_from_record
 from planner.transactions import atomic_folder, run_lock
 
 #: Keys every manifest has, and their types (checked before anything else is read).
@@ -238,7 +239,7 @@ def load_run(folder) -> Run:
         )
     entropy = manifest["seeds"].get("entropy")
     if not (isinstance(entropy, str) and entropy.isascii() and entropy.isdigit() and len(entropy) <= 39
-            and int(entropy) <= MAX_SEED):
+            and int(entropy) <= checks.MAX_SEED):
         raise RunFolderError(f"{path}: manifest seeds.entropy is missing or not a whole number in [0, 2**128)")
     check_schema(manifest, MANIFEST_SCHEMA, str(path))
     blobs = {}
@@ -341,7 +342,7 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget_m=None, rollouts=0,
     """
     from planner.risk import sensitivity
 
-    check_seed(seed, "--rollout-seed")
+    checks.seed(seed, "run_risk.seed")
     check_drift_scales(grid, run.settings.dynamics, "--table-drifts", drift_scales)
     budget = budget_moves(run.settings.dynamics, grid.cell_m, budget_m)
     chosen = {}

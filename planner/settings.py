@@ -12,13 +12,8 @@ import math
 import os
 from dataclasses import dataclass
 
-import numpy as np
-
+from planner import checks
 from planner.errors import RunFolderError, SettingsError
-
-#: Largest root seed: the 128 bits of entropy ``SeedSequence`` draws when no seed is given,
-#: so every run's recorded entropy can be given back to ``--seed``.
-MAX_SEED = 2**128 - 1
 
 
 @dataclass(frozen=True)
@@ -55,76 +50,72 @@ class PlanSettings:
     budget_set_by: str | None = None
 
     def __post_init__(self):
-        if not 0.0 <= self.learn.epsilon < 1.0:
-            raise SettingsError(f"--epsilon must be in [0, 1) for plan (1 would be a random walk), "
-                                f"got {self.learn.epsilon}")
-        for n in self.noises:
-            if not (0.0 <= n < 1.0):
-                raise SettingsError(f"--table-noises values must be in [0, 1), got {n}")
-        for m in self.drift_scales:
-            if not (np.isfinite(m) and m >= 0.0):
-                raise SettingsError(f"--table-drifts values must be finite and >= 0, got {m}")
+        checks.probability(self.learn.epsilon, "PlanSettings.epsilon", high_open=True)
+        checks.noise_levels(self.noises, "PlanSettings.noises")
+        checks.drift_scales(self.drift_scales, "PlanSettings.drift_scales")
         # The headline figures, the verdicts and the grid check are read from the row at
         # the planning noise and drift: a table without it cannot carry them.
         if not any(math.isclose(n, self.learn.epsilon) for n in self.noises):
-            raise SettingsError(f"--table-noises must include the planning noise --epsilon {self.learn.epsilon:g}: "
-                                "the headline figures are read from that row")
+            raise SettingsError(f"PlanSettings.noises must include the planning noise PlanSettings.epsilon "
+                                f"{self.learn.epsilon:g}: the headline figures are read from that row")
         if not any(math.isclose(m, self.dynamics.drift_scale) for m in self.drift_scales):
-            raise SettingsError(f"--table-drifts must include the planning drift --plan-drift "
+            raise SettingsError(f"PlanSettings.drift_scales must include the planning drift Dynamics.drift_scale "
                                 f"{self.dynamics.drift_scale:g}: the headline figures are read from that row")
-        if self.budget_m is not None and not (np.isfinite(self.budget_m) and self.budget_m > 0):
-            raise SettingsError(f"--budget-m must be a positive number of metres, got {self.budget_m}")
+        checks.positive_metres(self.budget_m, "PlanSettings.budget_m", unset=True)
         if self.budget_min is not None:
             from planner.motion import travel_budget_m
 
             if not math.isclose(travel_budget_m(None, self.budget_min, self.speed_mps), self.budget_m or 0.0):
-                raise SettingsError(f"--budget-min {self.budget_min:g} at --speed-mps {self.speed_mps:g} is not "
-                                    f"--budget-m {self.budget_m!r}")
-        if self.rollouts < 0:
-            raise SettingsError(f"--rollouts must be >= 0, got {self.rollouts}")
-        if self.grid_levels not in (2, 3) or isinstance(self.grid_levels, bool):
-            raise SettingsError(f"--grid-levels must be 2 or 3, got {self.grid_levels!r}")
-        if not (isinstance(self.tie_m, (int, float)) and not isinstance(self.tie_m, bool)
-                and np.isfinite(self.tie_m) and self.tie_m >= 0):
-            raise SettingsError(f"--tie-m must be a number of metres-equivalent >= 0, got {self.tie_m!r}")
-        check_seed(self.seed, "--root-seed")
+                raise SettingsError(f"PlanSettings.budget_min {self.budget_min:g} at PlanSettings.speed_mps "
+                                    f"{self.speed_mps:g} is not PlanSettings.budget_m {self.budget_m!r}")
+        checks.whole(self.rollouts, "PlanSettings.rollouts", low=0)
+        checks.one_of(self.grid_levels, "PlanSettings.grid_levels", (2, 3))
+        checks.number(self.tie_m, "PlanSettings.tie_m", low=0.0, says="a number of metres-equivalent >= 0")
+        checks.seed(self.seed, "PlanSettings.seed")
+        from planner.export import check_alt
+
+        check_alt(self.alt_m, "PlanSettings.alt_m")
+        checks.whole(self.max_bytes, "PlanSettings.max_bytes", low=1, says="a positive whole number of bytes")
         if self.risk_budget is not None or self.budget_set_by is not None:
             from planner.budget_plan import check_budget, check_set_by
 
             if self.risk_budget is None:
-                raise SettingsError("--budget-set-by needs --risk-budget")
+                raise SettingsError("PlanSettings.budget_set_by needs PlanSettings.risk_budget")
             check_budget(self.risk_budget)
             check_set_by(self.budget_set_by)
-        check_counts(training_runs=self.learn.n_seeds,
-                     episodes=max(self.learn.episodes, self.episodes_shortest or 0),
-                     max_steps=self.learn.max_steps, rollouts=self.rollouts, budget_m=self.budget_m,
-                     table_noises=len(self.noises), table_drifts=len(self.drift_scales))
+        check_counts({"LearnSettings.n_seeds": self.learn.n_seeds,
+                      "LearnSettings.episodes": max(self.learn.episodes, self.episodes_shortest or 0),
+                      "LearnSettings.max_steps": self.learn.max_steps, "PlanSettings.rollouts": self.rollouts,
+                      "PlanSettings.budget_m": self.budget_m, "PlanSettings.noises": len(self.noises),
+                      "PlanSettings.drift_scales": len(self.drift_scales)})
         from planner.site import MAX_PENALTY_M
 
         penalty = self.dynamics.hazard_penalty_m
         if penalty is not None and penalty > MAX_PENALTY_M:
-            raise SettingsError(f"--penalty must be at most {MAX_PENALTY_M:g} m (a penalty above it swamps every "
-                                f"route and its costs lose precision), got {penalty:g}")
+            raise SettingsError(f"Dynamics.hazard_penalty_m must be at most {MAX_PENALTY_M:g} m (a penalty above "
+                                f"it swamps every route and its costs lose precision), got {penalty:g}")
 
 
 #: Upper bounds on counts, checked when the settings are made (before any work): far
 #: beyond any useful plan, and low enough that no setting alone can run for days.
 COUNT_LIMITS = {
-    "--training-runs": 100, "--episodes": 100_000_000, "--max-steps": 10_000_000, "--rollouts": 10_000_000,
-    "--budget-m": 10_000_000, "--table-noises": 50, "--table-drifts": 50,
+    "LearnSettings.n_seeds": 100, "LearnSettings.episodes": 100_000_000, "LearnSettings.max_steps": 10_000_000,
+    "PlanSettings.rollouts": 10_000_000, "PlanSettings.budget_m": 10_000_000, "PlanSettings.noises": 50,
+    "PlanSettings.drift_scales": 50,
 }
+#: Counts that are list lengths (the message says "gives N values").
+LIST_COUNTS = ("PlanSettings.noises", "PlanSettings.drift_scales")
 #: Share of the memory the system reports available that one plan may plan to use.
 MEMORY_SHARE = 0.8
 
 
-def check_counts(**counts) -> None:
-    """Refuse a count over its bound in :data:`COUNT_LIMITS` (keyword: the option without ``--``, ``_`` for ``-``)."""
-    for key, value in counts.items():
-        option = "--" + key.replace("_", "-")
-        limit = COUNT_LIMITS[option]
+def check_counts(counts: dict) -> None:
+    """Refuse a count over its bound in :data:`COUNT_LIMITS` (``{setting: value}``; a list by its length)."""
+    for name, value in counts.items():
+        limit = COUNT_LIMITS[name]
         if value is not None and value > limit:
-            what = f"gives {value:,} values" if option in ("--table-noises", "--table-drifts") else f"{value:,} is"
-            raise SettingsError(f"{option} {what}, over the limit of {limit:,}")
+            what = f"gives {value:,} values" if name in LIST_COUNTS else f"{value:,} is"
+            raise SettingsError(f"{name} {what}, over the limit of {limit:,}")
 
 
 def available_memory_bytes() -> int | None:
@@ -176,20 +167,13 @@ def check_plan_size(grid, settings: PlanSettings) -> None:
     if available is None or total <= MEMORY_SHARE * available:
         return
     largest = max(parts, key=parts.get)
-    option = {"model": "a larger --cell", "Q tables": "a larger --cell or fewer --training-runs",
-              "learning curves": "fewer --episodes or --training-runs", "rollouts": "fewer --rollouts"}[largest]
+    option = {"model": "a larger GridSpec.cell_m",
+              "Q tables": "a larger GridSpec.cell_m or fewer LearnSettings.n_seeds",
+              "learning curves": "fewer LearnSettings.episodes or LearnSettings.n_seeds",
+              "rollouts": "fewer PlanSettings.rollouts"}[largest]
     raise BudgetError(f"plan would need about {format_bytes(total)} of memory (most for the {largest}: "
                       f"{format_bytes(parts[largest])}), more than the {format_bytes(available)} available; "
                       f"use {option}")
-
-
-def check_seed(seed, option: str = "--seed") -> None:
-    """Refuse a root seed outside [0, 2**128): the one rule for ``plan``, ``risk`` and manifests."""
-    if seed is None:
-        return
-    if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed <= MAX_SEED:
-        shown = f"{seed}" if not isinstance(seed, int) or seed.bit_length() < 200 else "a larger number"
-        raise SettingsError(f"{option} must be a whole number in [0, 2**128), got {shown}")
 
 
 def settings_record(settings: PlanSettings) -> dict:

@@ -34,9 +34,9 @@ def test_plan_help_is_in_sections_with_ranges_and_computed_defaults():
     flat = " ".join(text.split())
     sections = re.findall(r"^([A-Z][A-Za-z ]+):$", text, re.M)
     assert sections[:6] == ["Output", "Site file", "Grid", "Vehicle and motion", "Learning", "Risk table"]
-    # ranges are shown beside the options that have one
-    assert re.search(r"--epsilon NUMBER[\s\S]*?0<=x<1", text)
-    assert re.search(r"--slip NUMBER[\s\S]*?0<=x<=1", text)
+    # ranges are said beside the options that have one
+    assert re.search(r"--epsilon NUMBER.{0,120}?in \[0, 1\)", flat)
+    assert re.search(r"--slip NUMBER.{0,120}?in \[0, 1\]", flat)
     # computed defaults say how they are computed
     assert "about 1/100 of the site's longer side" in flat
     assert "50 per usable cell, 20,000 to 500,000" in flat

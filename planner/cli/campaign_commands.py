@@ -9,8 +9,10 @@ from pathlib import Path
 import click
 
 from planner.cli import cli
+from planner.cli.option_names import as_keys, setting_keys
 from planner.cli.options import SectionedCommand
 from planner.cli.plan_commands import progress_console
+from planner.errors import SettingsError
 
 #: Exit code when the campaign ran but not every scenario succeeded (the table says which).
 EXIT_SOME_FAILED = 4
@@ -81,6 +83,11 @@ def scenario_settings(campaign, plan_values: dict, scenario, site_of, grid_of):
         return _settings_from_params(p, site_of, grid_of)
     except click.ClickException as err:
         raise _refuse(campaign.path, f"scenario {scenario.name!r}: ", err.format_message()) from err
+    except SettingsError as err:
+        # the setting's rule refused a value: name it by its key, where the file gave it
+        keys = [k for k in setting_keys(str(err)) if k in values]
+        where = values[keys[0]][1] if keys else f"scenario {scenario.name!r}: "
+        raise _refuse(campaign.path, where, as_keys(str(err))) from err
 
 
 def _settings_from_params(p: dict, site_of, grid_of):

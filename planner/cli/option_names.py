@@ -125,3 +125,9 @@ def as_keys(text: str) -> str:
     """``text`` with every setting name replaced by its key in a campaign or settings file (``slip``)."""
     return _NAME.sub(lambda m: SETTING_OPTIONS[m.group(1)].split("/")[-1][2:]
                      if m.group(1) in SETTING_OPTIONS else m.group(1), text)
+
+
+def setting_keys(text: str) -> list[str]:
+    """The file keys (``slip``) of the settings ``text`` names, in order."""
+    return [SETTING_OPTIONS[m.group(1)].split("/")[-1][2:] for m in _NAME.finditer(text)
+            if m.group(1) in SETTING_OPTIONS]

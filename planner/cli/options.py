@@ -135,9 +135,9 @@ def grid_options(f):
                      show_default="about 1/100 of the site's longer side, rounded to 0.5 m",
                      help="Cell size in metres: how finely the site is drawn.")(f)
     f = click.option("--hazard-overlap", type=number(), default=0.0, show_default=True,
-                     help="A cell is hazard when a buffered hazard covers more than this fraction of it.")(f)
+                     help="A cell is hazard when a buffered hazard covers more than this fraction of it, in [0, 1).")(f)
     f = click.option("--boundary-cover", type=number(), default=1.0, show_default=True,
-                     help="A cell is inside when the boundary covers at least this fraction of it.")(f)
+                     help="A cell is inside when the boundary covers at least this fraction of it, in (0, 1].")(f)
     f = click.option("--max-cells", type=int, metavar="N", default=DEFAULT_MAX_CELLS, show_default=True,
                      help="Refuse grids with more cells than this.")(f)
     return f
@@ -151,9 +151,9 @@ def dynamics_options(f):
                      help="Move length: metres travelled between heading decisions (at least one cell; "
                           "default: the site's default cell size, or one cell when --cell is coarser).")(f)
     f = click.option("--slip", type=number(), default=0.1, show_default=True,
-                     help="Probability a move (of --move-m) veers to a neighbouring heading.")(f)
+                     help="Probability a move (of --move-m) veers to a neighbouring heading, in [0, 1].")(f)
     f = click.option("--stall", type=number(), default=0.0, show_default=True,
-                     help="Probability a move (of --move-m) makes no headway (drift still acts).")(f)
+                     help="Probability a move (of --move-m) makes no headway (drift still acts), in [0, 1]; with --slip at most 1.")(f)
     f = click.option("--plan-drift", "drift_scale", type=number(), default=1.0, show_default=True,
                      help="Drift scale the routes are planned for: multiplies every drift push and spread "
                           "(1 = as forecast). The risk table's scales are --table-drifts.")(f)
@@ -168,14 +168,14 @@ def dynamics_options(f):
 def learn_options(f):
     """Options of the two learners."""
     f = click.option("--epsilon", type=number(), default=0.1, show_default=True,
-                     help="Execution noise the cautious policy is planned for (share of moves made at random); "
-                          "also the noise of the headline figures.")(f)
+                     help="Execution noise the cautious policy is planned for (share of moves made at random), in "
+                          "[0, 1); also the noise of the headline figures.")(f)
     f = click.option("--step-size", type=number(), default=0.1, show_default=True,
-                     help="Constant step size.")(f)
+                     help="Constant step size, in (0, 1].")(f)
     f = click.option("--step-decay", type=number(), default=None, metavar="W",
-                     help="Use step size 1/n(s,a)^W instead of a constant.")(f)
+                     help="Use step size 1/n(s,a)^W instead of a constant; W in (0.5, 1].")(f)
     f = click.option("--gamma", type=number(), default=1.0, show_default=True,
-                     help="Discount (1 = none).")(f)
+                     help="Discount, in (0, 1] (1 = none).")(f)
     f = click.option("--episodes", type=int, metavar="N", default=None,
                      show_default="50 per usable cell, 20,000 to 500,000",
                      help="Training episodes per training run.")(f)

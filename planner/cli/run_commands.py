@@ -37,7 +37,7 @@ def risk_table_options_from_run(f):
 @click.option("--policy", "policies", default="cautious,shortest", show_default=True, metavar="LIST",
               help="Policies, comma-separated: cautious, shortest, 'exact on-policy', 'exact optimal'.")
 @risk_table_options_from_run
-@click.option("--rollout-seed", type=click.IntRange(0), default=None, metavar="N",
+@click.option("--rollout-seed", type=int, default=None, metavar="N",
               show_default="spawned from the run's root seed", help="Seed of the Monte Carlo rollouts.")
 def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min, speed_mps, rollouts,
          rollout_seed):
@@ -56,11 +56,12 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
       veerwise risk run-yard --table-drifts 1,2,3 --details
       veerwise risk run-yard --format csv > risk-again.csv
     """
+    from planner import checks
     from planner.risk_table import format_table
     from planner.runload import load_run, rebuild_grid, run_risk
-    from planner.settings import check_counts, check_seed
+    from planner.settings import check_counts
 
-    check_seed(rollout_seed, "--rollout-seed")
+    checks.seed(rollout_seed, "run_risk.seed")
     loaded = load_run(run)
     s = loaded.settings
     noise_levels = s.noises if noises is None else float_list(noises, "PlanSettings.noises")
@@ -71,7 +72,8 @@ def risk(run, fmt, details, policies, noises, drift_scales, budget_m, budget_min
     if budget_min is not None and speed_mps is None:
         speed_mps = s.speed_mps
     budget_m = travel_budget_m(budget_m, budget_min, speed_mps)
-    check_counts(rollouts=n_rollouts, budget_m=budget_m, table_noises=len(noise_levels), table_drifts=len(scales))
+    check_counts({"PlanSettings.rollouts": n_rollouts, "PlanSettings.budget_m": budget_m,
+                  "PlanSettings.noises": len(noise_levels), "PlanSettings.drift_scales": len(scales)})
     names = tuple(p.strip() for p in policies.split(",") if p.strip())
     _, grid = rebuild_grid(loaded)
     from planner.cli.plan_commands import progress_console
