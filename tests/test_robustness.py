@@ -398,7 +398,7 @@ BAD_PLAN_OPTIONS = [
     ("--headings 6", ["--headings", "6"], ["--headings must be 4, 8 or 16"], None),
     ("--step-size 0", ["--step-size", "0"], ["--step-size"], None),
     ("--step-size 1.5", ["--step-size", "1.5"], ["--step-size"], None),
-    ("--step-decay 0.5", ["--step-decay", "0.5"], ["--step-decay", "0.5<x<=1"], None),
+    ("--step-decay 0.5", ["--step-decay", "0.5"], ["--step-decay", "(0.5, 1]"], None),
     ("--step-decay 1.01", ["--step-decay", "1.01"], ["--step-decay"], None),
     ("--gamma 0", ["--gamma", "0"], ["--gamma"], None),
     ("--gamma 1.01", ["--gamma", "1.01"], ["--gamma"], None),
