@@ -161,8 +161,8 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
             grid = grid_of(settings.grid, settings.crs, settings.fix)
             prepared.setdefault(grid_key(site_key, settings), Prepared(site=site, grid=grid))
             settings.dynamics.move_length_m(grid.cell_m)
-            check_drift_scales(grid, settings.dynamics, "--plan-drift", (settings.dynamics.drift_scale,))
-            check_drift_scales(grid, settings.dynamics, "--table-drifts", settings.drift_scales)
+            check_drift_scales(grid, settings.dynamics, "Dynamics.drift_scale", (settings.dynamics.drift_scale,))
+            check_drift_scales(grid, settings.dynamics, "PlanSettings.drift_scales", settings.drift_scales)
             budget_moves(settings.dynamics, grid.cell_m, settings.budget_m)
             check_plan_size(grid, settings)
         except PlannerError as err:
@@ -313,7 +313,7 @@ def make_client(*, scheduler: str | None = None, n_workers: int | None = None, t
         try:
             return Client(scheduler, timeout=f"{timeout_s}s")
         except (OSError, TimeoutError, ValueError, TypeError) as err:
-            raise CampaignError(f"--scheduler {scheduler}: cannot reach a Dask scheduler there "
+            raise CampaignError(f"campaign.scheduler {scheduler}: cannot reach a Dask scheduler there "
                                 f"({one_line(str(err) or type(err).__name__, 160)}); nothing was written") from err
     n = n_workers or len(os.sched_getaffinity(0))
     cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=":0",

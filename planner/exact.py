@@ -116,7 +116,7 @@ def on_policy_q(model: Model, epsilon: float, *, gamma: float = 1.0, tol: float 
         When the residual is still above ``tol`` after ``max_iter`` sweeps.
     """
     if not (_is_number(epsilon) and 0.0 <= epsilon <= 1.0):
-        raise SettingsError(f"--epsilon must be a number in [0, 1], got {epsilon!r}")
+        raise SettingsError(f"epsilon must be a number in [0, 1], got {epsilon!r}")
     return _solve(model, float(epsilon), gamma, tol, max_iter, warm)
 
 
@@ -128,7 +128,7 @@ def _is_number(value) -> bool:
 def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int,
            warm: np.ndarray | None = None) -> ExactSolution:
     if not (_is_number(gamma) and 0.0 < gamma <= 1.0):
-        raise SettingsError(f"--gamma must be a number in (0, 1], got {gamma!r}")
+        raise SettingsError(f"gamma must be a number in (0, 1], got {gamma!r}")
     if not (_is_number(tol) and tol > 0):
         raise SettingsError(f"tol must be a positive number, got {tol!r}")
     if not (isinstance(max_iter, (int, np.integer)) and not isinstance(max_iter, bool) and max_iter >= 1):

@@ -26,7 +26,8 @@ from llvmlite import ir
 from numba.core import cgutils, types
 from numba.extending import intrinsic
 
-from planner.errors import BudgetError, SettingsError
+from planner import checks
+from planner.errors import BudgetError
 from planner.outcomes import END_TRUNCATED, EVENT_NONE
 
 #: Kernel codes of the two methods: SARSA bootstraps on the value of a next action drawn
@@ -147,10 +148,9 @@ def seed_states(seed, n_seeds: int) -> tuple[np.random.SeedSequence, np.ndarray]
     """
     if isinstance(seed, np.random.SeedSequence):
         root = seed
-    elif seed is None or (isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0):
-        root = np.random.SeedSequence(seed)
     else:
-        raise SettingsError(f"--root-seed must be a whole number >= 0, got {seed!r}")
+        checks.seed(seed, "seed")
+        root = np.random.SeedSequence(None if seed is None else int(seed))
     fresh = np.random.SeedSequence(root.entropy, spawn_key=root.spawn_key, pool_size=root.pool_size)
     states = np.array([child.generate_state(1, np.uint64)[0] for child in fresh.spawn(n_seeds)], dtype=np.uint64)
     return root, states

@@ -67,15 +67,15 @@ class PlanResult:
     causes: dict = field(default_factory=dict)
 
 
-def check_drift_scales(grid, dynamics, option: str, scales) -> None:
-    """Refuse, naming ``option``, any drift scale that would push a vehicle across the whole grid."""
+def check_drift_scales(grid, dynamics, setting: str, scales) -> None:
+    """Refuse, naming ``setting``, any drift scale that would push a vehicle across the whole grid."""
     from planner.motion import landing_tables
 
     for scale in scales:
         try:
             landing_tables(grid, dynamics, scale)
         except SettingsError as err:
-            raise SettingsError(f"{option} {scale:g}: {err}") from err
+            raise SettingsError(f"{setting} {scale:g}: {err}") from err
 
 
 def budget_moves(settings_dynamics, cell_m: float, budget_m: float | None) -> int | None:
@@ -87,7 +87,7 @@ def budget_moves(settings_dynamics, cell_m: float, budget_m: float | None) -> in
     move = settings_dynamics.move_length_m(cell_m)
     moves = moves_within(budget_m, move)
     if moves < 1:
-        raise SettingsError(f"--budget-m {budget_m:g} m is shorter than one move ({move:g} m)")
+        raise SettingsError(f"PlanSettings.budget_m {budget_m:g} m is shorter than one move ({move:g} m)")
     return moves
 
 
@@ -116,8 +116,8 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         grid = rasterise(site, settings.grid)
     progress(f"grid {grid.shape[1]} x {grid.shape[0]} cells of {grid.cell_m:g} m")
     # Every drift scale of the risk table must make a model: find out before training.
-    check_drift_scales(grid, settings.dynamics, "--plan-drift", (settings.dynamics.drift_scale,))
-    check_drift_scales(grid, settings.dynamics, "--table-drifts", settings.drift_scales)
+    check_drift_scales(grid, settings.dynamics, "Dynamics.drift_scale", (settings.dynamics.drift_scale,))
+    check_drift_scales(grid, settings.dynamics, "PlanSettings.drift_scales", settings.drift_scales)
     budget_moves(settings.dynamics, grid.cell_m, settings.budget_m)
     check_plan_size(grid, settings)
     with progress.task("building the model"):
@@ -139,7 +139,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
         exact["shortest"] = optimal_q(model)
     # Ties by safety: among equally good actions, the one that minimises P(incident) at
     # the run's noise; the riskiest tie-break gives the other end of the range.
-    check_tie_tolerance(model, settings.tie_m, "--tie-m")
+    check_tie_tolerance(model, settings.tie_m, "PlanSettings.tie_m")
     references = {}
     with progress.task("ties broken by safety (exact references)", len(POLICIES)) as report:
         for k, name in enumerate(POLICIES):

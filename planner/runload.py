@@ -343,14 +343,14 @@ def run_risk(run: Run, grid, *, noises, drift_scales, budget_m=None, rollouts=0,
     from planner.risk import sensitivity
 
     checks.seed(seed, "run_risk.seed")
-    check_drift_scales(grid, run.settings.dynamics, "--table-drifts", drift_scales)
+    check_drift_scales(grid, run.settings.dynamics, "PlanSettings.drift_scales", drift_scales)
     budget = budget_moves(run.settings.dynamics, grid.cell_m, budget_m)
     chosen = {}
     for name in policies:
         if name not in RISK_POLICIES:
-            raise SettingsError(f"--policy {name!r} is not one of {', '.join(RISK_POLICIES)}")
+            raise SettingsError(f"run_risk.policies {name!r} is not one of {', '.join(RISK_POLICIES)}")
         if RISK_POLICIES[name] not in run.arrays:
-            raise SettingsError(f"--policy {name!r}: this run has no {name} route (plan it with --risk-budget)")
+            raise SettingsError(f"run_risk.policies {name!r}: this run has no {name} route (plan it with PlanSettings.risk_budget)")
         chosen[name] = run.arrays[RISK_POLICIES[name]]
     root = np.random.SeedSequence(seed) if seed is not None else np.random.SeedSequence(
         int(run.manifest["seeds"]["entropy"]), spawn_key=(2,))
@@ -363,7 +363,7 @@ def rewrite_brief(run) -> tuple[Path, Path | None]:
     """Render ``brief.html``/``brief.pdf`` again from a run folder, and update its manifest.
 
     Returns the two paths; the PDF's is None when this machine cannot print it (see
-    :func:`planner.brief.pdf_unavailable`), and then no out-of-date PDF is kept.
+    :func:`planner.brief_page.pdf_unavailable`), and then no out-of-date PDF is kept.
 
     One transaction on the folder (``run`` is a :class:`Run` or a folder path): under
     its lock the run is read again, the briefing is rendered into a temporary sibling

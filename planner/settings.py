@@ -70,7 +70,9 @@ class PlanSettings:
                                     f"{self.speed_mps:g} is not PlanSettings.budget_m {self.budget_m!r}")
         checks.whole(self.rollouts, "PlanSettings.rollouts", low=0)
         checks.one_of(self.grid_levels, "PlanSettings.grid_levels", (2, 3))
-        checks.number(self.tie_m, "PlanSettings.tie_m", low=0.0, says="a number of metres-equivalent >= 0")
+        from planner.ties import check_tie_m
+
+        check_tie_m(self.tie_m, "PlanSettings.tie_m")
         checks.seed(self.seed, "PlanSettings.seed")
         from planner.export import check_alt
 

@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 import numba
 import numpy as np
 
+from planner import checks
 from planner.errors import SettingsError
 from planner.exact import _can_end, _is_number, _sweep_orders, near_best
 from planner.model import (
@@ -79,8 +80,7 @@ def equally_good(q: np.ndarray, tie_m: float = DEFAULT_TIE_M) -> np.ndarray:
     -------
     bool ``(n_states, n_actions)``; every row has at least one True.
     """
-    if not (_is_number(tie_m) and tie_m >= 0):
-        raise SettingsError(f"tie_m must be a number of metres-equivalent >= 0, got {tie_m!r}")
+    check_tie_m(tie_m, "tie_m")
     return near_best(q, tie_m=float(tie_m))
 
 
@@ -366,6 +366,11 @@ def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np
     )
 
 
+def check_tie_m(tie_m, setting: str):
+    """A tie tolerance: a number of metres-equivalent >= 0."""
+    return checks.number(tie_m, setting, low=0.0, says="a number of metres-equivalent >= 0")
+
+
 def check_tie_tolerance(model: Model, tie_m: float, setting: str = "tie_m") -> None:
     """Refuse a tie tolerance that could let equally good actions go round in a loop.
 
@@ -373,8 +378,7 @@ def check_tie_tolerance(model: Model, tie_m: float, setting: str = "tie_m") -> N
     the cheapest move's cost rules loops out and every tie-break stays a proper policy.
     """
     cheapest = float(-model.reward[model.event == EVENT_NONE].max(initial=-math.inf))
-    if not (_is_number(tie_m) and 0.0 <= tie_m):
-        raise SettingsError(f"{setting} must be a number of metres-equivalent >= 0, got {tie_m!r}")
+    check_tie_m(tie_m, setting)
     if math.isfinite(cheapest) and tie_m >= cheapest:
         raise SettingsError(f"{setting} is {tie_m:g} m-equiv.; it must be below the cheapest move's cost "
                             f"({cheapest:.3g} m-equiv.), or equally good moves could go round in a loop")

@@ -75,6 +75,7 @@ SETTING_OPTIONS = {
     "risk.budget": "--budget-m",
     "risk.rollouts": "--rollouts",
     "run_risk.seed": "--rollout-seed",
+    "run_risk.policies": "--policy",
     "campaign.scheduler": "--scheduler",
 }
 
