@@ -137,8 +137,8 @@ NAN_SITE = json.dumps(small_site_dict()).replace("9.25", "NaN", 1)
 
 
 @pytest.mark.parametrize("args,message", [
-    (["--cell", "0"], "is not in the range x>0"),
-    (["--cell", "-3"], "is not in the range x>0"),
+    (["--cell", "0"], "--cell must be a positive number of metres, got 0.0"),
+    (["--cell", "-3"], "--cell must be a positive number of metres, got -3.0"),
     (["--cell", "1e9"], "larger than the site"),
     (["--cell", "0.01"], "over the --max-cells budget"),
     (["--cell", "abc"], "--cell"),
