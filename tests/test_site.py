@@ -439,7 +439,7 @@ BAD_CONTENT = [
     ("empty-multipolygon", set_geometry(3, "MultiPolygon", []),
      SiteError, r"feature 3 \('Pond'\): MultiPolygon coordinates are malformed"),
     ("bow-tie", set_geometry(3, "Polygon", BOW_TIE),
-     SiteError, r"feature 3 \('Pond'\): invalid polygon \(Self-intersection.*\); fix the drawing or pass --fix"),
+     SiteError, r"feature 3 \('Pond'\): invalid polygon \(Self-intersection.*\); fix the drawing or pass load_site\.fix"),
     ("hole-outside-shell", set_geometry(3, "Polygon", HOLE_OUTSIDE),
      SiteError, r"feature 3 \('Pond'\): invalid polygon \(Hole lies outside shell"),
     ("zero-area-ring", set_geometry(3, "Polygon", DEGENERATE),
@@ -530,9 +530,9 @@ def test_antimeridian_straddling_boundary_is_refused():
 
 
 @pytest.mark.parametrize(("crs", "message"), [
-    ("EPSG:4326", r"--crs 'EPSG:4326': is not a projected CRS"),
-    ("not a crs at all", r"--crs 'not a crs at all': not a coordinate reference system"),
-    ("EPSG:2229", r"--crs 'EPSG:2229': axis units are US survey foot, not metres"),
+    ("EPSG:4326", r"load_site\.crs 'EPSG:4326': is not a projected CRS"),
+    ("not a crs at all", r"load_site\.crs 'not a crs at all': not a coordinate reference system"),
+    ("EPSG:2229", r"load_site\.crs 'EPSG:2229': axis units are US survey foot, not metres"),
 ], ids=["geographic", "unknown", "in-feet"])
 def test_unsuitable_named_frames_are_refused(site_dict, crs, message):
     with pytest.raises(SettingsError, match=message):
