@@ -3,7 +3,7 @@
 A campaign file (TOML) names one site and the axes of its scenarios: start/goal pairs,
 vehicles and drift cases. Every scenario is one ``plan`` of the site with its pair's
 start and goal, its vehicle's options and its drift case, run through the same public
-functions as ``plan`` (:func:`planner.runfolder.compute_plan`, :func:`write_run`), so
+functions as ``plan`` (:func:`planner.pipeline.compute_plan`, :func:`write_run`), so
 each writes its own run folder with the same transaction rules.
 
 The file::

@@ -6,7 +6,7 @@ run folder), loading each distinct scenario site and rasterising each distinct g
 once, so a bad scenario is refused before anything runs. :func:`run_jobs` sends the
 jobs to a Dask cluster (:func:`make_client`: a local one or a running scheduler),
 each running through the same public functions as ``plan``
-(:func:`planner.runfolder.compute_plan`, :func:`~planner.runfolder.write_run`) into a
+(:func:`planner.pipeline.compute_plan`, :func:`~planner.runfolder.write_run`) into a
 run folder of its own, and gives back each scenario's outcome as plain data, its
 routes' figures read back from the finished folder (:func:`route_rows`).
 """
@@ -105,7 +105,7 @@ def check_campaign(campaign: Campaign, settings_for: Callable) -> Plan:
     """Check every scenario before any work starts and make its job.
 
     ``settings_for(scenario, site_of, grid_of)`` gives a scenario's
-    :class:`~planner.runfolder.PlanSettings` from ``site_of(crs, fix)``, its site,
+    :class:`~planner.settings.PlanSettings` from ``site_of(crs, fix)``, its site,
     and ``grid_of(spec, crs, fix)``, that site rasterised (the command line builds them with ``plan``'s own
     option types and defaults). Each distinct site file (a pair and a drift bearing)
     is loaded and each distinct grid rasterised once, here; the same objects are

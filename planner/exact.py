@@ -13,13 +13,13 @@ reported is that of one full synchronous Bellman update of the final values.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numba
 import numpy as np
 
-from planner.errors import SettingsError, SolverError
+from planner import checks
+from planner.errors import SolverError
 from planner.model import (
     EVENT_NONE,
     Model,
@@ -115,24 +115,15 @@ def on_policy_q(model: Model, epsilon: float, *, gamma: float = 1.0, tol: float 
     SolverError
         When the residual is still above ``tol`` after ``max_iter`` sweeps.
     """
-    if not (_is_number(epsilon) and 0.0 <= epsilon <= 1.0):
-        raise SettingsError(f"epsilon must be a number in [0, 1], got {epsilon!r}")
+    checks.probability(epsilon, "epsilon")
     return _solve(model, float(epsilon), gamma, tol, max_iter, warm)
-
-
-def _is_number(value) -> bool:
-    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool) \
-        and math.isfinite(value)
 
 
 def _solve(model: Model, epsilon: float, gamma: float, tol: float, max_iter: int,
            warm: np.ndarray | None = None) -> ExactSolution:
-    if not (_is_number(gamma) and 0.0 < gamma <= 1.0):
-        raise SettingsError(f"gamma must be a number in (0, 1], got {gamma!r}")
-    if not (_is_number(tol) and tol > 0):
-        raise SettingsError(f"tol must be a positive number, got {tol!r}")
-    if not (isinstance(max_iter, (int, np.integer)) and not isinstance(max_iter, bool) and max_iter >= 1):
-        raise SettingsError(f"max_iter must be a whole number >= 1, got {max_iter!r}")
+    checks.number(gamma, "gamma", low=0.0, high=1.0, low_open=True)
+    checks.number(tol, "tol", low=0.0, low_open=True, says="a positive number")
+    checks.whole(max_iter, "max_iter", low=1)
     from planner.learn_paths import model_cost_to_go
 
     n_s, n_a = model.n_states, model.n_actions

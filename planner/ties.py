@@ -18,7 +18,7 @@ import numpy as np
 
 from planner import checks
 from planner.errors import SettingsError
-from planner.exact import _can_end, _is_number, _sweep_orders, near_best
+from planner.exact import _can_end, _sweep_orders, near_best
 from planner.model import (
     EVENT_BOUNDARY,
     EVENT_GOAL,
@@ -309,8 +309,7 @@ def safest_among(model: Model, allowed: np.ndarray, epsilon: float, *, value: np
     allowed = np.asarray(allowed, dtype=bool)
     if allowed.shape != (n_s, n_a):
         raise SettingsError(f"allowed must have shape {(n_s, n_a)}, got {allowed.shape}")
-    if not (_is_number(epsilon) and 0.0 <= epsilon < 1.0):
-        raise SettingsError(f"epsilon must be a number in [0, 1), got {epsilon!r}")
+    checks.probability(epsilon, "epsilon", high_open=True)
     active = model.active
     if not allowed[active].any(axis=1).all():
         raise SettingsError("every active state needs at least one allowed action")

@@ -14,8 +14,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from planner.errors import SettingsError
-from planner.exact import LOOP_DISCOUNT, VISIT_FLOOR, ExactSolution, _is_number, near_best
+from planner import checks
+from planner.exact import LOOP_DISCOUNT, VISIT_FLOOR, ExactSolution, near_best
 from planner.model import (
     Chain,
     Model,
@@ -278,8 +278,7 @@ def convergence_report(model: Model, learned, reference: ExactSolution, epsilon:
     so the gap is >= 0 up to round-off and 0 when the learned policy is as good as the
     reference.
     """
-    if not (_is_number(threshold) and 0.0 < threshold <= 1.0):
-        raise SettingsError(f"threshold must be in (0, 1], got {threshold!r}")
+    checks.number(threshold, "threshold", low=0.0, high=1.0, low_open=True)
     def safest(q):
         return safest_among(model, equally_good(q), epsilon, value=q, riskiest=False).greedy
 
