@@ -17,10 +17,11 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
+from matplotlib.ticker import FuncFormatter, MaxNLocator  # noqa: E402
 
 from planner import plots, style  # noqa: E402
 from planner.budget_plan import ROUTE_NAME  # noqa: E402
-from planner.notation import FLOOR, one_in  # noqa: E402
+from planner.notation import FLOOR, one_in, percent  # noqa: E402
 
 #: Order in which routes are drawn and listed.
 ROUTE_ORDER = ("cautious", "shortest", ROUTE_NAME)
@@ -169,8 +170,9 @@ def figure_causes(site, grid, routes: dict, causes: dict):
         bars.invert_yaxis()
         bars.set_ylim(len(legs) - 0.4, -0.6)
         bars.tick_params(axis="x", labelsize=style.FONT_SIZE - 4)
-        bars.ticklabel_format(axis="x", style="sci", scilimits=(-2, 2))
-        bars.xaxis.get_offset_text().set_fontsize(style.FONT_SIZE - 4)
+        # the product's notation on the axis too (no exponent offset a reviewer must apply)
+        bars.xaxis.set_major_locator(MaxNLocator(nbins=4, min_n_ticks=2))
+        bars.xaxis.set_major_formatter(FuncFormatter(lambda v, _: percent(v) if v >= 0 else ""))
         bars.set_xlabel("share of P(incident)", fontsize=style.FONT_SIZE - 3)
         if k == 0:
             bars.set_ylabel("leg (from the start)", fontsize=style.FONT_SIZE - 3)

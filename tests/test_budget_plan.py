@@ -223,3 +223,36 @@ def test_leg_decomposition_sums_to_p_incident_on_every_route_of_the_demo_sites(s
         total = incident_from_every_state(model, policy, eps)[model.start]
         assert abs(sum(leg["p_incident"] for leg in record["legs"]) - total) <= 1e-9, name
         assert abs(record["p_incident"] - total) <= 1e-9, name
+
+
+def test_leg_bars_read_in_the_products_percent_notation(planned):
+    """The leg bars' axis prints percentages as the briefing does, with no exponent offset to apply."""
+    import matplotlib.pyplot as plt
+
+    from planner.notation import percent
+    from planner.plots_budget import figure_causes
+    from planner.runload import load_run, rebuild, run_routes
+
+    _, out, _ = planned
+    run = load_run(out)
+    site, grid, model = rebuild(run)
+    routes = run_routes(run, site, grid, model)
+    causes = {name: headline(out, name)["causes"] for name in routes}
+    # shares of a few in ten thousand: where matplotlib's default axis prints "1e-4" apart
+    causes = {name: {**c, "legs": [{**leg, "p_incident": 1e-4 * (k + 1)} for k, leg in enumerate(c["legs"])]}
+              for name, c in causes.items()}
+    fig = figure_causes(site, grid, routes, causes)
+    try:
+        fig.canvas.draw()
+        bar_axes = [ax for ax in fig.axes if ax.get_xlabel() == "share of P(incident)"]
+        assert len(bar_axes) == len(routes)
+        for ax in bar_axes:
+            assert ax.xaxis.get_offset_text().get_text() == ""
+            lo, hi = ax.get_xlim()
+            shown = [(v, t.get_text()) for v, t in zip(ax.get_xticks(), ax.get_xticklabels(), strict=True)
+                     if lo <= v <= hi]
+            assert len(shown) >= 2
+            assert [text for _, text in shown] == [percent(v) for v, _ in shown]
+            assert all(text.endswith("%") for _, text in shown)
+    finally:
+        plt.close(fig)
