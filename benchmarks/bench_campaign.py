@@ -96,15 +96,16 @@ def main() -> None:
         if not args.no_warm_up:
             run_campaign(file, tmp / "warm", 2, True)  # fills the numba cache; not counted
         rows = []
-        for label, workers, share in (("1 worker, shared grids", 1, True), ("2 workers, shared grids", 2, True),
-                                      ("2 workers, every scenario builds its own grid", 2, False)):
+        for label, workers, share in (("1 worker, shared grids and models", 1, True),
+                                      ("2 workers, shared grids and models", 2, True),
+                                      ("2 workers, every scenario builds its own grid and model", 2, False)):
             out = tmp / f"out-{workers}-{share}"
             total, scenarios = run_campaign(file, out, workers, share)
             rows.append((label, total, scenarios))
             print(f"{label}: {total:.1f} s in all, {scenarios:.1f} s for the scenarios (load {load()})", flush=True)
         one, two = rows[0][1], rows[1][1]
         print(f"2 workers against 1: {one / two:.2f}x")
-        print(f"time saved by sharing grids (2 workers): {rows[2][1] - two:+.1f} s")
+        print(f"time saved by sharing grids and models (2 workers): {rows[2][1] - two:+.1f} s")
         if not args.no_plan_calls:
             work = tmp / "plans"
             work.mkdir()

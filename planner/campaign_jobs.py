@@ -18,6 +18,7 @@ import hashlib
 import json
 import math
 import os
+import pickle
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -78,6 +79,21 @@ def grid_key(site_key: str, settings) -> str:
     """Which scenarios can share one grid: the same site bytes and grid settings."""
     spec = json.dumps(dataclasses.asdict(settings.grid), sort_keys=True)
     return hashlib.sha256(f"{site_key}|{spec}|{settings.crs}|{settings.fix}".encode()).hexdigest()[:16]
+
+
+def model_key(grid, settings) -> str:
+    """Which scenarios can share one model and its exact references.
+
+    The same grid but for its start cell (a campaign's pairs with one target), the
+    same dynamics (vehicle and drift case) and the same exploration noise.
+    """
+    from planner.settings import settings_record
+
+    digest = hashlib.sha256(pickle.dumps(dataclasses.replace(grid, start=(0, 0)), protocol=5))
+    record = settings_record(settings)
+    digest.update(json.dumps({"dynamics": record["dynamics"], "epsilon": settings.learn.epsilon},
+                             sort_keys=True, default=str).encode())
+    return digest.hexdigest()[:16]
 
 
 @dataclass
@@ -197,7 +213,14 @@ def finished(folder: Path, job: Job, site_sha256: str) -> bool:
             and run.manifest["seeds"].get("entropy") == str(job.seed))
 
 
-def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = None) -> dict:
+def build_shared(prepared: Prepared, settings):
+    """A model and its exact references for every scenario of one :func:`model_key` (a Dask task)."""
+    from planner.pipeline import shared_model
+
+    return shared_model(prepared.grid, settings)
+
+
+def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = None, shared=None) -> dict:
     """Run one scenario into ``out_dir/runs/FOLDER`` (or find it finished): its outcome as plain data.
 
     Runs on a Dask worker. A failure is caught and returned with its one-line message,
@@ -222,7 +245,8 @@ def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = 
                 check_out(folder, force=True)
                 if prepared is None:
                     prepared = prepare(job.site_bytes, site_path, job.settings)
-                result = compute_plan(site_path, job.settings, Progress(), site=prepared.site, grid=prepared.grid)
+                result = compute_plan(site_path, job.settings, Progress(), site=prepared.site, grid=prepared.grid,
+                                      shared=shared)
                 write_run(result, job.settings, site_path, folder, force=True)
                 outcome["status"] = "done"
         outcome["routes"] = route_rows(folder)
@@ -342,8 +366,10 @@ def run_jobs(client, plan: Plan, out_dir, *, share: bool = True,
     """Run the plan's jobs on ``client``'s cluster, each into ``out_dir/runs/FOLDER``.
 
     With ``share`` the sites and grids built while checking are sent to the cluster
-    once each and handed to every scenario that uses them; without, every scenario
-    loads and rasterises its own (the benchmark's comparison). ``on_outcome`` is
+    once each and handed to every scenario that uses them, and each distinct model
+    (:func:`model_key`) is built once, with its exact references, by a task of its own
+    that those scenarios wait for; without, every scenario loads, rasterises and
+    builds its own (the benchmark's comparison). ``on_outcome`` is
     called as each scenario finishes. Outcomes come back in the campaign's order.
     """
     from distributed import as_completed
@@ -353,10 +379,11 @@ def run_jobs(client, plan: Plan, out_dir, *, share: bool = True,
     site_paths = write_sites(plan, out_dir)
     (Path(out_dir) / RUNS_DIR).mkdir(exist_ok=True)
     shared = {}
+    models = {}
     futures = {}
     for job in plan.jobs:
         source = str(site_paths[job.site_key])
-        given = None
+        given = built = None
         if share:
             key = grid_key(job.site_key, job.settings)
             if key not in shared:
@@ -365,7 +392,14 @@ def run_jobs(client, plan: Plan, out_dir, *, share: bool = True,
                 item = Prepared(site=dataclasses.replace(item.site, source=source), grid=item.grid)
                 shared[key] = client.scatter(item, hash=False)
             given = shared[key]
-        futures[client.submit(run_job, job, str(out_dir), source, given, pure=False,
+            # a finished scenario (a rerun) is skipped by its job: no model is built for it
+            if not finished(out_dir / RUNS_DIR / job.folder, job, job.site_sha256):
+                mkey = model_key(plan.prepared[key].grid, job.settings)
+                if mkey not in models:
+                    models[mkey] = client.submit(build_shared, given, job.settings, pure=False,
+                                                 key=f"model-{mkey}-{time.time_ns()}")
+                built = models[mkey]
+        futures[client.submit(run_job, job, str(out_dir), source, given, built, pure=False,
                               key=f"scenario-{job.index}-{job.identity[:10]}-{time.time_ns()}")] = job
     outcomes = {}
     for future in as_completed(futures):

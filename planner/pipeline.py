@@ -91,12 +91,37 @@ def budget_moves(settings_dynamics, cell_m: float, budget_m: float | None) -> in
     return moves
 
 
+@dataclass(frozen=True)
+class SharedModel:
+    """What plans on one grid, vehicle and noise share whatever their start: the model and exact references.
+
+    The model's outcomes and the exact Q of every state do not depend on the start
+    cell; only ``model.start`` does, and :func:`compute_plan` sets it to its own grid's.
+    """
+
+    model: object
+    #: route name -> :class:`planner.exact.ExactSolution`
+    exact: dict
+
+
+def shared_model(grid, settings: PlanSettings) -> SharedModel:
+    """Build ``grid``'s model for ``settings.dynamics`` and its two exact references."""
+    from planner.exact import on_policy_q, optimal_q
+    from planner.model import build_model
+
+    model = build_model(grid, settings.dynamics)
+    return SharedModel(model=model, exact={"cautious": on_policy_q(model, settings.learn.epsilon),
+                                           "shortest": optimal_q(model)})
+
+
 def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None, *, site=None,
-                 grid=None) -> PlanResult:
+                 grid=None, shared: SharedModel | None = None) -> PlanResult:
     """Run every stage of ``plan`` in memory (no files written).
 
     ``site`` and ``grid``, when the caller has already loaded and rasterised
-    ``site_path`` with these settings, are used instead of doing it again.
+    ``site_path`` with these settings, are used instead of doing it again; so is
+    ``shared``, the :func:`shared_model` of a grid equal to ``grid`` but for its start
+    cell, built with the same dynamics and noise (a campaign's pairs with one target).
     """
     from planner.exact import on_policy_q, optimal_q
     from planner.gis import load_sites
@@ -121,7 +146,10 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     budget_moves(settings.dynamics, grid.cell_m, settings.budget_m)
     check_plan_size(grid, settings)
     with progress.task("building the model"):
-        model = build_model(grid, settings.dynamics)
+        if shared is None:
+            model = build_model(grid, settings.dynamics)
+        else:
+            model = dataclasses.replace(shared.model, start=grid.start_index)
     timings["model_s"] = time.perf_counter() - t
     progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
 
@@ -134,9 +162,12 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     # The exact references come first: the sweeps schedule stops on the risk verdict
     # against them.
     with progress.task("exact references (value iteration)", 2) as report:
-        exact = {"cautious": on_policy_q(model, eps)}
-        report(1)
-        exact["shortest"] = optimal_q(model)
+        if shared is None:
+            exact = {"cautious": on_policy_q(model, eps)}
+            report(1)
+            exact["shortest"] = optimal_q(model)
+        else:
+            exact = dict(shared.exact)
     # Ties by safety: among equally good actions, the one that minimises P(incident) at
     # the run's noise; the riskiest tie-break gives the other end of the range.
     check_tie_tolerance(model, settings.tie_m, "PlanSettings.tie_m")

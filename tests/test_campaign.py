@@ -298,3 +298,36 @@ def test_the_example_campaign_checks_and_expands_to_eight_scenarios(tmp_path, no
     assert result.exit_code == 0, result.output
     assert "8 scenarios (2 pairs x 2 vehicles x 2 drift cases)" in result.output
     assert not out.exists()
+
+
+def test_pairs_with_one_target_share_one_model_and_plan_as_if_on_their_own(tmp_path):
+    """Two launch points to one target, one vehicle and drift case: one model, the plans unchanged."""
+    from planner.campaign_jobs import grid_key, model_key
+    from planner.cli.campaign_commands import checked_plan
+    from planner.pipeline import compute_plan, shared_model
+
+    pairs = PAIRS.replace(f"goal = {point(90, 50)}", 'goal = "Target"')
+    plan = checked_plan(write_campaign(tmp_path, PLAN + pairs + AXES))
+    jobs = {j.scenario.name: j for j in plan.jobs}
+
+    def grid_and_key(name):
+        job = jobs[name]
+        grid = plan.prepared[grid_key(job.site_key, job.settings)].grid
+        return job, grid, model_key(grid, job.settings)
+
+    first, grid_a, key_a = grid_and_key("west-east / rover / forecast")
+    second, grid_b, key_b = grid_and_key("diagonal / rover / forecast")
+    assert grid_a.start != grid_b.start and key_a == key_b
+    # another drift scale, another drift bearing: other models
+    assert grid_and_key("diagonal / rover / calm")[2] != key_b
+    assert grid_and_key("diagonal / rover / turned")[2] != key_b
+
+    prepared = plan.prepared[grid_key(second.site_key, second.settings)]
+    alone = compute_plan("site.geojson", second.settings, site=prepared.site, grid=prepared.grid)
+    together = compute_plan("site.geojson", second.settings, site=prepared.site, grid=prepared.grid,
+                            shared=shared_model(grid_a, first.settings))
+    assert together.model.start == grid_b.start_index
+    for name in ("cautious", "shortest"):
+        np.testing.assert_array_equal(together.exact[name].q, alone.exact[name].q)
+        np.testing.assert_array_equal(together.greedy[name], alone.greedy[name])
+    assert [r.p_incident for r in together.risk_rows] == [r.p_incident for r in alone.risk_rows]
