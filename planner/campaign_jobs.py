@@ -18,11 +18,12 @@ import hashlib
 import json
 import math
 import os
-import pickle
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+
+import numpy as np
 
 from planner.campaign import (
     PROVENANCE_SETTINGS,
@@ -89,7 +90,16 @@ def model_key(grid, settings) -> str:
     """
     from planner.settings import settings_record
 
-    digest = hashlib.sha256(pickle.dumps(dataclasses.replace(grid, start=(0, 0)), protocol=5))
+    digest = hashlib.sha256()
+    for field_ in dataclasses.fields(grid):
+        value = getattr(grid, field_.name)
+        if field_.name == "start":
+            continue
+        if isinstance(value, np.ndarray):
+            digest.update(f"{field_.name}|{value.dtype.str}|{value.shape}|".encode())
+            digest.update(np.ascontiguousarray(value).tobytes())
+        else:
+            digest.update(f"{field_.name}|{value!r}|".encode())
     record = settings_record(settings)
     digest.update(json.dumps({"dynamics": record["dynamics"], "epsilon": settings.learn.epsilon},
                              sort_keys=True, default=str).encode())
@@ -220,12 +230,14 @@ def build_shared(prepared: Prepared, settings):
     return shared_model(prepared.grid, settings)
 
 
-def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = None, shared=None) -> dict:
+def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = None, shared=None,
+            done: bool | None = None) -> dict:
     """Run one scenario into ``out_dir/runs/FOLDER`` (or find it finished): its outcome as plain data.
 
     Runs on a Dask worker. A failure is caught and returned with its one-line message,
     so the other scenarios go on; nothing is left half-written (the run folder's own
-    transaction).
+    transaction). ``done``, when the caller has already looked, says whether the
+    folder holds this job's finished run (so it is read once, not twice).
     """
     from planner.pipeline import compute_plan
     from planner.progress import Progress
@@ -239,7 +251,7 @@ def run_job(job: Job, out_dir: str, site_path: str, prepared: Prepared | None = 
     site_sha256 = job.site_sha256
     try:
         with run_lock(folder):
-            if finished(folder, job, site_sha256):
+            if done if done is not None else finished(folder, job, site_sha256):
                 outcome["status"] = "skipped"
             else:
                 check_out(folder, force=True)
@@ -384,6 +396,7 @@ def run_jobs(client, plan: Plan, out_dir, *, share: bool = True,
     for job in plan.jobs:
         source = str(site_paths[job.site_key])
         given = built = None
+        done = finished(out_dir / RUNS_DIR / job.folder, job, job.site_sha256)
         if share:
             key = grid_key(job.site_key, job.settings)
             if key not in shared:
@@ -393,13 +406,13 @@ def run_jobs(client, plan: Plan, out_dir, *, share: bool = True,
                 shared[key] = client.scatter(item, hash=False)
             given = shared[key]
             # a finished scenario (a rerun) is skipped by its job: no model is built for it
-            if not finished(out_dir / RUNS_DIR / job.folder, job, job.site_sha256):
+            if not done:
                 mkey = model_key(plan.prepared[key].grid, job.settings)
                 if mkey not in models:
                     models[mkey] = client.submit(build_shared, given, job.settings, pure=False,
                                                  key=f"model-{mkey}-{time.time_ns()}")
                 built = models[mkey]
-        futures[client.submit(run_job, job, str(out_dir), source, given, built, pure=False,
+        futures[client.submit(run_job, job, str(out_dir), source, given, built, done, pure=False,
                               key=f"scenario-{job.index}-{job.identity[:10]}-{time.time_ns()}")] = job
     outcomes = {}
     for future in as_completed(futures):

@@ -102,16 +102,29 @@ class SharedModel:
     model: object
     #: route name -> :class:`planner.exact.ExactSolution`
     exact: dict
+    #: seconds spent building ``model`` (``model_s``) and ``exact`` (``exact_s``)
+    seconds: dict = field(default_factory=dict)
 
 
-def shared_model(grid, settings: PlanSettings) -> SharedModel:
+def shared_model(grid, settings: PlanSettings, progress: Progress | None = None) -> SharedModel:
     """Build ``grid``'s model for ``settings.dynamics`` and its two exact references."""
     from planner.exact import on_policy_q, optimal_q
     from planner.model import build_model
 
-    model = build_model(grid, settings.dynamics)
-    return SharedModel(model=model, exact={"cautious": on_policy_q(model, settings.learn.epsilon),
-                                           "shortest": optimal_q(model)})
+    progress = progress or Progress()
+    t = time.perf_counter()
+    with progress.task("building the model"):
+        model = build_model(grid, settings.dynamics)
+    t_exact = time.perf_counter()
+    progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
+    # The exact references come before the learners: the sweeps schedule stops on the
+    # risk verdict against them.
+    with progress.task("exact references (value iteration)", 2) as report:
+        exact = {"cautious": on_policy_q(model, settings.learn.epsilon)}
+        report(1)
+        exact["shortest"] = optimal_q(model)
+    return SharedModel(model=model, exact=exact,
+                       seconds={"model_s": t_exact - t, "exact_s": time.perf_counter() - t_exact})
 
 
 def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = None, *, site=None,
@@ -123,7 +136,6 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     ``shared``, the :func:`shared_model` of a grid equal to ``grid`` but for its start
     cell, built with the same dynamics and noise (a campaign's pairs with one target).
     """
-    from planner.exact import on_policy_q, optimal_q
     from planner.gis import load_sites
     from planner.grid import cost_to_goal, rasterise
     from planner.learn import SARSA_SWEEP_HORIZON, learned_ties, train
@@ -145,13 +157,14 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
     check_drift_scales(grid, settings.dynamics, "PlanSettings.drift_scales", settings.drift_scales)
     budget_moves(settings.dynamics, grid.cell_m, settings.budget_m)
     check_plan_size(grid, settings)
-    with progress.task("building the model"):
-        if shared is None:
-            model = build_model(grid, settings.dynamics)
-        else:
-            model = dataclasses.replace(shared.model, start=grid.start_index)
-    timings["model_s"] = time.perf_counter() - t
-    progress(f"model: {model.n_outcomes:,} outcomes ({model.nbytes / 2**20:.1f} MiB)")
+    # A campaign's shared model was built (and timed) by a task of its own.
+    built = {"model_s": 0.0, "exact_s": 0.0}
+    if shared is None:
+        shared = shared_model(grid, settings, progress)
+        built = shared.seconds
+    model = dataclasses.replace(shared.model, start=grid.start_index)
+    exact = dict(shared.exact)
+    timings["model_s"] = time.perf_counter() - t - built["exact_s"]
 
     root = np.random.SeedSequence(settings.seed)
     seed_cautious, seed_shortest, seed_risk = root.spawn(3)
@@ -159,15 +172,6 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
                          hazard_penalty_m=model.penalty_m, unit_cost=settings.dynamics.step_cost == "move")
     eps = settings.learn.epsilon
     t = time.perf_counter()
-    # The exact references come first: the sweeps schedule stops on the risk verdict
-    # against them.
-    with progress.task("exact references (value iteration)", 2) as report:
-        if shared is None:
-            exact = {"cautious": on_policy_q(model, eps)}
-            report(1)
-            exact["shortest"] = optimal_q(model)
-        else:
-            exact = dict(shared.exact)
     # Ties by safety: among equally good actions, the one that minimises P(incident) at
     # the run's noise; the riskiest tie-break gives the other end of the range.
     check_tie_tolerance(model, settings.tie_m, "PlanSettings.tie_m")
@@ -177,7 +181,7 @@ def compute_plan(site_path, settings: PlanSettings, progress: Progress | None = 
             references[name] = safest_among(model, equally_good(exact[name].q, settings.tie_m), eps,
                                             value=exact[name].q)
             report(k + 1)
-    timings["exact_s"] = time.perf_counter() - t
+    timings["exact_s"] = time.perf_counter() - t + built["exact_s"]
     budget_plan = None
     if settings.risk_budget is not None:
         from planner.budget_plan import plan_budget
