@@ -23,6 +23,10 @@ from planner import plots, style  # noqa: E402
 from planner.budget_plan import ROUTE_NAME  # noqa: E402
 from planner.notation import FLOOR, one_in, percent  # noqa: E402
 
+#: The leg bars' axis: each bar is the P(incident) that leg contributes (the bars sum to
+#: the route's), not a share of it; the share is the label on the largest bar.
+CAUSE_AXIS_LABEL = "P(incident) from this leg"
+
 #: Order in which routes are drawn and listed.
 ROUTE_ORDER = ("cautious", "shortest", ROUTE_NAME)
 #: Marker of each delivered route on the trade-off curve.
@@ -173,7 +177,7 @@ def figure_causes(site, grid, routes: dict, causes: dict):
         # the product's notation on the axis too (no exponent offset a reviewer must apply)
         bars.xaxis.set_major_locator(MaxNLocator(nbins=4, min_n_ticks=2))
         bars.xaxis.set_major_formatter(FuncFormatter(lambda v, _: percent(v) if v >= 0 else ""))
-        bars.set_xlabel("share of P(incident)", fontsize=style.FONT_SIZE - 3)
+        bars.set_xlabel(CAUSE_AXIS_LABEL, fontsize=style.FONT_SIZE - 3)
         if k == 0:
             bars.set_ylabel("leg (from the start)", fontsize=style.FONT_SIZE - 3)
         top = int(np.argmax(share)) if share.size and share.max() > 0 else None

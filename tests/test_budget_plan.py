@@ -244,7 +244,7 @@ def test_leg_bars_read_in_the_products_percent_notation(planned):
     fig = figure_causes(site, grid, routes, causes)
     try:
         fig.canvas.draw()
-        bar_axes = [ax for ax in fig.axes if ax.get_xlabel() == "share of P(incident)"]
+        bar_axes = [ax for ax in fig.axes if ax.get_xlabel() == "P(incident) from this leg"]
         assert len(bar_axes) == len(routes)
         for ax in bar_axes:
             assert ax.xaxis.get_offset_text().get_text() == ""
